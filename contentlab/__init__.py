@@ -1,0 +1,30 @@
+"""contentlab: learn from your own post history what drives engagement.
+
+The public Python API is imported lazily so that ``import contentlab`` (and
+the command line's ``--help``) stay fast.
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+_LAZY = {
+    "Workspace": ("contentlab.workspace", "Workspace"),
+    "import_history": ("contentlab.history", "import_history"),
+    "read_history": ("contentlab.ingest", "read_history"),
+    "HeadlineFeaturizer": ("contentlab.features", "HeadlineFeaturizer"),
+    "ContentlabError": ("contentlab.errors", "ContentlabError"),
+    "ThompsonBandit": ("contentlab.bandit", "ThompsonBandit"),
+}
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        import importlib
+
+        module, attr = _LAZY[name]
+        return getattr(importlib.import_module(module), attr)
+    raise AttributeError(f"module 'contentlab' has no attribute {name!r}")
+
+
+__all__ = sorted(_LAZY)

@@ -1,0 +1,31 @@
+"""``contentlab demo``: the whole job on the invented demo corpus."""
+
+from __future__ import annotations
+
+import argparse
+
+from . import command_parser
+
+
+def register(subparsers) -> None:
+    p = command_parser(
+        subparsers,
+        "demo",
+        help="run contentlab end to end on the invented demo organisation",
+        description=(
+            "Import the bundled demo corpus (Alderbank Libraries, a fictional organisation with invented posts) "
+            "into a fresh workspace and walk through the job."
+        ),
+        example="contentlab demo --workspace /tmp/demo-workspace",
+    )
+    p.add_argument("--workspace", metavar="DIR", default="demo-workspace",
+                   help="where to build the demo workspace (emptied first; default: %(default)s)")
+    p.add_argument("--out", metavar="DIR", default="reports", help="where the report goes (default: %(default)s)")
+    p.set_defaults(handler=cmd_demo)
+
+
+def cmd_demo(args: argparse.Namespace) -> int:
+    from ..demo import run_demo
+
+    run_demo(args.workspace, args.out)
+    return 0

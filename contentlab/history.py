@@ -1,0 +1,87 @@
+"""Import a post-history export into a workspace as one transaction."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+from .errors import ContentlabError
+from .ingest import History, format_problems, read_history
+from .workspace import Workspace
+
+
+@dataclass(frozen=True)
+class ImportSummary:
+    file: str
+    rows_read: int
+    added: int
+    updated: int
+    unchanged: int
+    rejected: int
+    rejected_file: str | None = None
+
+    def line(self) -> str:
+        text = (
+            f"{self.file}: {self.rows_read} rows read, {self.added} added, {self.updated} updated, "
+            f"{self.unchanged} unchanged, {self.rejected} rejected"
+        )
+        if self.rejected_file:
+            text += f" (see {self.rejected_file})"
+        return text
+
+
+def rejected_path(path: Path) -> Path:
+    """Where --skip-bad writes the rejected rows: beside the input."""
+    name = path.name
+    for suffix in (".csv.gz", ".gz", ".csv", ".tsv", ".txt"):
+        if name.lower().endswith(suffix):
+            name = name[: -len(suffix)]
+            break
+    return path.with_name(f"{name}.rejected.csv")
+
+
+def import_history(
+    ws: Workspace,
+    path: str | Path,
+    mapping: str | Path | None = None,
+    *,
+    skip_bad: bool = False,
+    progress: bool = False,
+) -> ImportSummary:
+    """Validate ``path`` and store its posts; all or nothing unless ``skip_bad``.
+
+    Raises :class:`ContentlabError` listing up to 20 problems when any row is
+    bad and ``skip_bad`` is off; the workspace is then left as it was.
+    """
+    path = Path(path)
+    history: History = read_history(path, mapping, timezone=ws.timezone)
+    if history.problems and not skip_bad:
+        raise ContentlabError(
+            f"{path}: {history.rejected.shape[0]} of {history.rows_read} rows have problems; nothing was imported.\n"
+            + format_problems(history.problems)
+            + "\nFix these rows, or pass --skip-bad to import the good rows and write the rest to a file."
+        )
+    if history.rows_read == 0:
+        raise ContentlabError(f"{path}: has a header but no rows.")
+    bar = None
+    if progress and len(history.posts) > 20_000:
+        from tqdm import tqdm
+
+        bar = tqdm(total=len(history.posts), desc="storing", unit="post", leave=False)
+    try:
+        with ws.conn:
+            added, updated, unchanged = ws.upsert_posts(history.posts, source="import", progress=bar)
+            ws.record_import(str(path), history.rows_read, added, updated, unchanged, len(history.rejected))
+    finally:
+        if bar is not None:
+            bar.close()
+    out_file = None
+    if skip_bad and len(history.rejected):
+        out = rejected_path(path)
+        from .safety import neutralise_frame
+
+        neutralise_frame(history.rejected).to_csv(out, index=False)
+        out_file = str(out)
+    return ImportSummary(
+        str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file
+    )

