@@ -39,11 +39,11 @@ def _counts(clicks: ArrayLike, impressions: ArrayLike, *, names=("clicks", "impr
     if not (np.all(np.isfinite(k)) and np.all(np.isfinite(n))):
         raise ContentlabError(f"{names[0]} and {names[1]} must be finite numbers; found NaN or infinity")
     if np.any(k < 0):
-        raise ContentlabError(f"{names[0]} must be >= 0; got minimum {k.min()!r}")
+        raise ContentlabError(f"{names[0]} must be >= 0; got minimum {float(k.min())!r}")
     if np.any(n < k):
         i = int(np.argmax(n < k))
         raise ContentlabError(
-            f"{names[0]} must not exceed {names[1]}; got {names[0]}={k.flat[i]!r} > {names[1]}={n.flat[i]!r}"
+            f"{names[0]} must not exceed {names[1]}; got {names[0]}={float(k.flat[i])!r} > {names[1]}={float(n.flat[i])!r}"
         )
     return k, n
 
@@ -69,7 +69,7 @@ def two_proportion_ztest(
     k2, m2 = _counts(clicks2, n2, names=("clicks2", "n2"))
     if np.any(m1 <= 0) or np.any(m2 <= 0):
         raise ContentlabError(
-            f"n1 and n2 must be > 0; got minimum n1={m1.min()!r}, n2={m2.min()!r}"
+            f"n1 and n2 must be > 0; got minimum n1={float(m1.min())!r}, n2={float(m2.min())!r}"
         )
     q = (k1 + k2) / (m1 + m2)
     se = np.sqrt(q * (1.0 - q) * (1.0 / m1 + 1.0 / m2))
