@@ -1,0 +1,411 @@
+"""``contentlab experiment new|next|status|list|stop`` and ``contentlab record``."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+
+from . import add_format_option, add_workspace_option, command_parser
+
+POLICY_TEXT = (
+    "Thompson sampling (thompson) gives each draft a share of traffic that grows with "
+    "its probability of being best, so most impressions go to the likely winner while the test runs: the "
+    "most clicks during the test. Top-two Thompson sampling splits traffic between the leader and its "
+    "closest challenger, to tell them apart with fewer impressions: the quickest answer, at the cost of "
+    "more clicks lost while testing."
+)
+POLICY_HELP = "thompson (default) or top-two. " + POLICY_TEXT
+
+
+def _paragraphs(*parts: str) -> str:
+    """Descriptions wrapped to the terminal-friendly 79 columns (the parsers keep newlines as given)."""
+    import textwrap
+
+    return "\n\n".join(textwrap.fill(part, 79) for part in parts)
+
+
+def register(subparsers) -> None:
+    exp = command_parser(
+        subparsers,
+        "experiment",
+        help="test drafts against each other: new, next, status, list, stop",
+        description=_paragraphs(
+            "Run drafts against each other and let the results decide. 'new' creates an experiment whose arms "
+            "are drafts, with priors from the latest model; 'next' says how to split the next impressions; "
+            "'status' shows each arm's results and whether to stop; 'list' shows every experiment; 'stop' "
+            "closes one. Feed results back with: contentlab record NAME."
+        ),
+        example="contentlab experiment new makerspace --drafts corpus/drafts.csv --group makerspace-launch",
+    )
+    sub = exp.add_subparsers(dest="action", metavar="ACTION")
+    exp.set_defaults(handler=lambda args: (exp.print_help(), 0)[1])
+
+    p = command_parser(
+        sub,
+        "new",
+        help="create an experiment from drafts",
+        description=_paragraphs(
+            "Create an experiment whose arms are the drafts (a CSV with headline and optional arm, channel, "
+            "publish_at, group columns, or headlines as arguments). Each arm's prior starts at the latest "
+            "model's predicted click-through rate; how much that counts (the prior strength, in "
+            "pseudo-impressions) comes from how far your real rates spread around the model's out-of-fold "
+            "predictions (empirical Bayes), and it is kept only if a replay of your past tests shows it loses "
+            "fewer clicks than a flat prior. Without a model, or with --flat-prior, arms start flat."
+        ),
+        example='contentlab experiment new laser-cutter "Inside the makerspace laser cutter" '
+        '"5 things to know about the makerspace laser cutter" --channel newsletter',
+    )
+    p.add_argument("name", help="experiment name: letters, digits, '.', '_' or '-'")
+    p.add_argument("headlines", nargs="*", metavar="HEADLINE", help="draft headlines (instead of --drafts)")
+    p.add_argument("--drafts", metavar="FILE", help="CSV with headline [, arm, channel, publish_at, group]")
+    p.add_argument("--group", help="use only the drafts of this group (when the file has a group column)")
+    p.add_argument("--channel", help="channel of every arm (overrides the file's channel column)")
+    p.add_argument("--flat-prior", action="store_true", help="start every arm at the flat Beta(1, 1) prior")
+    p.add_argument("--prior-strength", type=float, metavar="S",
+                   help="use the model's predictions with this strength (pseudo-impressions) instead of the chosen one")
+    p.add_argument("--policy", default="thompson", choices=["thompson", "top-two"], help=POLICY_HELP)
+    p.add_argument("--seed", type=int, help="random seed for the allocations (default: a fresh one, stored)")
+    add_format_option(p)
+    add_workspace_option(p)
+    p.set_defaults(handler=cmd_new)
+
+    p = command_parser(
+        sub,
+        "next",
+        help="how to split the next impressions (or which draft to post next)",
+        description=_paragraphs(
+            "Propose how to split the next N impressions between the arms, from their posteriors. Each arm's "
+            "share follows its probability of being best (estimated from 10,000 posterior draws), with a "
+            "minimum share for every arm still in the running so none is starved early. --single names the one "
+            "draft to post next, for channels without traffic splitting. Asking twice without new results "
+            "gives the same answer.",
+            POLICY_TEXT,
+        ),
+        example="contentlab experiment next makerspace --impressions 5000",
+    )
+    p.add_argument("name")
+    p.add_argument("--impressions", type=int, default=1000, metavar="N", help="impressions to split (default 1000)")
+    p.add_argument("--policy", choices=["thompson", "top-two"],
+                   help="thompson or top-two (see above); default: the experiment's own")
+    p.add_argument("--single", action="store_true", help="name the single draft to post next")
+    add_format_option(p)
+    add_workspace_option(p)
+    p.set_defaults(handler=cmd_next)
+
+    p = command_parser(
+        sub,
+        "status",
+        help="results per arm and whether to stop",
+        description=_paragraphs(
+            "Per arm: impressions, clicks, observed rate with its 95% Wilson interval, posterior mean, probability "
+            "of being best, and the expected loss of choosing it now (the click-through rate given up against the "
+            "best arm, in expectation under the posterior; Scott, 2015). Recommends stopping when the leader is "
+            "best with probability at least 0.95 or choosing it now costs less than the loss threshold, and says "
+            "why; otherwise gives a rough count of impressions still needed. Warns about peeking with p-values, "
+            "too few clicks and drifting rates."
+        ),
+        example="contentlab experiment status makerspace --discount 0.9 --format json",
+    )
+    p.add_argument("name")
+    p.add_argument("--discount", type=float, metavar="D",
+                   help="down-weight older results: each recording round (in event-time order) multiplies earlier "
+                        "results by D in (0, 1]; default 1 (no discount)")
+    p.add_argument("--loss-threshold", type=float, metavar="RATE",
+                   help="stop when choosing the leader gives up less than this click-through rate in expectation, "
+                        "e.g. 0.0002 for 0.02 percentage points (default: 1%% of the leader's rate)")
+    p.add_argument("--prob-threshold", type=float, metavar="P", help="stop when P(best) >= P (default 0.95)")
+    add_format_option(p)
+    add_workspace_option(p)
+    p.set_defaults(handler=cmd_status)
+
+    p = command_parser(
+        sub, "list", help="every experiment in the workspace",
+        description="List the experiments with their status, arms, totals so far and current leader.",
+        example="contentlab experiment list --format csv",
+    )
+    add_format_option(p)
+    add_workspace_option(p)
+    p.set_defaults(handler=cmd_list)
+
+    p = command_parser(
+        sub, "stop", help="close an experiment and name its winner",
+        description=_paragraphs(
+            "Mark the experiment stopped (next then refuses) with the current leader, or --winner, as the winner. "
+            "Results recorded later are still kept."
+        ),
+        example="contentlab experiment stop makerspace",
+    )
+    p.add_argument("name")
+    p.add_argument("--winner", metavar="ARM", help="the arm to adopt (default: the current leader)")
+    add_workspace_option(p)
+    p.set_defaults(handler=cmd_stop)
+
+    p = command_parser(
+        subparsers,
+        "record",
+        help="feed results of an experiment back (one arm, or a CSV)",
+        description=_paragraphs(
+            "Add results to an experiment: one arm with --arm/--impressions/--clicks, or a CSV with columns arm, "
+            "impressions, clicks and optional at (ISO 8601; local time of the workspace without an offset) and "
+            "event_id. Figures are increments since the last report unless --cumulative says they are totals so "
+            "far. Every result has an event id (given, or derived from the file name, row number and cells, or "
+            "from the arm, time and values), so replaying the same file changes nothing. One call is one "
+            "transaction: a bad row (clicks above impressions, a negative or fractional count, an unknown arm, "
+            "a cumulative total that goes down) records nothing. The arms' totals also join the post history, "
+            "so the next learn learns from them."
+        ),
+        example="contentlab record makerspace --arm B --impressions 1200 --clicks 31 --at 2026-12-03T09:00",
+    )
+    p.add_argument("name")
+    p.add_argument("--input", metavar="FILE", help="results CSV: arm, impressions, clicks [, at, event_id]")
+    p.add_argument("--arm")
+    p.add_argument("--impressions", metavar="N")
+    p.add_argument("--clicks", metavar="K")
+    p.add_argument("--at", metavar="TIME", help="when these results were measured (default: now)")
+    p.add_argument("--event-id", metavar="ID", help="a name for this result, so repeating the call changes nothing")
+    p.add_argument("--cumulative", action="store_true", help="the figures are totals so far, not increments")
+    p.add_argument("--quiet", action="store_true", help="print only the summary line")
+    add_workspace_option(p)
+    p.set_defaults(handler=cmd_record)
+
+
+# ------------------------------------------------------------------ handlers
+
+
+def cmd_new(args: argparse.Namespace) -> int:
+    from ..errors import ContentlabError
+    from ..experiments import create_experiment, read_drafts
+    from ..workspace import Workspace
+
+    if args.drafts and args.headlines:
+        raise ContentlabError("give drafts either as --drafts FILE or as headlines on the command line, not both.")
+    if not args.drafts and not args.headlines:
+        raise ContentlabError('give the drafts: --drafts drafts.csv, or headlines as arguments ("Draft one" "Draft two").')
+    drafts = read_drafts(args.drafts) if args.drafts else list(args.headlines)
+    with Workspace.open(args.workspace) as ws:  # a test can start before any history is imported
+        created = create_experiment(
+            ws, args.name, drafts, flat_prior=args.flat_prior, channel=args.channel, group=args.group,
+            prior_strength=args.prior_strength, policy=args.policy, source=args.drafts, seed=args.seed,
+        )
+    frame = created.arms
+    if args.format == "json":
+        _print_json({"experiment": created.name, "arms": _records(frame), "prior": created.prior.to_dict(),
+                     "notes": list(created.notes)})
+        return 0
+    if args.format == "csv":
+        _print_csv(frame)
+        return 0
+    print(f"Experiment {created.name}: {len(frame)} arms, prior: {created.prior.source}.")
+    print(_table(frame, [
+        ("arm", "arm", str), ("headline", "headline", lambda v: _clip(v, 60)),
+        ("model rate", "predicted_rate", _pct), ("strength", "prior_strength", lambda v: f"{v:,.0f}"),
+        ("prior mean", "prior_mean", _pct),
+        ("90% prior interval", "prior_low", None),
+    ], extra={"90% prior interval": [f"{_pct(lo)} to {_pct(hi)}" for lo, hi in zip(frame["prior_low"], frame["prior_high"])]}))
+    print()
+    print(_wrap("Prior: " + created.prior.reason + "."))
+    for note in created.notes:
+        print(_wrap("Note: " + note))
+    print(f"\nNext: contentlab experiment next {created.name} --impressions 1000")
+    return 0
+
+
+def cmd_next(args: argparse.Namespace) -> int:
+    from ..experiments import next_allocation
+    from ..workspace import Workspace
+
+    with Workspace.open(args.workspace, create=False) as ws:
+        alloc = next_allocation(ws, args.name, args.impressions, args.policy, single=args.single)
+    frame = alloc.arms
+    if args.format == "json":
+        _print_json({"experiment": alloc.name, "policy": alloc.policy, "impressions": alloc.impressions,
+                     "next_single": alloc.single, "arms": _records(frame), "notes": list(alloc.notes)})
+        return 0
+    if args.format == "csv":
+        _print_csv(frame)
+        return 0
+    policy = "Thompson sampling" if alloc.policy == "thompson" else "top-two Thompson sampling"
+    if alloc.single is not None:
+        row = frame[frame["arm"] == alloc.single].iloc[0]
+        print(f"Post next ({policy}): {alloc.single}  {row['headline']}")
+    else:
+        print(f"Split of the next {alloc.impressions:,} impressions ({policy}):")
+        print(_table(frame, [
+            ("arm", "arm", str), ("headline", "headline", lambda v: _clip(v, 60)),
+            ("impressions", "impressions", lambda v: f"{int(v):,}"), ("share", "share", lambda v: f"{v:.1%}"),
+        ]))
+    for note in alloc.notes:
+        print(_wrap("Note: " + note))
+    print(f"Then: contentlab record {alloc.name} --arm ARM --impressions N --clicks K")
+    return 0
+
+
+def cmd_status(args: argparse.Namespace) -> int:
+    from ..experiments import experiment_status
+    from ..workspace import Workspace
+
+    with Workspace.open(args.workspace, create=False) as ws:
+        status = experiment_status(
+            ws, args.name, discount=args.discount, loss_threshold=args.loss_threshold,
+            prob_threshold=args.prob_threshold,
+        )
+    frame = status.arms
+    if args.format == "json":
+        _print_json(status.to_dict())
+        return 0
+    if args.format == "csv":
+        _print_csv(frame)
+        return 0
+    d = status.decision
+    print(f"Experiment {status.name} ({status.status}): {status.impressions:,} impressions, {status.clicks:,} clicks "
+          f"in {status.n_events:,} results.")
+    print(_table(frame, [
+        ("arm", "arm", str), ("headline", "headline", lambda v: _clip(v, 44)),
+        ("impr.", "impressions", lambda v: f"{int(v):,}"), ("clicks", "clicks", lambda v: f"{int(v):,}"),
+        ("rate [95% Wilson]", "rate", None), ("posterior", "posterior_mean", _pct),
+        ("P(best)", "prob_best", lambda v: f"{v:.1%}"), ("exp. loss", "expected_loss", lambda v: f"{100 * v:.3f} pp"),
+    ], extra={"rate [95% Wilson]": [
+        "-" if not math.isfinite(r) else f"{_pct(r)} [{_pct(lo)}, {_pct(hi)}]"
+        for r, lo, hi in zip(frame["rate"], frame["rate_low"], frame["rate_high"])
+    ]}))
+    print()
+    print(_wrap(f"Leader: {d.leader}. " + d.reason))
+    gained = status.clicks_gained
+    if status.impressions:
+        print(_wrap(
+            f"Clicks gained against an equal split so far: about {gained:+,.0f} (impressions times each arm's "
+            "posterior mean, against the same impressions at the average arm's)."
+        ))
+    for w in status.warnings:
+        print(_wrap("Warning: " + w))
+    return 0
+
+
+def cmd_list(args: argparse.Namespace) -> int:
+    from ..experiments import list_experiments
+    from ..workspace import Workspace
+
+    with Workspace.open(args.workspace, create=False) as ws:
+        frame = list_experiments(ws)
+    if args.format == "json":
+        _print_json(_records(frame))
+        return 0
+    if args.format == "csv":
+        _print_csv(frame)
+        return 0
+    if frame.empty:
+        print("No experiments yet. Create one with: contentlab experiment new NAME --drafts drafts.csv")
+        return 0
+    print(_table(frame, [
+        ("experiment", "experiment", str), ("created", "created_at", lambda v: str(v)[:10]),
+        ("channel", "channel", lambda v: v or "-"), ("status", "status", str), ("arms", "arms", str),
+        ("impressions", "impressions", lambda v: f"{int(v):,}"), ("clicks", "clicks", lambda v: f"{int(v):,}"),
+        ("leader", "leader", lambda v: v or "-"),
+    ]))
+    return 0
+
+
+def cmd_stop(args: argparse.Namespace) -> int:
+    from ..experiments import TRUTH_CAUTION, stop_experiment
+    from ..workspace import Workspace
+
+    with Workspace.open(args.workspace, create=False) as ws:
+        out = stop_experiment(ws, args.name, winner=args.winner)
+    d = out["decision"]
+    print(f"Stopped {out['experiment']}; winner: {out['winner']}.")
+    if out["stopped_early"]:
+        print(_wrap("Note: the evidence did not yet meet the stopping rule: " + d.reason))
+    print(_wrap("Note: " + TRUTH_CAUTION))
+    return 0
+
+
+def cmd_record(args: argparse.Namespace) -> int:
+    import pandas as pd
+
+    from ..errors import ContentlabError
+    from ..experiments import read_results, record_results
+    from ..workspace import Workspace
+
+    single = [args.arm, args.impressions, args.clicks]
+    if args.input:
+        if any(v is not None for v in single + [args.at, args.event_id]):
+            raise ContentlabError("give either --input FILE or --arm/--impressions/--clicks, not both.")
+    elif any(v is None for v in single):
+        raise ContentlabError("give --arm, --impressions and --clicks (or --input results.csv).")
+    with Workspace.open(args.workspace, create=False) as ws:
+        if args.input:
+            frame = read_results(args.input)
+            summary = record_results(ws, args.name, frame, cumulative=args.cumulative, source_file=args.input)
+        else:
+            row = {"arm": args.arm, "impressions": args.impressions, "clicks": args.clicks}
+            if args.at is not None:
+                row["at"] = args.at
+            if args.event_id is not None:
+                row["event_id"] = args.event_id
+            summary = record_results(ws, args.name, pd.DataFrame([row]), cumulative=args.cumulative)
+    print(summary.line())
+    if not args.quiet:
+        for note in summary.notes:
+            print(_wrap("Note: " + note))
+        if summary.added:
+            print(f"See: contentlab experiment status {args.name}")
+    return 0
+
+
+# ------------------------------------------------------------------ formatting
+
+
+def _pct(v) -> str:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return "-"
+    return "-" if not math.isfinite(f) else f"{100 * f:.2f}%"
+
+
+def _clip(v, n: int) -> str:
+    s = "" if v is None else str(v)
+    return s if len(s) <= n else s[: n - 1] + "…"
+
+
+def _wrap(text: str, width: int = 100) -> str:
+    import textwrap
+
+    return textwrap.fill(text, width=width, subsequent_indent="  ")
+
+
+def _table(frame, columns, extra=None) -> str:
+    """Fixed-width text table; ``columns`` are (title, column, formatter); ``extra`` gives ready cells by title."""
+    extra = extra or {}
+    cells = []
+    for title, col, fmt in columns:
+        if title in extra:
+            cells.append([str(c) for c in extra[title]])
+        else:
+            cells.append([fmt(v) for v in frame[col]])
+    widths = [max([len(t)] + [len(c) for c in cs]) for (t, _, _), cs in zip(columns, cells)]
+    numeric = [title not in ("arm", "headline", "experiment", "channel", "status", "leader") for title, _, _ in columns]
+    lines = ["  ".join(t.ljust(w) if not num else t.rjust(w) for (t, _, _), w, num in zip(columns, widths, numeric))]
+    for i in range(len(frame)):
+        lines.append("  ".join(
+            cs[i].ljust(w) if not num else cs[i].rjust(w) for cs, w, num in zip(cells, widths, numeric)
+        ))
+    return "\n".join("  " + line.rstrip() for line in lines)
+
+
+def _records(frame) -> list[dict]:
+    return frame.astype(object).where(frame.notna(), None).to_dict(orient="records")
+
+
+def _print_json(data) -> None:
+    from ..experiments import jsonable
+
+    print(json.dumps(jsonable(data), indent=2, allow_nan=False))
+
+
+def _print_csv(frame) -> None:
+    from ..safety import neutralise_frame
+
+    neutralise_frame(frame).to_csv(sys.stdout, index=False)

@@ -1,0 +1,1512 @@
+"""Experiments in the workspace: drafts as arms, model-informed priors, allocation, results and stopping.
+
+:mod:`contentlab.bandit` is pure computation; this module is where it meets
+the workspace. An experiment's arms and priors live in the ``experiments`` and
+``arms`` tables. Every batch of results is one row of ``observations``, keyed
+by an event id, so replaying a results file changes nothing. Each arm's
+running totals are mirrored into ``posts`` (``source='experiment'``,
+``post_id = "<experiment>:<arm>"``), so the next ``learn`` learns from them.
+
+Every :func:`record_results` call is one ``BEGIN IMMEDIATE`` transaction: the
+write lock is taken before anything is read, so concurrent processes queue
+for it (SQLite's busy timeout) instead of reading stale totals, and a call
+lands whole or not at all.
+
+The prior for each arm is the model's predicted rate ``m`` with a common
+strength ``s`` (pseudo-impressions; see :mod:`contentlab.bandit`). ``s`` comes
+from an empirical-Bayes beta-binomial fit of the user's real rates around the
+model's out-of-fold predictions, and is kept only when a replay of the user's
+own past tests says it loses fewer clicks than a flat prior: on the real
+archive, shrinkage toward a weak model slowed learning (issue 5), so the
+prior has to earn its place.
+
+Public API (used by the CLI, the report and the demo): :func:`create_experiment`,
+:func:`next_allocation`, :func:`record_results` (with :func:`read_results`),
+:func:`experiment_status`, :func:`list_experiments`, :func:`stop_experiment`,
+and the pure :func:`choose_prior_strength` / :func:`replay_regret`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import math
+import re
+import secrets
+import sqlite3
+from collections.abc import Mapping, Sequence
+from dataclasses import asdict, dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from .bandit import (
+    DEFAULT_MIN_SHARE,
+    DEFAULT_N_DRAWS,
+    DEFAULT_TEMPER,
+    Decision,
+    ThompsonBandit,
+    allocation_shares,
+    fit_prior_strength,
+    posterior_summary,
+    prior_params,
+    split_impressions,
+    wilson_interval,
+)
+from .errors import ContentlabError
+from .features import clean_headline
+from .ingest import _short
+from .workspace import Workspace, now_utc
+
+__all__ = [
+    "Allocation",
+    "CreatedExperiment",
+    "ExperimentStatus",
+    "PriorChoice",
+    "RecordSummary",
+    "choose_prior_strength",
+    "create_experiment",
+    "experiment_status",
+    "jsonable",
+    "list_experiments",
+    "next_allocation",
+    "normalise_drafts",
+    "prior_table",
+    "read_drafts",
+    "read_results",
+    "record_results",
+    "replay_regret",
+    "stop_experiment",
+]
+
+NAME_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,79}")
+ARM_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9._-]{0,39}")
+MIN_ARMS, MAX_ARMS = 2, 100
+MAX_HEADLINE_CHARS = 1000
+MAX_EVENT_ID_CHARS = 200
+PROB_THRESHOLD = 0.95
+# Fewer than about 30 clicks per arm and early leads often reverse (common practice).
+MIN_CLICKS = 30
+PRIOR_INTERVAL = 0.90
+# The prior-strength replay: past tests needed, repeats per candidate strength,
+# rounds per test and posterior draws per round (100 draws give shares to about
+# 5 points, enough to compare priors; the allocation itself uses 10,000).
+MIN_PAST_TESTS = 5
+MIN_PAST_POSTS = 20
+REPLAY_REPEATS = 3
+REPLAY_ROUNDS = 20
+REPLAY_DRAWS = 100
+REPLAY_MAX_TESTS = 300
+# Per-arm test of early against late results; Bonferroni over arms.
+DRIFT_ALPHA = 0.01
+POLICY_ALIASES = {"thompson": "thompson", "top-two": "top_two", "top_two": "top_two"}
+RESULT_COLUMNS = ["arm", "impressions", "clicks", "at", "event_id"]
+
+TRUTH_CAUTION = (
+    "Clicks are not the only test of a headline: keep every arm truthful. A headline that wins by "
+    "overpromising can break advertising and consumer-protection rules, which vary by place; follow your local rules."
+)
+PEEKING_CAUTION = (
+    "Looking often is fine for these Bayesian figures, but do not recompute a fixed-horizon p-value "
+    "(a two-proportion z-test) at every look and stop at the first p < 0.05: repeated looks make a false "
+    "winner far more likely than 5%. If you need a p-value, fix the sample size before you start."
+)
+SINGLE_CAUTION = (
+    "Posting drafts one after another is not a randomised split: differences of hour, weekday and news "
+    "can pass for differences between drafts. Where you can, split traffic at the same time."
+)
+
+
+# --------------------------------------------------------------------------
+# Results of the public functions.
+# --------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class PriorChoice:
+    """The prior strength an experiment starts with, and why."""
+
+    strength: float
+    source: str  # 'model' (chosen here), 'flat', 'user' (strength set by the user) or 'given' (means too)
+    reason: str
+    eb_strength: float | None = None
+    cap: float | None = None
+    replay: dict[str, list[float]] | None = None  # candidate strength -> regret/equal split per run
+    n_posts: int = 0
+    n_tests: int = 0
+    model_id: int | None = None
+    notes: tuple[str, ...] = ()
+
+    def to_dict(self) -> dict:
+        out = asdict(self)
+        out["notes"] = list(self.notes)
+        return out
+
+
+@dataclass(frozen=True)
+class CreatedExperiment:
+    name: str
+    arms: pd.DataFrame  # arm, headline, channel, predicted_rate, prior_strength, prior_mean, prior_low, prior_high
+    prior: PriorChoice
+    notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class Allocation:
+    """How to split the next impressions (or the one draft to post next)."""
+
+    name: str
+    policy: str
+    impressions: int
+    arms: pd.DataFrame  # arm, headline, impressions, share
+    single: str | None  # the arm to post next when impressions == 1
+    notes: tuple[str, ...]
+
+
+@dataclass(frozen=True)
+class RecordSummary:
+    name: str
+    rows_read: int
+    added: int
+    duplicates: int
+    unchanged: int
+    impressions_added: int
+    clicks_added: int
+    derived_ids: int
+    event_ids: tuple[str, ...]
+    cumulative: bool
+    notes: tuple[str, ...] = ()
+
+    def line(self) -> str:
+        text = (
+            f"{self.name}: {self.rows_read} result row(s) read, {self.added} recorded "
+            f"(+{self.impressions_added:,} impressions, +{self.clicks_added:,} clicks), "
+            f"{self.duplicates} already recorded"
+        )
+        if self.cumulative:
+            text += f", {self.unchanged} unchanged totals"
+        return text
+
+
+@dataclass(frozen=True)
+class ExperimentStatus:
+    """Everything ``experiment status`` shows; ``arms`` has one row per arm."""
+
+    name: str
+    status: str
+    channel: str | None
+    created_at: str
+    policy: str
+    discount: float
+    arms: pd.DataFrame
+    decision: Decision
+    impressions: int
+    clicks: int
+    n_events: int
+    clicks_gained: float
+    warnings: tuple[str, ...]
+    prior: dict
+    settings: dict = field(repr=False, default_factory=dict)
+
+    def to_dict(self) -> dict:
+        arms = self.arms.astype(object).where(self.arms.notna(), None).to_dict(orient="records")
+        return {
+            "experiment": self.name,
+            "status": self.status,
+            "channel": self.channel,
+            "created_at": self.created_at,
+            "policy": self.policy,
+            "discount": self.discount,
+            "impressions": self.impressions,
+            "clicks": self.clicks,
+            "events": self.n_events,
+            "clicks_gained_vs_equal_split": self.clicks_gained,
+            "arms": jsonable(arms),
+            "decision": jsonable(asdict(self.decision)),
+            "warnings": list(self.warnings),
+            "prior": jsonable(self.prior),
+        }
+
+
+# --------------------------------------------------------------------------
+# Drafts -> arms.
+# --------------------------------------------------------------------------
+
+
+def read_drafts(path: str | Path) -> pd.DataFrame:
+    """A drafts CSV (``headline``; optional ``arm``, ``channel``, ``publish_at``, ``group``) as text cells.
+
+    Adds ``row``, the line number in the file (the header is line 1), so
+    problems can name it.
+    """
+    path = Path(path)
+    frame = _read_csv_text(path)
+    if "headline" not in frame.columns:
+        raise ContentlabError(
+            f"{path}: row 1 (header) has no 'headline' column; it has: {', '.join(frame.columns) or 'nothing'}. "
+            "A drafts file needs headline and may have arm, channel, publish_at and group."
+        )
+    return frame
+
+
+def normalise_drafts(
+    drafts: pd.DataFrame | Sequence[str],
+    *,
+    channel: str | None = None,
+    group: str | None = None,
+    source: str | None = None,
+) -> pd.DataFrame:
+    """Validated arms: ``arm, headline, channel, publish_at, row``.
+
+    ``drafts`` is a frame from :func:`read_drafts` (or any frame with a
+    ``headline`` column) or a list of headlines. Arms are named by the
+    ``arm`` column when given, else A, B, C, ... ``channel`` (when given)
+    applies to every arm. A file with several ``group`` values needs
+    ``group`` to say which drafts compete.
+    """
+    where = source or "drafts"
+    if isinstance(drafts, pd.DataFrame):
+        frame = drafts.copy()
+        if "headline" not in frame.columns:
+            raise ContentlabError(f"{where}: needs a 'headline' column.")
+    else:
+        if isinstance(drafts, str):
+            drafts = [drafts]
+        frame = pd.DataFrame({"headline": list(drafts)})
+    if "row" not in frame.columns:
+        frame["row"] = np.arange(len(frame)) + (2 if source else 1)
+    frame = frame.reset_index(drop=True)
+    for column in ("arm", "channel", "publish_at", "group"):
+        if column in frame.columns:
+            frame[column] = frame[column].map(lambda v: "" if _missing(v) else str(v).strip())
+    if "group" in frame.columns:
+        groups = [g for g in dict.fromkeys(frame["group"]) if g]
+        if group is not None:
+            if group not in groups:
+                raise ContentlabError(
+                    f"{where}: no drafts in group '{group}'; the groups are: {', '.join(groups) or '(none)'}."
+                )
+            frame = frame[frame["group"] == group].reset_index(drop=True)
+        elif len(groups) > 1:
+            raise ContentlabError(
+                f"{where}: the drafts belong to {len(groups)} groups ({', '.join(groups)}); an experiment compares "
+                "drafts of one post. Pass --group NAME to choose one."
+            )
+    elif group is not None:
+        raise ContentlabError(f"{where}: has no 'group' column, so --group '{group}' cannot select drafts.")
+
+    problems: list[str] = []
+
+    def here(i: int, column: str) -> str:
+        row = int(frame["row"].iat[i])
+        return f"{where}: row {row}, column '{column}'" if source else f"draft {row}"
+
+    headline = frame["headline"].map(clean_headline)
+    for i in np.flatnonzero((headline == "").to_numpy()):
+        problems.append(f"{here(i, 'headline')}: is empty after removing markup")
+    for i in np.flatnonzero(headline.str.len().to_numpy() > MAX_HEADLINE_CHARS):
+        problems.append(f"{here(i, 'headline')}: longer than {MAX_HEADLINE_CHARS} characters")
+    seen: dict[str, int] = {}
+    for i, text in enumerate(headline):
+        if text and text in seen:
+            problems.append(f"{here(i, 'headline')}: repeats the headline of {here(seen[text], 'headline').split(': ', 1)[-1]}")
+        seen.setdefault(text, i)
+
+    if "arm" in frame.columns and (frame["arm"] != "").any():
+        arms = frame["arm"]
+        for i in np.flatnonzero((arms == "").to_numpy()):
+            problems.append(f"{here(i, 'arm')}: is empty; name every arm or leave the column out")
+        for i, name in enumerate(arms):
+            if name and not ARM_PATTERN.fullmatch(name):
+                problems.append(
+                    f"{here(i, 'arm')}: '{_short(name)}' is not a usable arm name (letters, digits, '.', '_' "
+                    "or '-', up to 40 characters)"
+                )
+        for i in np.flatnonzero(arms.duplicated().to_numpy() & (arms != "").to_numpy()):
+            problems.append(f"{here(i, 'arm')}: '{arms.iat[i]}' is used by another draft too")
+    else:
+        arms = pd.Series([arm_label(i) for i in range(len(frame))])
+
+    n = len(frame)
+    if n < MIN_ARMS:
+        problems.append(f"{where}: an experiment needs at least {MIN_ARMS} drafts; got {n}")
+    if n > MAX_ARMS:
+        problems.append(f"{where}: at most {MAX_ARMS} drafts per experiment; got {n}")
+    if problems:
+        raise ContentlabError(_problem_line(problems, "no experiment was created"))
+
+    if channel is not None:
+        channels = pd.Series([channel.strip() or None] * n, dtype=object)
+    elif "channel" in frame.columns:
+        channels = frame["channel"].replace("", None)
+    else:
+        channels = pd.Series([None] * n, dtype=object)
+    publish = frame["publish_at"].replace("", None) if "publish_at" in frame.columns else pd.Series([None] * n, dtype=object)
+    return pd.DataFrame(
+        {
+            "arm": arms.to_numpy(dtype=object),
+            "headline": headline.to_numpy(dtype=object),
+            "channel": channels.to_numpy(dtype=object),
+            "publish_at": publish.to_numpy(dtype=object),
+            "row": frame["row"].to_numpy(),
+        }
+    )
+
+
+def arm_label(i: int) -> str:
+    """0 -> A, 25 -> Z, 26 -> AA: short names that are easy to type in ``record --arm``."""
+    label, i = "", i + 1
+    while i:
+        i, r = divmod(i - 1, 26)
+        label = chr(65 + r) + label
+    return label
+
+
+# --------------------------------------------------------------------------
+# Priors.
+# --------------------------------------------------------------------------
+
+
+def prior_table(predicted_rates: Sequence[float] | None, strength: float, n_arms: int) -> pd.DataFrame:
+    """Each arm's Beta prior as shown to the user: mean and 90% interval.
+
+    ``Beta(1 + m s, 1 + (1 - m) s)`` as in :mod:`contentlab.bandit`; with no
+    predictions or ``s = 0`` that is the flat Beta(1, 1).
+    """
+    from scipy import stats
+
+    m = None if predicted_rates is None else np.clip(np.asarray(predicted_rates, dtype=float), 1e-6, 1 - 1e-6)
+    a0, b0 = prior_params(m, float(strength), n_arms)
+    tail = (1 - PRIOR_INTERVAL) / 2
+    return pd.DataFrame(
+        {
+            "predicted_rate": np.full(n_arms, np.nan) if m is None else m,
+            "prior_strength": np.full(n_arms, float(strength) if m is not None else 0.0),
+            "prior_mean": a0 / (a0 + b0),
+            "prior_low": stats.beta.ppf(tail, a0, b0),
+            "prior_high": stats.beta.ppf(1 - tail, a0, b0),
+        }
+    )
+
+
+def replay_regret(
+    tests: pd.DataFrame,
+    strengths: Sequence[float],
+    *,
+    repeats: int = REPLAY_REPEATS,
+    seed: int = 0,
+    rounds: int = REPLAY_ROUNDS,
+    n_draws: int = REPLAY_DRAWS,
+) -> dict[float, np.ndarray]:
+    """Regret of Thompson sampling on past tests, per prior strength, as a ratio to an equal split.
+
+    ``tests`` has ``experiment_id, impressions, clicks, predicted_rate`` per
+    arm. As in benchmarks/replay_archive.py: each test's observed arm rates
+    are the truth and its total impressions the budget, split over
+    ``rounds`` rounds by the bandit's default policy with each arm's prior at
+    its predicted rate; regret is ``sum_k n_k (p_best - p_k)``, and the equal
+    split's is ``N (p_best - mean p)``. Every (strength, repeat) pair is
+    replayed as its own copy of the tests, all copies stacked into one array
+    per arm count so that the vectorised core runs once per round.
+    Returns ``{strength: ratio per repeat}``.
+    """
+    tests = tests.sort_values(["experiment_id"], kind="stable")
+    tests = tests.assign(rate=(tests["clicks"] / tests["impressions"]).to_numpy(dtype=float))
+    sizes = tests.groupby("experiment_id", sort=False)["rate"].transform("size")
+    strengths = [float(x) for x in strengths]
+    copies = len(strengths) * repeats
+    regret = np.zeros(copies)
+    equal = 0.0
+    for k, part in tests.groupby(sizes, sort=True):
+        k = int(k)
+        p = part["rate"].to_numpy().reshape(-1, k)
+        m = np.clip(part["predicted_rate"].to_numpy(dtype=float).reshape(-1, k), 1e-6, 1 - 1e-6)
+        budget = part["impressions"].to_numpy(dtype=np.int64).reshape(-1, k).sum(axis=1)
+        n_exp = len(p)
+        equal += float((budget * (p.max(axis=1) - p.mean(axis=1))).sum())
+        # prior_params gives one row for all experiments when the prior is flat.
+        priors = [[np.broadcast_to(x, (n_exp, k)) for x in prior_params(m, s, k)] for s in strengths]
+        a0 = np.concatenate([np.tile(a, (repeats, 1)) for a, _ in priors])
+        b0 = np.concatenate([np.tile(b, (repeats, 1)) for _, b in priors])
+        per_row = _replay_group(np.tile(p, (copies, 1)), np.tile(budget, copies), a0, b0,
+                                np.random.default_rng([int(seed), k]), rounds, n_draws)
+        regret += per_row.reshape(copies, n_exp).sum(axis=1)
+    ratio = regret / equal if equal > 0 else np.full(copies, np.nan)
+    return {s: ratio[i * repeats:(i + 1) * repeats] for i, s in enumerate(strengths)}
+
+
+def _replay_group(p, budget, a0, b0, rng, rounds: int, n_draws: int) -> np.ndarray:
+    """Replay rows of one arm count together; returns each row's regret."""
+    k = p.shape[1]
+    gap = p.max(axis=1, keepdims=True) - p
+    batch = np.maximum(1, np.ceil(budget / rounds)).astype(np.int64)
+    remaining = budget.astype(np.int64).copy()
+    impressions = np.zeros_like(p)
+    clicks = np.zeros_like(p)
+    regret = np.zeros(len(p))
+    min_share = min(DEFAULT_MIN_SHARE, 1.0 / k)
+    while True:
+        act = np.flatnonzero(remaining > 0)
+        if act.size == 0:
+            return regret
+        n = np.minimum(batch[act], remaining[act])
+        a = a0[act] + clicks[act]
+        b = b0[act] + impressions[act] - clicks[act]
+        prob, _ = posterior_summary(a, b, n_draws, rng)
+        share = allocation_shares(prob, policy="thompson", temper=DEFAULT_TEMPER, min_share=min_share)
+        alloc = split_impressions(share, n, rng)
+        impressions[act] += alloc
+        clicks[act] += rng.binomial(alloc, p[act])
+        remaining[act] -= n
+        regret[act] += (alloc * gap[act]).sum(axis=1)
+
+
+def choose_prior_strength(
+    history: pd.DataFrame,
+    *,
+    repeats: int = REPLAY_REPEATS,
+    rounds: int = REPLAY_ROUNDS,
+    n_draws: int = REPLAY_DRAWS,
+    min_tests: int = MIN_PAST_TESTS,
+) -> PriorChoice:
+    """How much the model's predictions should count as a prior, from the user's own history.
+
+    ``history`` has one row per past post: ``predicted_rate`` (the model's
+    out-of-fold prediction, so it never saw that post), ``impressions``,
+    ``clicks`` and, for posts that were arms of a test, ``experiment_id``.
+
+    1. Empirical Bayes: ``s_EB`` maximises the beta-binomial likelihood of the
+       real clicks around the predictions (:func:`bandit.fit_prior_strength`):
+       predictions that sit close to real rates give a large ``s``.
+    2. Cap: at most the median impressions of a past post, so the prior never
+       outweighs a typical post's own results.
+    3. Replay: Thompson sampling on the past tests with strengths
+       ``0, s/4, s`` (as benchmarks/replay_archive.py does on the archive);
+       a non-zero strength is kept only if it loses fewer clicks than the flat
+       prior in every run. Without enough past tests the prior cannot earn
+       its place and the arms start flat.
+    """
+    need = {"predicted_rate", "impressions", "clicks"}
+    if not need <= set(history.columns):
+        raise ContentlabError(f"choose_prior_strength needs columns {sorted(need)}; got {list(history.columns)}.")
+    h = history.copy()
+    h["predicted_rate"] = pd.to_numeric(h["predicted_rate"], errors="coerce")
+    ok = (
+        np.isfinite(h["predicted_rate"].to_numpy(dtype=float))
+        & h["clicks"].notna().to_numpy()
+        & (pd.to_numeric(h["impressions"], errors="coerce").fillna(0).to_numpy() > 0)
+    )
+    h = h[ok]
+    if len(h) < MIN_PAST_POSTS:
+        return PriorChoice(
+            0.0, "flat",
+            f"only {len(h)} past posts have out-of-fold predictions and clicks (at least {MIN_PAST_POSTS} needed "
+            "to judge the model), so the arms start flat",
+            n_posts=len(h),
+        )
+    m = np.clip(h["predicted_rate"].to_numpy(dtype=float), 1e-6, 1 - 1e-6)
+    n = h["impressions"].to_numpy(dtype=np.int64)
+    k = h["clicks"].to_numpy(dtype=np.int64)
+    s_eb = fit_prior_strength(m, n, k)
+    cap = float(np.median(n))
+    s = min(s_eb, cap)
+    base = dict(eb_strength=s_eb, cap=cap, n_posts=len(h))
+
+    tests = h[h["experiment_id"].notna()] if "experiment_id" in h.columns else h.iloc[:0]
+    if len(tests):
+        sizes = tests.groupby("experiment_id")["predicted_rate"].transform("size")
+        tests = tests[sizes >= 2]
+    ids = list(dict.fromkeys(tests["experiment_id"])) if len(tests) else []
+    if len(ids) > REPLAY_MAX_TESTS:  # the most recent ones (history is in time order)
+        ids = ids[-REPLAY_MAX_TESTS:]
+        tests = tests[tests["experiment_id"].isin(ids)]
+    fit_text = (
+        f"the empirical-Bayes fit of your {len(h):,} past posts around the model's out-of-fold predictions gives "
+        f"s_EB = {s_eb:,.0f} pseudo-impressions" + (f", capped at {cap:,.0f} (a typical post's impressions)" if s_eb > cap else "")
+    )
+    if len(ids) < min_tests:
+        return PriorChoice(
+            0.0, "flat",
+            f"{fit_text}; but only {len(ids)} past tests (posts sharing an experiment_id) are in the history, fewer "
+            f"than the {min_tests} needed to check by replay that the prior loses fewer clicks than a flat one. "
+            "Unchecked model priors made regret worse on the real archive, so the arms start flat",
+            n_tests=len(ids), **base,
+        )
+    candidates = [0.0, s / 4, s]
+    ratios = replay_regret(tests, candidates, repeats=repeats, rounds=rounds, n_draws=n_draws)
+    replay = {f"{c:.6g}": [round(float(x), 4) for x in ratios[c]] for c in candidates}
+    flat = ratios[0.0]
+    if not np.all(np.isfinite(flat)):
+        return PriorChoice(
+            0.0, "flat", f"{fit_text}; the past tests' arms all had equal rates, so the replay cannot tell priors apart",
+            replay=replay, n_tests=len(ids), **base,
+        )
+    best = min(candidates, key=lambda c: float(np.mean(ratios[c])))
+    summary = ", ".join(f"s = {c:,.0f}: {np.mean(ratios[c]):.3f}" for c in candidates)
+    replay_text = (
+        f"a replay of your {len(ids)} past tests (regret as a share of an equal split's, mean of {repeats} runs) "
+        f"gives {summary}"
+    )
+    if best > 0 and np.all(ratios[best] < flat):
+        return PriorChoice(
+            float(best), "model",
+            f"{fit_text}; {replay_text}; s = {best:,.0f} lost fewer clicks than the flat prior in every run, so it is used",
+            replay=replay, n_tests=len(ids), **base,
+        )
+    return PriorChoice(
+        0.0, "flat",
+        f"{fit_text}; {replay_text}; no model-informed strength beat the flat prior in every run, so the arms start "
+        "flat (the model's predictions are still shown)",
+        replay=replay, n_tests=len(ids), **base,
+    )
+
+
+def _model_inputs(ws: Workspace, arms: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame, int, list[str]] | None:
+    """The latest clicks model's predictions for the drafts and its out-of-fold predictions on history."""
+    row = ws.latest_model_row("clicks")
+    if row is None:
+        return None
+    model, _summary = ws.load_model("clicks")
+    drafts = arms[["headline", "channel", "publish_at"]].copy()
+    try:
+        from .scoring import prepare_drafts
+    except ModuleNotFoundError as exc:  # scoring not installed: no planned hours, channel times stand in
+        if exc.name != f"{__package__}.scoring":
+            raise
+        prepared = drafts[["headline", "channel"]]
+    else:
+        prepared = prepare_drafts(drafts, ws.timezone)
+    try:
+        pred = model.predict_frame(prepared)
+    except ContentlabError as exc:
+        raise ContentlabError(
+            f"The model cannot predict these drafts ({exc}). Pass --channel, or --flat-prior to start without the model."
+        ) from None
+    rates = np.asarray(pred["predicted_rate"], dtype=float)
+    notes = []
+    if row[3] != ws.fingerprint("clicks"):
+        notes.append("The model was learned before the latest changes to the history; run contentlab learn to refresh it.")
+    if "far_from_history" in pred.columns and bool(np.any(pred["far_from_history"])):
+        far = [a for a, f in zip(arms["arm"], pred["far_from_history"]) if f]
+        notes.append(
+            f"{_list(far)} {'is' if len(far) == 1 else 'are'} unlike the posts the model learned from; "
+            "its prediction is a rough guess."
+        )
+    return rates, _oof_history(model, ws), int(row[0]), notes
+
+
+def _oof_history(model, ws: Workspace) -> pd.DataFrame:
+    """Out-of-fold predictions joined to the stored posts' impressions, clicks and experiment ids."""
+    oof = getattr(model, "oof_", None)
+    if oof is None:
+        return pd.DataFrame(columns=["predicted_rate", "impressions", "clicks", "experiment_id"])
+    posts = ws.posts()[["post_id", "impressions", "clicks", "experiment_id"]]
+    if isinstance(oof, pd.Series):
+        oof = oof.rename("predicted_rate").rename_axis("post_id").reset_index()
+    oof = pd.DataFrame(oof)
+    if "post_id" not in oof.columns:
+        raise ContentlabError(
+            "The stored model's out-of-fold predictions carry no post ids; run contentlab learn again."
+        )
+    column = "predicted_rate" if "predicted_rate" in oof.columns else next(
+        (c for c in ("oof_rate", "rate", "prediction") if c in oof.columns), None
+    )
+    if column is None:
+        raise ContentlabError("The stored model's out-of-fold predictions have no predicted_rate; run contentlab learn again.")
+    joined = posts.merge(oof[["post_id", column]].rename(columns={column: "predicted_rate"}), on="post_id", how="inner")
+    return joined
+
+
+# --------------------------------------------------------------------------
+# Creating, listing and stopping experiments.
+# --------------------------------------------------------------------------
+
+
+def create_experiment(
+    ws: Workspace,
+    name: str,
+    drafts: pd.DataFrame | Sequence[str],
+    *,
+    flat_prior: bool = False,
+    channel: str | None = None,
+    group: str | None = None,
+    prior_means: Sequence[float] | None = None,
+    prior_strength: float | None = None,
+    policy: str = "thompson",
+    source: str | None = None,
+    seed: int | None = None,
+) -> CreatedExperiment:
+    """Create experiment ``name`` whose arms are ``drafts``, with priors from the latest model.
+
+    Priors, in order: ``flat_prior`` -> flat; ``prior_means`` given -> those
+    means with ``prior_strength`` (or the strength :func:`choose_prior_strength`
+    picks when it is None and a model exists); else the latest clicks model's
+    predicted rates with the strength :func:`choose_prior_strength` picks from
+    its out-of-fold predictions (``prior_strength`` overrides it); no model ->
+    flat, with a note.
+    """
+    _check_name(name)
+    policy = _policy(policy)
+    if prior_strength is not None and (not _is_real(prior_strength) or prior_strength < 0):
+        raise ContentlabError(f"prior strength must be a number of at least 0; got {prior_strength!r}.")
+    arms = normalise_drafts(drafts, channel=channel, group=group, source=source)
+    if ws.conn.execute("SELECT 1 FROM experiments WHERE name=?", (name,)).fetchone():
+        raise ContentlabError(
+            f"An experiment named '{name}' exists already; choose another name, or see it with: "
+            f"contentlab experiment status {name}"
+        )
+    notes: list[str] = []
+    predicted = None
+    if flat_prior:
+        prior = PriorChoice(0.0, "flat", "--flat-prior: every arm starts at the flat Beta(1, 1) prior")
+    elif prior_means is not None:
+        predicted = np.asarray(list(prior_means), dtype=float)
+        if predicted.shape != (len(arms),) or not np.all((predicted > 0) & (predicted < 1)):
+            raise ContentlabError(
+                f"prior means must be {len(arms)} rates strictly between 0 and 1, one per arm; got {list(prior_means)!r}."
+            )
+        s = 0.0 if prior_strength is None else float(prior_strength)
+        prior = PriorChoice(s, "given", f"prior means given by the caller, strength {s:g}")
+    else:
+        inputs = _model_inputs(ws, arms)
+        if inputs is None:
+            prior = PriorChoice(
+                0.0, "flat",
+                "no clicks model in the workspace (run contentlab learn), so every arm starts at the flat Beta(1, 1) prior",
+            )
+        else:
+            predicted, history, model_id, model_notes = inputs
+            notes += model_notes
+            predicted = np.clip(predicted, 1e-6, 1 - 1e-6)
+            choice = _cached_choice(ws, model_id) or choose_prior_strength(history)
+            choice = PriorChoice(**{**choice.to_dict(), "notes": tuple(choice.notes), "model_id": model_id})
+            if prior_strength is not None:
+                prior = PriorChoice(
+                    float(prior_strength), "user",
+                    f"prior strength {float(prior_strength):g} set by the user (the workspace's own choice would be "
+                    f"{choice.strength:g}: {choice.reason})",
+                    eb_strength=choice.eb_strength, cap=choice.cap, replay=choice.replay,
+                    n_posts=choice.n_posts, n_tests=choice.n_tests, model_id=model_id,
+                )
+            else:
+                prior = choice
+    table = prior_table(predicted, prior.strength if predicted is not None else 0.0, len(arms))
+    result = pd.concat([arms[["arm", "headline", "channel"]].reset_index(drop=True), table], axis=1)
+    common = {c for c in arms["channel"]}
+    exp_channel = next(iter(common)) if len(common) == 1 else None
+    settings = {
+        "policy": policy,
+        "seed": int(secrets.randbits(31) if seed is None else seed),
+        "prob_threshold": PROB_THRESHOLD,
+        "prior": prior.to_dict(),
+        "arm_meta": {
+            arm: {"channel": ch, "publish_at": pa}
+            for arm, ch, pa in zip(arms["arm"], arms["channel"], arms["publish_at"])
+        },
+        "source": source,
+    }
+    if prior.strength > 0 and predicted is not None:
+        notes.append(
+            "A model-informed prior is a starting guess from correlations in past posts, not a causal effect; "
+            "results soon outweigh it."
+        )
+    notes.append(TRUTH_CAUTION)
+    try:
+        with ws.conn:
+            ws.conn.execute(
+                "INSERT INTO experiments (name, created_at, channel, status, settings) VALUES (?, ?, ?, 'running', ?)",
+                (name, now_utc(), exp_channel, json.dumps(jsonable(settings))),
+            )
+            ws.conn.executemany(
+                "INSERT INTO arms (experiment, arm, headline, prior_mean, prior_strength) VALUES (?, ?, ?, ?, ?)",
+                [
+                    (name, arm, headline, None if predicted is None else float(m), float(s))
+                    for arm, headline, m, s in zip(
+                        result["arm"], result["headline"], result["predicted_rate"], result["prior_strength"]
+                    )
+                ],
+            )
+    except sqlite3.IntegrityError:  # another process created the same name a moment ago
+        raise ContentlabError(f"An experiment named '{name}' exists already; choose another name.") from None
+    return CreatedExperiment(name, result, prior, tuple(notes))
+
+
+def _cached_choice(ws: Workspace, model_id: int) -> PriorChoice | None:
+    """Reuse the strength chosen for another experiment with the same model (the replay is the slow part)."""
+    for (text,) in ws.conn.execute("SELECT settings FROM experiments ORDER BY created_at DESC"):
+        prior = json.loads(text).get("prior") or {}
+        if prior.get("model_id") == model_id and prior.get("source") in ("model", "flat") and prior.get("eb_strength") is not None:
+            known = {f.name for f in fields(PriorChoice)}
+            kept = {k: v for k, v in prior.items() if k in known}
+            kept["notes"] = tuple(kept.get("notes") or ())
+            return PriorChoice(**kept)
+    return None
+
+
+def list_experiments(ws: Workspace) -> pd.DataFrame:
+    """One row per experiment: status, arms, totals so far and the arm with the highest posterior mean."""
+    rows = ws.conn.execute(
+        """
+        SELECT e.name, e.created_at, e.channel, e.status,
+               (SELECT COUNT(*) FROM arms a WHERE a.experiment = e.name),
+               (SELECT COALESCE(SUM(impressions), 0) FROM observations o WHERE o.experiment = e.name),
+               (SELECT COALESCE(SUM(clicks), 0) FROM observations o WHERE o.experiment = e.name)
+        FROM experiments e ORDER BY e.created_at, e.name
+        """
+    ).fetchall()
+    frame = pd.DataFrame(rows, columns=["experiment", "created_at", "channel", "status", "arms", "impressions", "clicks"])
+    leaders = []
+    for name in frame["experiment"]:
+        exp = _load(ws, name)
+        totals = _totals(ws, name, exp["arms"]["arm"].tolist())
+        a0, b0 = _prior_ab(exp)
+        mean = (a0 + totals["clicks"].to_numpy()) / (a0 + b0 + totals["impressions"].to_numpy())
+        leaders.append(exp["arms"]["arm"].iat[int(np.argmax(mean))] if totals["impressions"].sum() > 0 else None)
+    frame["leader"] = leaders
+    return frame
+
+
+def stop_experiment(ws: Workspace, name: str, *, winner: str | None = None) -> dict:
+    """Mark ``name`` stopped (``next`` then refuses); ``winner`` defaults to the current leader."""
+    exp = _load(ws, name)
+    arms = exp["arms"]["arm"].tolist()
+    status = experiment_status(ws, name)
+    if winner is None:
+        winner = status.decision.leader
+    elif winner not in arms:
+        raise ContentlabError(f"Unknown arm '{winner}' for experiment {name}; its arms are: {', '.join(arms)}.")
+    settings = dict(exp["settings"])
+    settings.update(
+        winner=winner, stopped_at=now_utc(), stop_reason=status.decision.reason,
+        stopped_with={"impressions": status.impressions, "clicks": status.clicks,
+                      "prob_best": status.decision.prob_best if winner == status.decision.leader else None},
+    )
+    with ws.conn:
+        ws.conn.execute(
+            "UPDATE experiments SET status='stopped', settings=? WHERE name=?", (json.dumps(settings), name)
+        )
+    return {"experiment": name, "winner": winner, "decision": status.decision, "stopped_early": not status.decision.stop}
+
+
+# --------------------------------------------------------------------------
+# Allocation.
+# --------------------------------------------------------------------------
+
+
+def next_allocation(
+    ws: Workspace, name: str, n: int = 1000, policy: str | None = None, *, single: bool = False
+) -> Allocation:
+    """How to split the next ``n`` impressions (``single``: the one draft to post next).
+
+    The same experiment with the same results gives the same answer (the
+    experiment's seed and the number of results recorded seed the draws).
+    """
+    exp = _load(ws, name)
+    if exp["status"] == "stopped":
+        winner = exp["settings"].get("winner")
+        raise ContentlabError(
+            f"Experiment {name} was stopped{' with ' + winner + ' as the winner' if winner else ''}; "
+            "there is nothing to allocate. Create a new experiment to test more drafts."
+        )
+    if single:
+        n = 1
+    if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
+        raise ContentlabError(f"--impressions must be a whole number of at least 1; got {n!r}.")
+    use = _policy(policy or exp["settings"].get("policy", "thompson"))
+    bandit = _bandit(ws, exp, policy=use)
+    counts = bandit.allocate(int(n))
+    arms = exp["arms"]
+    frame = pd.DataFrame(
+        {
+            "arm": arms["arm"].to_numpy(),
+            "headline": arms["headline"].to_numpy(),
+            "impressions": [counts[a] for a in arms["arm"]],
+        }
+    )
+    frame["share"] = frame["impressions"] / float(n)
+    notes = []
+    chosen = None
+    if n == 1:
+        chosen = next(a for a, c in counts.items() if c == 1)
+        notes.append(SINGLE_CAUTION)
+    if bandit.impressions_.sum() == 0:
+        notes.append("No results yet: the split follows the priors alone.")
+    return Allocation(name, use, int(n), frame, chosen, tuple(notes))
+
+
+# --------------------------------------------------------------------------
+# Recording results.
+# --------------------------------------------------------------------------
+
+
+def read_results(path: str | Path) -> pd.DataFrame:
+    """A results CSV (``arm, impressions, clicks``; optional ``at``, ``event_id``) as text cells with ``row``."""
+    path = Path(path)
+    frame = _read_csv_text(path)
+    missing = [c for c in ("arm", "impressions", "clicks") if c not in frame.columns]
+    if missing:
+        raise ContentlabError(
+            f"{path}: row 1 (header), missing column(s): {', '.join(missing)}. A results file has arm, impressions, "
+            f"clicks and optionally at and event_id; it has: {', '.join(frame.columns)}."
+        )
+    return frame
+
+
+def record_results(
+    ws: Workspace,
+    name: str,
+    frame: pd.DataFrame,
+    cumulative: bool = False,
+    source_file: str | None = None,
+) -> RecordSummary:
+    """Add results to experiment ``name`` in one transaction; all rows land or none.
+
+    ``frame`` has ``arm, impressions, clicks`` and optionally ``at`` (ISO
+    8601; without an offset it is local time in the workspace's time zone;
+    missing means now) and ``event_id``. Rows without an event id get a
+    deterministic one: from the file name, the row's cells and its row number
+    for a file; from the arm, time and values otherwise. An event id already
+    stored with the same values is skipped, so replaying a file changes
+    nothing; with different values it is an error.
+
+    ``cumulative``: the figures are totals so far per arm, turned into
+    increments against what is stored (in time order, then row order); a
+    total that goes down is an error.
+    """
+    frame = frame.reset_index(drop=True)
+    label = Path(source_file).name if source_file else None
+    exp = _load(ws, name)
+    clean, derived = _validate_results(frame, exp, ws, source_file, label, cumulative)
+    conn = ws.conn
+    if conn.in_transaction:
+        conn.commit()
+    # Take the write lock before reading anything, so concurrent calls queue
+    # here and every one sees the totals the previous one committed. The
+    # locked part is plain Python on lists: it runs once per call, in series.
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        summary = _record_locked(ws, exp, clean, cumulative, source_file, derived)
+        conn.commit()
+    except BaseException:
+        conn.rollback()
+        raise
+    return summary
+
+
+def _validate_results(frame, exp, ws, source_file, label, cumulative):
+    """Parse and check every row (no database writes); derive missing event ids."""
+    name = exp["name"]
+    known = exp["arms"]["arm"].tolist()
+    for column in ("arm", "impressions", "clicks"):
+        if column not in frame.columns:
+            raise ContentlabError(f"{source_file or 'results'}: needs a column '{column}'.")
+    n = len(frame)
+    if n == 0:
+        raise ContentlabError(f"{source_file or 'results'}: has no rows; nothing was recorded.")
+    rows = frame["row"].to_numpy() if "row" in frame.columns else np.arange(n) + (2 if source_file else 1)
+    single = source_file is None and n == 1
+    problems: list[str] = []
+
+    def here(i: int, column: str) -> str:
+        if single:
+            return f"--{column.replace('_', '-')}"
+        prefix = f"{source_file}: " if source_file else ""
+        return f"{prefix}row {int(rows[i])}, column '{column}'"
+
+    text = {c: _text_cells(frame[c]) for c in frame.columns if c in RESULT_COLUMNS}
+    arm = text["arm"]
+    known_set = set(known)
+    for i in np.flatnonzero(~arm.isin(known_set).to_numpy()):
+        shown = f"'{_short(arm.iat[i])}'" if arm.iat[i] else "(empty)"
+        problems.append(f"{here(i, 'arm')}: {shown} is not an arm of {name}; its arms are {', '.join(known)}")
+    # The import's own count parser, so results and post histories are held to the same rules.
+    from .ingest import _count_column
+
+    cells = pd.DataFrame({c: text[c] for c in ("impressions", "clicks")})
+    found: list[tuple[int, str, str]] = []
+    counts = {c: _count_column(cells, c, rows, found, source_file or "")[0] for c in ("impressions", "clicks")}
+    problems += [f"{here(i, column)}: {reason}" for i, column, reason in found]
+    over = counts["clicks"] > counts["impressions"]
+    for i in np.flatnonzero(over):
+        problems.append(
+            f"{here(i, 'clicks')}: {counts['clicks'][i]} clicks is more than its {counts['impressions'][i]} impressions"
+        )
+    default_at = None
+    if "at" in text and (text["at"] != "").any():
+        at_text = text["at"]
+        from .ingest import parse_times
+
+        given = (at_text != "").to_numpy()
+        stored, _has_time, failed = parse_times(at_text, ws.timezone)
+        for i in np.flatnonzero(failed & given):
+            problems.append(
+                f"{here(i, 'at')}: '{_short(at_text.iat[i])}' is not an ISO 8601 date or date-time "
+                "(e.g. 2026-03-14T09:30 or 2026-03-14T09:30:00+01:00)"
+            )
+        default_at = _now_precise()
+        at = np.where(given, stored.to_numpy(dtype=object), default_at)
+    else:
+        default_at = _now_precise()
+        at = np.full(n, default_at, dtype=object)
+    if problems:
+        raise ContentlabError(_problem_line(problems, "nothing was recorded"))
+
+    ids = text["event_id"] if "event_id" in text else pd.Series([""] * n)
+    long_ids = np.flatnonzero(ids.str.len().to_numpy() > MAX_EVENT_ID_CHARS)
+    if long_ids.size:
+        raise ContentlabError(_problem_line(
+            [f"{here(i, 'event_id')}: longer than {MAX_EVENT_ID_CHARS} characters" for i in long_ids],
+            "nothing was recorded",
+        ))
+    missing_id = (ids == "").to_numpy()
+    event_id = ids.to_numpy(dtype=object).copy()
+    if missing_id.any():
+        if source_file:
+            cols = [c for c in frame.columns if c != "row"]
+            cells = ["\x1f".join(t) for t in zip(*(_text_cells(frame[c]).tolist() for c in cols))]
+            for i in np.flatnonzero(missing_id):
+                event_id[i] = "f-" + _digest(f"{label}\x1e{int(rows[i])}\x1e{cells[i]}")
+        else:
+            kind = "total" if cumulative else "increment"
+            for i in np.flatnonzero(missing_id):
+                event_id[i] = "v-" + _digest(
+                    f"{arm.iat[i]}\x1e{at[i]}\x1e{counts['impressions'][i]}\x1e{counts['clicks'][i]}\x1e{kind}"
+                )
+    clean = pd.DataFrame(
+        {
+            "event_id": event_id,
+            "arm": arm.to_numpy(dtype=object),
+            "at": at,
+            "impressions": counts["impressions"],
+            "clicks": counts["clicks"],
+            "row": rows,
+        }
+    )
+    # The same id twice in one input: fine when identical, an error otherwise.
+    dup = clean["event_id"].duplicated(keep=False).to_numpy()
+    if dup.any():
+        sub = clean[dup]
+        first = sub.drop_duplicates("event_id")
+        merged = sub.merge(first, on="event_id", suffixes=("", "_first"))
+        differ = (
+            (merged["arm"] != merged["arm_first"])
+            | (merged["impressions"] != merged["impressions_first"])
+            | (merged["clicks"] != merged["clicks_first"])
+        ).to_numpy()
+        if differ.any():
+            bad = merged[differ]
+            msgs = [
+                f"{here(int(np.flatnonzero(rows == r)[0]), 'event_id')}: '{_short(e)}' is also used by row {int(r0)} with different values"
+                for e, r, r0 in zip(bad["event_id"], bad["row"], bad["row_first"])
+            ]
+            raise ContentlabError(_problem_line(msgs, "nothing was recorded"))
+    return clean, int(missing_id.sum())
+
+
+def _record_locked(ws, exp, clean, cumulative, source_file, derived) -> RecordSummary:
+    conn = ws.conn
+    name = exp["name"]
+    ids = clean["event_id"].tolist()
+    arms = clean["arm"].tolist()
+    ats = clean["at"].tolist()
+    ns = clean["impressions"].tolist()
+    ks = clean["clicks"].tolist()
+    rows = clean["row"].tolist()
+    first: dict[str, int] = {}
+    for i, e in enumerate(ids):
+        first.setdefault(e, i)
+    order = list(first.values())  # identical repeats within the input were checked; keep the first
+    stored = _stored_events(conn, name, list(first))
+    where = f"{source_file}: " if source_file else ""
+    fresh, conflicts = [], []
+    for i in order:
+        old = stored.get(ids[i])
+        if old is None:
+            fresh.append(i)
+        elif not cumulative and old != (arms[i], ns[i], ks[i]):
+            conflicts.append(
+                f"{where}row {rows[i]}: event id '{_short(ids[i])}' is already recorded with different values "
+                f"({old[0]}: {old[1]:,} impressions, {old[2]:,} clicks)"
+            )
+    if conflicts:
+        raise ContentlabError(_problem_line(conflicts, "nothing was recorded") + " Give corrected results a new event id.")
+    items = [(ids[i], arms[i], ats[i], ns[i], ks[i], rows[i]) for i in fresh]
+    unchanged = 0
+    if cumulative and items:
+        items, unchanged = _to_increments(conn, name, items, where)
+    if items:
+        conn.executemany(
+            "INSERT INTO observations (experiment, event_id, arm, at, impressions, clicks) VALUES (?, ?, ?, ?, ?, ?)",
+            [(name, e, a, t, n, k) for e, a, t, n, k, _ in items],
+        )
+        _sync_posts(ws, exp, sorted({it[1] for it in items}))
+    notes = []
+    if derived and source_file is None and len(ids) == 1:
+        notes.append(
+            f"No --event-id given: the event id {ids[0]} was derived from the arm, time and values, "
+            "so repeating this exact call (same --at) changes nothing."
+        )
+    elif derived:
+        notes.append(
+            f"{derived} row(s) had no event_id: ids were derived from the file name, row number and cells, so "
+            "replaying the same file changes nothing."
+        )
+    return RecordSummary(
+        name=name,
+        rows_read=len(ids),
+        added=len(items),
+        duplicates=len(ids) - len(fresh),
+        unchanged=unchanged,
+        impressions_added=int(sum(it[3] for it in items)),
+        clicks_added=int(sum(it[4] for it in items)),
+        derived_ids=derived,
+        event_ids=tuple(it[0] for it in items) if len(items) <= 20 else (),
+        cumulative=cumulative,
+        notes=tuple(notes),
+    )
+
+
+def _stored_events(conn, name: str, ids: list[str]) -> dict[str, tuple[str, int, int]]:
+    """Stored observations among ``ids``: event id -> (arm, impressions, clicks)."""
+    if len(ids) > 900:  # SQLite's bound-parameter limit: read the experiment's events instead
+        cur = conn.execute("SELECT event_id, arm, impressions, clicks FROM observations WHERE experiment=?", (name,))
+    else:
+        marks = ",".join("?" * len(ids))
+        cur = conn.execute(
+            f"SELECT event_id, arm, impressions, clicks FROM observations WHERE experiment=? AND event_id IN ({marks})",
+            [name, *ids],
+        )
+    return {e: (a, n, k) for e, a, n, k in cur}
+
+
+def _to_increments(conn, name: str, items: list[tuple], where: str) -> tuple[list[tuple], int]:
+    """Cumulative totals -> increments per arm, in time then row order; a total that goes down is an error.
+
+    Stored times are UTC ISO text (date, seconds or microseconds), whose text
+    order is their time order.
+    """
+    last = {
+        arm: (int(n), int(k))
+        for arm, n, k in conn.execute(
+            "SELECT arm, SUM(impressions), SUM(clicks) FROM observations WHERE experiment=? GROUP BY arm", (name,)
+        )
+    }
+    from_db = set(last)
+    out, problems, unchanged = [], [], 0
+    for e, arm, at, n, k, row in sorted(items, key=lambda it: (it[1], it[2], it[5])):
+        pn, pk = last.get(arm, (0, 0))
+        earlier = "the total already recorded" if arm in from_db else "the total in an earlier row"
+        dn, dk = n - pn, k - pk
+        if dn < 0 or dk < 0:
+            what, now, before = ("impressions", n, pn) if dn < 0 else ("clicks", k, pk)
+            problems.append(
+                f"{where}row {row}, column '{what}': arm {arm}'s cumulative total goes down ({now:,} after "
+                f"{before:,} in {earlier}); totals can only grow (if these are increments, leave out --cumulative)"
+            )
+        elif dk > dn:
+            problems.append(
+                f"{where}row {row}, column 'clicks': arm {arm}'s totals add {dk:,} clicks but only {dn:,} "
+                f"impressions since {earlier}"
+            )
+        elif dn == 0 and dk == 0:
+            unchanged += 1
+        else:
+            out.append((e, arm, at, dn, dk, row))
+        last[arm] = (n, k)
+        from_db.discard(arm)
+    if problems:
+        raise ContentlabError(_problem_line(problems, "nothing was recorded"))
+    return out, unchanged
+
+
+def _sync_posts(ws: Workspace, exp: dict, arms: list[str]) -> None:
+    """One post per arm with its running totals, so the next ``learn`` learns from them."""
+    name = exp["name"]
+    meta = exp["settings"].get("arm_meta", {})
+    marks = ",".join("?" * len(arms))
+    rows = ws.conn.execute(
+        "SELECT arm, SUM(impressions), SUM(clicks), MIN(at) FROM observations "
+        f"WHERE experiment=? AND arm IN ({marks}) GROUP BY arm",
+        [name, *arms],
+    ).fetchall()
+    headline = dict(zip(exp["arms"]["arm"], exp["arms"]["headline"]))
+    records = []
+    for arm, n, k, first_at in rows:
+        info = meta.get(arm, {})
+        published, has_time = _post_time(info.get("publish_at"), first_at, ws.timezone)
+        records.append(
+            {
+                "post_id": f"{name}:{arm}",
+                "published_at": published,
+                "has_time": has_time,
+                "headline": headline[arm],
+                "impressions": int(n),
+                "clicks": int(k),
+                "engagements": None,
+                "channel": info.get("channel") or exp["channel"],
+                "body": None,
+                "experiment_id": name,
+                "image_id": None,
+                "cost": None,
+            }
+        )
+    if records:
+        ws.upsert_posts(pd.DataFrame.from_records(records), source="experiment")
+
+
+def _post_time(publish_at: str | None, first_at: str, timezone: str) -> tuple[str, int]:
+    """The draft's planned publish time if it was given, else when its first results came in."""
+    if publish_at:
+        from .ingest import parse_times
+
+        stored, has_time, failed = parse_times(pd.Series([publish_at]), timezone)
+        if not failed[0]:
+            return str(stored.iat[0]), int(has_time[0])
+    if len(first_at) <= 10:
+        return first_at, 0
+    return first_at[:19] + "+00:00", 1
+
+
+# --------------------------------------------------------------------------
+# Status and stopping.
+# --------------------------------------------------------------------------
+
+
+def experiment_status(
+    ws: Workspace,
+    name: str,
+    *,
+    discount: float | None = None,
+    loss_threshold: float | None = None,
+    prob_threshold: float | None = None,
+) -> ExperimentStatus:
+    """Per-arm results, posterior, probability of being best and expected loss, with a stopping recommendation.
+
+    ``discount`` (0, 1]: each recording round (distinct event time, oldest
+    first) multiplies earlier results by it, for rates that drift.
+    ``loss_threshold``: stop when choosing the leader now gives up less than
+    this much click-through rate in expectation (default 1% of the leader's
+    posterior mean). ``prob_threshold``: stop when the leader is best with at
+    least this probability (default 0.95).
+    """
+    exp = _load(ws, name)
+    settings = exp["settings"]
+    d = 1.0 if discount is None else discount
+    pt = settings.get("prob_threshold", PROB_THRESHOLD) if prob_threshold is None else prob_threshold
+    bandit = _bandit(ws, exp, discount=d)
+    arms = exp["arms"]
+    names = arms["arm"].tolist()
+    totals = _totals(ws, name, names)
+    n = totals["impressions"].to_numpy(dtype=np.int64)
+    k = totals["clicks"].to_numpy(dtype=np.int64)
+    low, high = wilson_interval(k, n)
+    params = bandit.posterior_params()
+    a = np.array([params[x][0] for x in names])
+    b = np.array([params[x][1] for x in names])
+    post_mean = a / (a + b)
+    prob = bandit.prob_best()
+    loss = bandit.expected_loss()
+    decision = bandit.decision(prob_threshold=pt, loss_threshold=loss_threshold)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rate = np.where(n > 0, k / np.maximum(n, 1), np.nan)
+    frame = pd.DataFrame(
+        {
+            "arm": names,
+            "headline": arms["headline"].to_numpy(),
+            "impressions": n,
+            "clicks": k,
+            "rate": rate,
+            "rate_low": np.where(n > 0, low, np.nan),
+            "rate_high": np.where(n > 0, high, np.nan),
+            "prior_mean": arms["prior_mean"].to_numpy(dtype=float),
+            "prior_strength": arms["prior_strength"].to_numpy(dtype=float),
+            "posterior_mean": post_mean,
+            "prob_best": [prob[x] for x in names],
+            "expected_loss": [loss[x] for x in names],
+        }
+    )
+    # Clicks gained against showing every arm equally often: what the arms
+    # earned at their posterior means minus what the same impressions would
+    # have earned at the average arm's.
+    gained = float((n * post_mean).sum() - n.sum() * post_mean.mean())
+    warnings = list(decision.warnings)
+    few = [x for x, c in zip(names, k) if c < MIN_CLICKS and x != decision.leader]
+    if n.sum() > 0 and few:
+        warnings.append(
+            f"{_list(few)} {'has' if len(few) == 1 else 'have'} fewer than {MIN_CLICKS} clicks: evidence is still "
+            "thin there (common practice)."
+        )
+    warnings.append(PEEKING_CAUTION)
+    drift = _drift_warning(ws, name, names, d)
+    if drift:
+        warnings.append(drift)
+    if d < 1:
+        warnings.append(
+            f"Older results are discounted: each recording round multiplies earlier results by {d:g}, so the "
+            "probabilities above rest on fewer effective impressions than the totals show."
+        )
+    strength = float(arms["prior_strength"].max()) if len(arms) else 0.0
+    if strength > 0 and n.size and n.min() < strength:
+        warnings.append(
+            f"The model's prior (worth {strength:,.0f} impressions per arm) still weighs more than some arms' results."
+        )
+    if exp["status"] == "stopped":
+        warnings.insert(0, f"This experiment was stopped on {settings.get('stopped_at', '?')} with "
+                           f"{settings.get('winner', '?')} as the winner; figures include any results recorded since.")
+    if decision.stop:
+        warnings.append(TRUTH_CAUTION)
+    n_events = ws.conn.execute("SELECT COUNT(*) FROM observations WHERE experiment=?", (name,)).fetchone()[0]
+    return ExperimentStatus(
+        name=name,
+        status=exp["status"],
+        channel=exp["channel"],
+        created_at=exp["created_at"],
+        policy=settings.get("policy", "thompson"),
+        discount=d,
+        arms=frame,
+        decision=decision,
+        impressions=int(n.sum()),
+        clicks=int(k.sum()),
+        n_events=int(n_events),
+        clicks_gained=gained,
+        warnings=tuple(warnings),
+        prior=settings.get("prior", {}),
+        settings=settings,
+    )
+
+
+def _drift_warning(ws: Workspace, name: str, names: list[str], discount: float) -> str | None:
+    """Compare each arm's earlier half of impressions with its later half (two-proportion z-test)."""
+    from .stats import two_proportion_ztest
+
+    obs = pd.read_sql_query(
+        "SELECT arm, at, impressions, clicks FROM observations WHERE experiment=? AND impressions > 0",
+        ws.conn, params=(name,),
+    )
+    if obs.empty:
+        return None
+    obs["_t"] = pd.to_datetime(obs["at"], format="ISO8601", utc=True)
+    found = []
+    tested = 0
+    for arm, part in obs.sort_values(["_t"], kind="stable").groupby("arm", sort=False):
+        if part["_t"].nunique() < 2:
+            continue
+        cum = part["impressions"].cumsum().to_numpy()
+        early = cum <= cum[-1] / 2
+        if not early.any() or early.all():
+            early = np.arange(len(part)) < len(part) // 2
+        n1, k1 = part["impressions"][early].sum(), part["clicks"][early].sum()
+        n2, k2 = part["impressions"][~early].sum(), part["clicks"][~early].sum()
+        if n1 == 0 or n2 == 0:
+            continue
+        tested += 1
+        _z, p = two_proportion_ztest(k1, n1, k2, n2)
+        found.append((p, arm, k1 / n1, k2 / n2))
+    if not found:
+        return None
+    p, arm, r1, r2 = min(found)
+    if p >= DRIFT_ALPHA / tested:
+        return None
+    hint = "" if discount < 1 else " Consider --discount 0.9 to down-weight older results."
+    return (
+        f"Rates may be drifting: {arm}'s click-through rate went from {r1:.2%} in its earlier impressions to "
+        f"{r2:.2%} in its later ones (two-proportion z-test p = {p:.2g}). Old results may no longer describe the "
+        f"audience.{hint}"
+    )
+
+
+# --------------------------------------------------------------------------
+# Loading experiments into a bandit.
+# --------------------------------------------------------------------------
+
+
+def _load(ws: Workspace, name: str) -> dict:
+    row = ws.conn.execute(
+        "SELECT name, created_at, channel, status, settings FROM experiments WHERE name=?", (name,)
+    ).fetchone()
+    if row is None:
+        names = [r[0] for r in ws.conn.execute("SELECT name FROM experiments ORDER BY name LIMIT 20")]
+        hint = f" The experiments are: {', '.join(names)}." if names else " Create one with: contentlab experiment new NAME --drafts drafts.csv"
+        raise ContentlabError(f"No experiment named '{name}' in the workspace at {ws.path}.{hint}")
+    rows = ws.conn.execute(
+        "SELECT arm, headline, prior_mean, prior_strength FROM arms WHERE experiment=? ORDER BY rowid", (name,)
+    ).fetchall()
+    arms = pd.DataFrame(rows, columns=["arm", "headline", "prior_mean", "prior_strength"])
+    arms["prior_mean"] = arms["prior_mean"].astype(float)
+    arms["prior_strength"] = arms["prior_strength"].astype(float)
+    return {
+        "name": row[0], "created_at": row[1], "channel": row[2], "status": row[3],
+        "settings": json.loads(row[4] or "{}"), "arms": arms,
+    }
+
+
+def _totals(ws: Workspace, name: str, names: list[str]) -> pd.DataFrame:
+    rows = ws.conn.execute(
+        "SELECT arm, SUM(impressions), SUM(clicks) FROM observations WHERE experiment=? GROUP BY arm", (name,)
+    ).fetchall()
+    got = {arm: (int(n), int(k)) for arm, n, k in rows}
+    return pd.DataFrame(
+        {"arm": names, "impressions": [got.get(a, (0, 0))[0] for a in names], "clicks": [got.get(a, (0, 0))[1] for a in names]}
+    )
+
+
+def _prior_ab(exp: dict) -> tuple[np.ndarray, np.ndarray]:
+    arms = exp["arms"]
+    means = arms["prior_mean"].to_numpy(dtype=float)
+    strength = float(arms["prior_strength"].max()) if len(arms) else 0.0
+    if not np.all(np.isfinite(means)):
+        return prior_params(None, 0.0, len(arms))
+    return prior_params(means, strength, len(arms))
+
+
+def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: float = 1.0) -> ThompsonBandit:
+    """The experiment's bandit with every recorded result, discounted by round (distinct event time) if asked."""
+    arms = exp["arms"]
+    names = arms["arm"].tolist()
+    settings = exp["settings"]
+    means = arms["prior_mean"].to_numpy(dtype=float)
+    strength = float(arms["prior_strength"].max()) if len(arms) else 0.0
+    use_means = np.all(np.isfinite(means)) and strength > 0
+    if not (_is_real(discount) and 0 < discount <= 1):
+        raise ContentlabError(f"--discount must be a number in (0, 1]; got {discount!r}.")
+    if discount == 1.0:
+        totals = _totals(ws, exp["name"], names)
+        n = totals["impressions"].to_numpy(dtype=float)
+        k = totals["clicks"].to_numpy(dtype=float)
+        n_updates = ws.conn.execute(
+            "SELECT COUNT(*) FROM observations WHERE experiment=?", (exp["name"],)
+        ).fetchone()[0]
+    else:
+        obs = pd.read_sql_query(
+            "SELECT arm, at, impressions, clicks FROM observations WHERE experiment=?", ws.conn, params=(exp["name"],)
+        )
+        if obs.empty:
+            n = np.zeros(len(names))
+            k = np.zeros(len(names))
+            n_updates = 0
+        else:
+            # Equivalent to one update_many per round in time order: a round r
+            # rounds before the last weighs discount ** r.
+            t = pd.to_datetime(obs["at"], format="ISO8601", utc=True)
+            rank = t.rank(method="dense").to_numpy() - 1
+            weight = discount ** (rank.max() - rank)
+            index = {a: i for i, a in enumerate(names)}
+            pos = obs["arm"].map(index).to_numpy()
+            n = np.bincount(pos, weights=obs["impressions"].to_numpy() * weight, minlength=len(names))
+            k = np.bincount(pos, weights=obs["clicks"].to_numpy() * weight, minlength=len(names))
+            n_updates = len(obs)
+    params = {
+        "arms": names,
+        "prior_means": means.tolist() if use_means else None,
+        "prior_strength": strength if use_means else 0.0,
+        "policy": policy or _policy(settings.get("policy", "thompson")),
+        "top_two_beta": 0.5,
+        "min_share": min(DEFAULT_MIN_SHARE, 1.0 / len(names)),
+        "temper": DEFAULT_TEMPER,
+        "discount": float(discount),
+        "n_draws": DEFAULT_N_DRAWS,
+        "random_state": int(settings.get("seed", 0)),
+    }
+    state = {"impressions": n.tolist(), "clicks": k.tolist(), "n_updates": int(n_updates)}
+    return ThompsonBandit.from_dict({"format": "contentlab.bandit/1", "params": params, "state": state})
+
+
+# --------------------------------------------------------------------------
+# Small helpers.
+# --------------------------------------------------------------------------
+
+
+def _read_csv_text(path: Path) -> pd.DataFrame:
+    from .ingest import read_text, sniff_delimiter
+
+    text = read_text(path)
+    if not text.strip():
+        raise ContentlabError(f"{path}: the file is empty; it needs a header row and at least one row.")
+    try:
+        frame = pd.read_csv(
+            io.StringIO(text), sep=sniff_delimiter(text), dtype=str, keep_default_na=False,
+            skipinitialspace=True, engine="c",
+        )
+    except (pd.errors.ParserError, ValueError) as exc:
+        raise ContentlabError(f"{path}: cannot be read as CSV ({exc}).") from None
+    frame.columns = [str(c).strip().lower() for c in frame.columns]
+    frame["row"] = np.arange(len(frame)) + 2
+    return frame
+
+
+def _text_cells(column: pd.Series) -> pd.Series:
+    """Cells as stripped text, missing ones as ''."""
+    missing = column.isna().to_numpy()
+    text = column.astype(str).str.strip()
+    if missing.any():
+        text = text.where(~missing, "")
+    return text.astype(object)
+
+
+def _problem_line(problems: list[str], outcome: str, limit: int = 3) -> str:
+    """Problems on one line: the first few, then how many more."""
+    shown = "; ".join(problems[:limit])
+    more = f" (and {len(problems) - limit} more)" if len(problems) > limit else ""
+    return f"{shown}{more}; {outcome}."
+
+
+def _check_name(name: str) -> None:
+    if not isinstance(name, str) or not NAME_PATTERN.fullmatch(name):
+        raise ContentlabError(
+            f"'{name}' is not a usable experiment name: use letters, digits, '.', '_' or '-' (up to 80, starting "
+            "with a letter or digit), e.g. spring-launch."
+        )
+
+
+def _policy(policy: str) -> str:
+    key = POLICY_ALIASES.get(str(policy).strip().lower())
+    if key is None:
+        raise ContentlabError(f"policy must be 'thompson' or 'top-two'; got {policy!r}.")
+    return key
+
+
+def _now_precise() -> str:
+    """Now in UTC to the microsecond, so two calls a moment apart are two rounds (and two derived ids)."""
+    from datetime import datetime, timezone
+
+    return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%f+00:00")
+
+
+def _digest(text: str) -> str:
+    return hashlib.blake2b(text.encode("utf-8"), digest_size=10).hexdigest()
+
+
+def _missing(v: Any) -> bool:
+    return v is None or (isinstance(v, float) and math.isnan(v)) or v is pd.NA
+
+
+def _is_real(v: Any) -> bool:
+    return isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def _list(items: list[str]) -> str:
+    return items[0] if len(items) == 1 else ", ".join(items[:-1]) + " and " + items[-1]
+
+
+def jsonable(obj: Any) -> Any:
+    """Plain JSON values all the way down: numpy scalars to Python, NaN and infinity to None."""
+    if isinstance(obj, Mapping):
+        return {str(k): jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple, np.ndarray)):
+        return [jsonable(v) for v in obj]
+    return _plain(obj)
+
+
+def _plain(v: Any) -> Any:
+    if isinstance(v, np.integer):
+        return int(v)
+    if isinstance(v, np.floating):
+        return None if not np.isfinite(v) else float(v)
+    if isinstance(v, float) and not math.isfinite(v):
+        return None
+    if isinstance(v, tuple):
+        return list(v)
+    return v
