@@ -15,6 +15,7 @@ _LAZY = {
     "HeadlineFeaturizer": ("contentlab.features", "HeadlineFeaturizer"),
     "ContentlabError": ("contentlab.errors", "ContentlabError"),
     "ThompsonBandit": ("contentlab.bandit", "ThompsonBandit"),
+    "score_drafts": ("contentlab.scoring", "score_drafts"),
 }
 
 

@@ -1,0 +1,1182 @@
+"""Score draft headlines before publishing: predicted rate, reasons, edits, ranking.
+
+The editor's moment of use: a few drafts for tomorrow and ten minutes. For
+each draft this module gives the model's predicted rate with a 90% interval,
+where that rate would sit among the user's past posts on the same channel,
+the two or three features that move it most (in plain words, as a relative
+change against the channel's typical post), how far the draft is from the
+history the model learned on, and, when asked, rewrites that score clearly
+better and the best posting slots.
+
+Uncertainty of comparisons. Two drafts (or a draft and its rewrite) share
+most of their features, so their predictions are strongly correlated; the
+probability that one is truly better, and the interval of a rewrite's lift,
+come from the uncertainty of the *difference* of their log-odds. The model's
+bootstrap refits give joint draws of every coefficient, so that difference is
+evaluated draw by draw (its variance is the bootstrap variance of
+``(x_a - x_b) . beta``: only the features that differ contribute), plus the
+variance of words the model never saw that one draft has and the other does
+not. Under the normal approximation the probability is
+``P(a better than b) = Phi((eta_a - eta_b) / sd(eta_a - eta_b))``. Models
+without bootstrap draws fall back to independent predictions (wider).
+
+``prepare_drafts`` turns a drafts frame (``headline``, optional ``channel``,
+``publish_at``, ``group``) into what the model reads (``local_hour``,
+``local_weekday`` in the workspace time zone); :func:`score_drafts` is the
+Python API behind ``contentlab score``.
+"""
+
+from __future__ import annotations
+
+import math
+import re
+import weakref
+from dataclasses import dataclass
+from functools import lru_cache
+from typing import Iterable, Sequence
+
+import numpy as np
+import pandas as pd
+
+from .errors import ContentlabError
+
+__all__ = [
+    "score_drafts",
+    "prepare_drafts",
+    "read_drafts",
+    "prob_better",
+    "rate_lift",
+    "joint_logits",
+    "CAUTIONS",
+    "MAX_DRAFT_CHARS",
+]
+
+# A headline, not body text: longer drafts are refused (our limit; the longest headlines
+# in the demo and in the Upworthy archive are far below it).
+MAX_DRAFT_CHARS = 300
+# "Clearly ahead": the model's probability that the top draft is truly better than the next
+# is at least this (the same 90% the intervals use; our choice).
+CLEARLY_AHEAD = 0.9
+# Past posts with fewer impressions than this are left out of percentiles: their observed
+# rates are mostly binomial noise (common practice; the threshold is ours).
+MIN_PERCENTILE_IMPRESSIONS = 100
+# Fewer past posts than this on a channel make its percentile a rough guide only.
+THIN_CHANNEL_POSTS = 30
+# Contributions smaller than this on the log-odds (about 1%) are not worth a reason line.
+MIN_REASON_LOGIT = 0.01
+
+CAUTIONS = [
+    "These predictions come from associations in your past posts, not proven causes: a feature that went "
+    "with more clicks before may not cause them, and audiences change.",
+    "Headlines must stay truthful: advertising and consumer-protection rules where you publish apply to "
+    "them too. The rules differ from place to place; follow your local rules, and never add a number, "
+    "claim or detail that is not true.",
+]
+
+
+# ------------------------------------------------------------------ drafts in
+
+_PUBLISH_COLUMNS = ("publish_at", "published_at", "at", "time")
+
+
+def read_drafts(path) -> pd.DataFrame:
+    """A drafts CSV (headline, optional channel, publish_at, group) as text columns."""
+    from pathlib import Path
+
+    from .ingest import read_text, sniff_delimiter
+    import io
+
+    path = Path(path)
+    text = read_text(path)
+    if not text.strip():
+        raise ContentlabError(f"{path}: the file is empty. Give a CSV with a 'headline' column.")
+    try:
+        frame = pd.read_csv(io.StringIO(text), sep=sniff_delimiter(text), dtype=str, keep_default_na=False,
+                            skipinitialspace=True)
+    except (pd.errors.ParserError, ValueError) as exc:
+        raise ContentlabError(f"{path}: cannot be read as CSV ({exc}).") from None
+    frame.columns = [str(c).strip() for c in frame.columns]
+    lower = {c: c.lower() for c in frame.columns if c.lower() in {"headline", "channel", "group", *_PUBLISH_COLUMNS}
+             and c.lower() not in frame.columns}
+    frame = frame.rename(columns=lower)
+    if "headline" not in frame.columns:
+        raise ContentlabError(
+            f"{path}: row 1 (header) has no 'headline' column; its columns are: {', '.join(frame.columns)}."
+        )
+    if frame.empty:
+        raise ContentlabError(f"{path}: has a header but no drafts.")
+    frame.attrs["source"] = str(path)
+    return frame
+
+
+def _where(source: str | None, i: int) -> str:
+    # Row numbers as in the file (header is line 1) when the drafts came from a CSV.
+    return f"{source}: row {i + 2}" if source else f"draft {i + 1}"
+
+
+def parse_time(value: object, timezone: str, where: str = "") -> tuple[pd.Timestamp | None, bool]:
+    """Local timestamp of a planned publish time and whether it has a clock time.
+
+    Naive times ("2026-12-03 09:00") are in the workspace time zone; times with an
+    offset are converted to it; a date alone gives the weekday but no hour.
+    """
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return None, False
+    if isinstance(value, pd.Timestamp):
+        text = value.isoformat()
+    else:
+        text = str(value).strip()
+    if not text:
+        return None, False
+    has_time = bool(re.search(r"\d[T ]\d{1,2}(:\d{2})?", text)) or bool(re.search(r"\d{1,2}:\d{2}", text))
+    try:
+        stamp = pd.Timestamp(text)
+    except (ValueError, TypeError, OverflowError):
+        stamp = pd.NaT
+    if stamp is pd.NaT or pd.isna(stamp):
+        raise ContentlabError(
+            f"{where + ', ' if where else ''}publish time '{text[:40]}' cannot be read; "
+            "use YYYY-MM-DD HH:MM (local time in the workspace time zone), e.g. 2026-12-03 09:00"
+        )
+    if stamp.tzinfo is None:
+        try:
+            stamp = stamp.tz_localize(timezone, nonexistent="shift_forward", ambiguous=True)
+        except Exception as exc:  # pragma: no cover - zoneinfo edge cases
+            raise ContentlabError(f"{where}: publish time '{text}' does not exist in {timezone} ({exc})") from None
+    else:
+        stamp = stamp.tz_convert(timezone)
+    return stamp, has_time
+
+
+def prepare_drafts(
+    frame: pd.DataFrame,
+    timezone: str = "UTC",
+    *,
+    channel: str | None = None,
+    at: str | None = None,
+    known_channels: Sequence[str] | None = None,
+    source: str | None = None,
+) -> pd.DataFrame:
+    """Validate drafts and add ``local_hour``/``local_weekday`` from ``publish_at`` in ``timezone``.
+
+    ``channel`` and ``at`` fill drafts that give none. Raises ContentlabError naming the
+    row and column for an empty or over-long headline, an unreadable time, or a channel
+    not in ``known_channels`` (when given). ``source`` names the file in messages
+    (a CSV's rows are then counted as in the file). Input columns are kept unchanged.
+    """
+    if not isinstance(frame, pd.DataFrame):
+        raise ContentlabError("drafts must be a DataFrame with a 'headline' column, or a list of headlines")
+    if "headline" not in frame:
+        raise ContentlabError("drafts need a 'headline' column")
+    from .features import clean_headline
+
+    source = source if source not in (None, "arguments") else frame.attrs.get("source")
+    out = frame.copy()
+    if len(out) == 0:
+        raise ContentlabError("no drafts to score: give at least one headline")
+    texts = [clean_headline(h) for h in out["headline"].tolist()]
+    for i, text in enumerate(texts):
+        if not text:
+            raise ContentlabError(f"{_where(source, i)}, column 'headline': the draft is empty; write a headline")
+        if len(text) > MAX_DRAFT_CHARS:
+            raise ContentlabError(
+                f"{_where(source, i)}, column 'headline': the draft has {len(text)} characters; a headline may "
+                f"have at most {MAX_DRAFT_CHARS}. Is this body text? Score the headline alone."
+            )
+    if channel is not None:
+        if "channel" not in out:
+            out["channel"] = channel
+        else:
+            blank = out["channel"].isna() | (out["channel"].astype(str).str.strip() == "")
+            out.loc[blank, "channel"] = channel
+    if "channel" in out:
+        channels = [None if c is None or (isinstance(c, float) and math.isnan(c)) or str(c).strip() == ""
+                    else str(c).strip() for c in out["channel"].tolist()]
+        out["channel"] = pd.Series(channels, index=out.index, dtype=object)
+        if known_channels is not None:
+            known = set(known_channels)
+            for i, c in enumerate(channels):
+                if c is not None and c not in known:
+                    raise ContentlabError(
+                        f"{_where(source, i)}, column 'channel': '{c}' is not a channel in your history; "
+                        f"use one of: {', '.join(sorted(known))}"
+                    )
+    column = next((c for c in _PUBLISH_COLUMNS if c in out), None)
+    values = out[column].tolist() if column else [None] * len(out)
+    if at is not None:
+        values = [at if (v is None or (isinstance(v, float) and math.isnan(v)) or str(v).strip() == "") else v
+                  for v in values]
+    hours = np.full(len(out), np.nan)
+    weekdays = np.full(len(out), np.nan)
+    dates: list[str | None] = [None] * len(out)
+    cache: dict[str, tuple] = {}
+    for i, v in enumerate(values):
+        key = str(v)
+        if key not in cache:
+            cache[key] = parse_time(v, timezone, f"{_where(source, i)}, column '{column or 'publish_at'}'")
+        stamp, has_time = cache[key]
+        if stamp is None:
+            continue
+        weekdays[i] = stamp.weekday()
+        dates[i] = stamp.date().isoformat()
+        if has_time:
+            hours[i] = stamp.hour + stamp.minute / 60.0
+    out["local_hour"] = hours
+    out["local_weekday"] = weekdays
+    out["local_date"] = dates
+    return out
+
+
+# ------------------------------------------------------------ probabilities
+
+def prob_better(logit_a, logit_b, var_a, var_b, cov_ab=0.0):
+    """P(true logit a > true logit b) for jointly normal estimates: Phi(diff / sd(diff)).
+
+    ``sd(diff) = sqrt(var_a + var_b - 2 cov_ab)``. With no uncertainty at all the
+    answer is 1, 0 or 0.5 (tie).
+    """
+    from scipy.stats import norm
+
+    diff = np.asarray(logit_a, dtype=float) - np.asarray(logit_b, dtype=float)
+    var = np.asarray(var_a, dtype=float) + np.asarray(var_b, dtype=float) - 2 * np.asarray(cov_ab, dtype=float)
+    sd = np.sqrt(np.maximum(var, 0.0))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p = np.where(sd > 0, norm.cdf(diff / np.where(sd > 0, sd, 1.0)), np.where(diff > 0, 1.0,
+                                                                                  np.where(diff < 0, 0.0, 0.5)))
+    return float(p) if np.ndim(p) == 0 else p
+
+
+def rate_lift(base_logit, diff, diff_sd, level: float = 0.9):
+    """Relative change of the rate for a log-odds change ``diff`` (with its sd), and its interval.
+
+    ``lift = expit(base + diff) / expit(base) - 1``; the interval maps
+    ``diff +- z sd`` the same way (monotone, so it is exact for a normal ``diff``).
+    """
+    from scipy.stats import norm
+
+    z = norm.ppf(0.5 + level / 2)
+    base = np.asarray(base_logit, dtype=float)
+    d = np.asarray(diff, dtype=float)
+    s = np.asarray(diff_sd, dtype=float)
+
+    def rel(x):
+        return _expit(base + x) / _expit(base) - 1.0
+
+    out = rel(d), rel(d - z * s), rel(d + z * s)
+    if np.ndim(out[0]) == 0:
+        return tuple(float(v) for v in out)
+    return out
+
+
+def _expit(x):
+    x = np.asarray(x, dtype=float)
+    return 1.0 / (1.0 + np.exp(-x))
+
+
+# ------------------------------------------------------------------ engine
+
+class _Columns(dict):
+    """Named result arrays with the drafts' index (a DataFrame is built only when needed)."""
+
+    def __init__(self, data, index):
+        super().__init__(data)
+        self.index = index
+
+    def frame(self) -> pd.DataFrame:
+        return pd.DataFrame(dict(self), index=self.index)
+
+
+@dataclass
+class _Design:
+    """One batch of drafts as the model sees them."""
+
+    X: object  # sparse design rows (shared columns) or None in the generic path
+    channel: np.ndarray
+    eta: np.ndarray
+    draws: np.ndarray | None  # (n, B) bootstrap log-odds, or None
+    unseen_n: np.ndarray
+    unseen_share: np.ndarray
+    outside: np.ndarray
+    texts: list[str]
+    pred: _Columns  # predict_frame's columns
+    contrib: pd.DataFrame | None = None
+    dense: np.ndarray | None = None  # standardised dense columns, filled on first use
+    blocks: dict | None = None  # per text block: each draft's strongest columns, filled on first use
+
+
+_PRED_COLUMNS = ("predicted_rate", "rate_low", "rate_high", "expected_low", "expected_high", "logit", "logit_se",
+                 "impressions_assumed", "unseen_term_share", "n_unseen_terms", "n_outside_range", "far_from_history")
+
+
+class _Engine:
+    """Fast scoring through one design pass per batch, cached per fitted model.
+
+    ``EngagementModel.predict_frame`` and ``contributions`` each featurise the
+    drafts again; scoring needs both plus joint draws for comparisons, so this
+    builds the design once and applies the same formulas (a test checks the
+    numbers equal ``predict_frame``'s). Models without those internals go
+    through the public methods instead.
+    """
+
+    _NEEDED = ("_draft_design", "glm_", "n_shared_", "boot_coef_", "typical_design_", "_column_groups",
+               "term_effect_var_", "overdispersion_", "channel_impressions_", "state_", "dense_columns_",
+               "interval")
+
+    def __init__(self, model):
+        self.model = model
+        self._fitted = (getattr(model, "glm_", None), getattr(model, "boot_coef_", None))
+        self._unseen_cache: dict[str, frozenset[str]] = {}
+        self.fast = all(hasattr(model, a) for a in self._NEEDED)
+        if not hasattr(model, "predict_frame"):
+            raise ContentlabError("model must be a fitted contentlab EngagementModel (run contentlab learn)")
+        if self.fast:
+            p = model.n_shared_
+            self.coef = np.asarray(model.glm_.coef_[:p], dtype=float)
+            self.intercept = float(model.glm_.intercept_)
+            boot = np.asarray(model.boot_coef_, dtype=float)
+            self.boot_t = np.ascontiguousarray(boot[:, :-1].T) if boot.shape[0] >= 2 else None
+            self.boot_b = boot[:, -1] if boot.shape[0] >= 2 else None
+            self.groups = model._column_groups()
+            self.channels = list(getattr(model, "channels_", []))
+            self.typical = {c: np.asarray(v, dtype=float) for c, v in model.typical_design_.items()}
+            st = model.state_
+            self.n_dense = len(st["dense_idx"])
+            self.dense_mean = np.asarray(st["mean"], dtype=float)
+            self.dense_scale = np.asarray(st["scale"], dtype=float)
+            self.n_terms = len(st["term_idx"])
+            self.n_words = len(st["word_idx"])
+            self.term_names = list(getattr(model, "term_names_", []))
+            self.wording_names = list(getattr(model, "wording_names_", []))
+        else:
+            self.channels = list(getattr(model, "channels_", []))
+
+    def current(self) -> bool:
+        """Whether the cached arrays still belong to the model's current fit."""
+        glm, boot = self._fitted
+        return getattr(self.model, "glm_", None) is glm and getattr(self.model, "boot_coef_", None) is boot
+
+    # ----------------------------------------------------------- design
+    def design(self, frame: pd.DataFrame, impressions=None) -> _Design:
+        m = self.model
+        if not self.fast:
+            pf = m.predict_frame(frame, impressions=impressions) if impressions is not None else m.predict_frame(frame)
+            contrib = m.contributions(frame) if hasattr(m, "contributions") else None
+            n = len(frame)
+            defaults = {"expected_low": pf["rate_low"], "expected_high": pf["rate_high"],
+                        "impressions_assumed": np.nan, "unseen_term_share": 0.0, "n_unseen_terms": 0,
+                        "n_outside_range": 0, "far_from_history": False}
+            cols = {c: np.asarray(pf[c]) if c in pf else np.broadcast_to(np.asarray(defaults[c]), (n,)).copy()
+                    for c in _PRED_COLUMNS}
+            if "logit_se" not in pf:
+                raise ContentlabError("the model gives no logit_se; it cannot be used for draft comparisons")
+            pred = _Columns(cols, frame.index)
+            channel = (frame["channel"].fillna("(none)").to_numpy(object) if "channel" in frame else
+                       np.full(n, "(none)", dtype=object))
+            return _Design(None, channel, pred["logit"].astype(float), None,
+                           pred["n_unseen_terms"].astype(float), pred["unseen_term_share"].astype(float),
+                           pred["n_outside_range"].astype(float), frame["headline"].astype(str).tolist(), pred,
+                           contrib)
+        feat = m.featurizer_
+        old_jobs = getattr(feat, "n_jobs", None)
+        try:
+            if len(frame) >= 2000 and old_jobs == 1:
+                feat.n_jobs = None  # large batches: let the featurizer use every core
+            X, channel, unseen_n, unseen_share, outside, prepared = m._draft_design(frame)
+        finally:
+            feat.n_jobs = old_jobs
+        X = X.tocsr()
+        eta = np.asarray(X @ self.coef).ravel() + self.intercept
+        draws = None
+        if self.boot_t is not None:
+            draws = np.asarray(X @ self.boot_t) + self.boot_b
+        pred = self._predictions(eta, draws, channel, unseen_n, unseen_share, outside, impressions, frame.index)
+        from .features import clean_headline
+
+        texts = [clean_headline(t) for t in frame["headline"].tolist()]
+        return _Design(X, channel, eta, draws, unseen_n, unseen_share, outside, texts, pred)
+
+    def _predictions(self, eta, draws, channel, unseen_n, unseen_share, outside, impressions, index) -> pd.DataFrame:
+        """predict_frame's numbers from one design pass (same formulas as EngagementModel.predict_frame)."""
+        from scipy import stats
+
+        from .model import _GH_NODES, _GH_WEIGHTS, _beta_from_moments
+
+        m = self.model
+        param_var = np.var(draws, axis=1, ddof=1) if draws is not None else np.zeros(len(eta))
+        var_se = param_var + unseen_n * m.term_effect_var_
+        logit_se = np.sqrt(var_se)
+        if impressions is None:
+            fallback = float(np.median(list(m.channel_impressions_.values())))
+            n_imp = np.array([m.channel_impressions_.get(c, fallback) for c in channel], dtype=float)
+        else:
+            n_imp = np.broadcast_to(np.asarray(impressions, dtype=float), eta.shape).astype(float)
+            if np.any(~np.isfinite(n_imp) | (n_imp <= 0)):
+                raise ContentlabError("impressions must be numbers > 0")
+        s2 = var_se + m.overdispersion_
+        z = stats.norm.ppf(0.5 + m.interval / 2)
+        lat = _expit(eta[:, None] + np.sqrt(s2)[:, None] * _GH_NODES[None, :])
+        mean = lat @ _GH_WEIGHTS
+        v = np.maximum((lat ** 2) @ _GH_WEIGHTS - mean ** 2, 1e-18)
+        v_obs = v + np.maximum(mean - mean ** 2 - v, 0.0) / n_imp
+        a, b = _beta_from_moments(mean, v_obs)
+        tail = (1 - m.interval) / 2
+        low = stats.beta.ppf(tail, a, b)
+        high = stats.beta.ppf(1 - tail, a, b)
+        far = (unseen_share >= 0.5) | (outside > 0)
+        return _Columns(
+            {
+                "predicted_rate": _expit(eta),
+                "rate_low": low,
+                "rate_high": high,
+                "expected_low": _expit(eta - z * logit_se),
+                "expected_high": _expit(eta + z * logit_se),
+                "logit": eta,
+                "logit_se": logit_se,
+                "impressions_assumed": n_imp,
+                "unseen_term_share": unseen_share,
+                "n_unseen_terms": np.asarray(unseen_n).astype(int),
+                "n_outside_range": np.asarray(outside).astype(int),
+                "far_from_history": far,
+            },
+            index,
+        )
+
+    # ---------------------------------------------------- contributions
+    def _group_weights(self):
+        """Sparse (n_shared x n_groups) matrix: coef_j in the column of j's group, so X @ W sums each group."""
+        if getattr(self, "_W", None) is None:
+            import scipy.sparse as sp
+
+            names = list(self.groups)
+            rows, cols = [], []
+            for g, name in enumerate(names):
+                idx = np.asarray(self.groups[name], dtype=int)
+                rows.append(idx)
+                cols.append(np.full(idx.size, g))
+            r = np.concatenate(rows) if rows else np.zeros(0, dtype=int)
+            c = np.concatenate(cols) if cols else np.zeros(0, dtype=int)
+            self._W = sp.csr_matrix((self.coef[r], (r, c)), shape=(len(self.coef), len(names)))
+            self._W_dense_part = self._W[: self.n_dense].toarray()
+            self._W_text_part = self._W[self.n_dense:].tocsr()
+            self._group_names = names
+            # The typical post of each channel: its part of every group, and its logit.
+            self._typical_parts = {ch: np.asarray(self._W.T @ t).ravel() for ch, t in self.typical.items()}
+            self._typical_logit = {ch: float(t @ self.coef) + self.intercept for ch, t in self.typical.items()}
+        return self._W
+
+    def contributions(self, d: _Design) -> pd.DataFrame:
+        """Log-odds contribution per feature group against the channel's typical post."""
+        if d.contrib is not None or not self.fast:
+            return d.contrib if d.contrib is not None else pd.DataFrame(index=d.pred.index)
+        self._group_weights()
+        nd = self.n_dense
+        if d.dense is None:
+            d.dense = d.X[:, :nd].toarray()
+        own = d.dense @ self._W_dense_part
+        if self._W_text_part.shape[0]:
+            own = own + np.asarray((d.X[:, nd:] @ self._W_text_part).todense())
+        zero = np.zeros(len(self._group_names))
+        base = np.vstack([self._typical_parts.get(c, zero) for c in d.channel]) if len(d.channel) else \
+            np.zeros((0, len(self._group_names)))
+        values = np.column_stack([own - base,
+                                  [self._typical_logit.get(c, self.intercept) for c in d.channel]])
+        frame = pd.DataFrame(values, columns=self._group_names + ["typical_logit"], index=d.pred.index)
+        d.contrib = frame
+        return frame
+
+    def raw_dense(self, d: _Design) -> np.ndarray | None:
+        """The drafts' dense feature values on their own scale (undoing the standardisation)."""
+        if not self.fast:
+            return None
+        if d.dense is None:
+            d.dense = d.X[:, : self.n_dense].toarray()
+        return d.dense * self.dense_scale + self.dense_mean
+
+    # ------------------------------------------------------ comparisons
+    def unseen_terms(self, text: str) -> frozenset[str]:
+        """Unigram terms of ``text`` the model has no column for (cached: drafts repeat in rewrites)."""
+        hit = self._unseen_cache.get(text)
+        if hit is None:
+            from .features import topic_tokens
+
+            vocab = getattr(self.model, "term_vocabulary_", None)
+            hit = frozenset() if vocab is None else frozenset(
+                t for t in topic_tokens(text) if " " not in t and t not in vocab)
+            if len(self._unseen_cache) > 50_000:
+                self._unseen_cache.clear()
+            self._unseen_cache[text] = hit
+        return hit
+
+    def diff_var(self, da: _Design, ia: np.ndarray, db: _Design, ib: np.ndarray) -> np.ndarray:
+        """Variance of eta_a - eta_b for row pairs (ia[k] of da, ib[k] of db)."""
+        ia = np.asarray(ia, dtype=int)
+        ib = np.asarray(ib, dtype=int)
+        tev = float(getattr(self.model, "term_effect_var_", 0.0))
+        if da.draws is not None and db.draws is not None:
+            var = np.var(da.draws[ia] - db.draws[ib], axis=1, ddof=1)
+        else:
+            se_a = np.asarray(da.pred["logit_se"], dtype=float)[ia]
+            se_b = np.asarray(db.pred["logit_se"], dtype=float)[ib]
+            return se_a ** 2 + se_b ** 2  # independent: no joint draws to say otherwise
+        # Words the model never saw: each has an unknown effect of variance tev; the ones
+        # both drafts share cancel in the difference, the others add up.
+        na, nb = da.unseen_n[ia], db.unseen_n[ib]
+        extra = np.zeros(len(ia))
+        for k in np.flatnonzero((na > 0) | (nb > 0)):
+            ua = self.unseen_terms(da.texts[ia[k]]) if na[k] > 0 else frozenset()
+            ub = self.unseen_terms(db.texts[ib[k]]) if nb[k] > 0 else frozenset()
+            extra[k] = len(ua ^ ub) * tev
+        return var + extra
+
+
+_ENGINES: "weakref.WeakKeyDictionary" = weakref.WeakKeyDictionary()
+
+
+def _engine(model) -> _Engine:
+    try:
+        eng = _ENGINES.get(model)
+    except TypeError:
+        eng = None
+    if eng is not None and not eng.current():
+        eng = None  # the model was refitted in place since
+    if eng is None:
+        eng = _Engine(model)
+        try:
+            _ENGINES[model] = eng
+        except TypeError:
+            pass
+    return eng
+
+
+def joint_logits(model, frame: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Log-odds of each row of a prepared drafts frame and their joint covariance (n x n).
+
+    From the model's bootstrap draws (plus the shared-unseen-word term); a
+    diagonal matrix of ``logit_se**2`` when the model has no draws.
+    """
+    eng = _engine(model)
+    d = eng.design(frame)
+    n = len(frame)
+    if d.draws is None:
+        return d.eta, np.diag(np.asarray(d.pred["logit_se"], dtype=float) ** 2)
+    cov = np.cov(d.draws, ddof=1) if n > 1 else np.var(d.draws, ddof=1).reshape(1, 1)
+    cov = np.atleast_2d(cov)
+    tev = float(getattr(model, "term_effect_var_", 0.0))
+    if tev > 0 and np.any(d.unseen_n > 0):
+        sets = [eng.unseen_terms(t) if u > 0 else frozenset() for t, u in zip(d.texts, d.unseen_n)]
+        for i in range(n):
+            if not sets[i]:
+                continue
+            for j in range(n):
+                if sets[j]:
+                    cov[i, j] += len(sets[i] & sets[j]) * tev
+    return d.eta, cov
+
+
+# ------------------------------------------------------------------ reasons
+
+_PRESENT_ABSENT = {
+    "is_question": ("is a question", "not a question"),
+    "has_exclamation": ("has an exclamation mark", "no exclamation mark"),
+    "leading_number": ("starts with a number", "does not start with a number"),
+    "has_digit": ("has a number", "no number"),
+    "list_form": ("reads as a list (\"N ways ...\")", "not a list"),
+    "second_person": ("speaks to the reader (you)", "does not say 'you'"),
+    "has_quote": ("has a quotation", "no quotation"),
+    "split_colon_dash": ("has a colon or dash", "no colon or dash"),
+}
+
+
+def _plural(n: float, word: str) -> str:
+    n = int(round(n))
+    return f"{'no' if n == 0 else n} {word}{'' if n == 1 else 's'}"
+
+
+def _feature_phrase(name: str, value: float | None, when: str | None) -> str:
+    if name in _PRESENT_ABSENT:
+        yes, no = _PRESENT_ABSENT[name]
+        return yes if (value or 0) >= 0.5 else no
+    if name == "posting time":
+        return f"posting time ({when})" if when else "posting time (the channel's usual time)"
+    if value is None:
+        from .model import FEATURE_LABELS
+
+        return FEATURE_LABELS.get(name, name)
+    if name == "n_chars":
+        return f"length ({int(round(value))} characters)"
+    if name == "n_words":
+        return f"{_plural(value, 'word')}"
+    if name == "mean_word_length":
+        return f"word length ({value:.1f} letters on average)"
+    if name == "flesch_reading_ease":
+        return f"readability (Flesch reading ease {value:.0f})"
+    if name == "flesch_kincaid_grade":
+        return f"reading grade {value:.1f}"
+    if name == "n_negative_words":
+        return _plural(value, "negative word")
+    if name == "n_positive_words":
+        return _plural(value, "positive word")
+    if name == "n_allcaps_words":
+        return _plural(value, "word") + " in capitals"
+    if name == "n_emoji":
+        return _plural(value, "emoji").replace("emojis", "emoji")
+    if name == "posting time":
+        return f"posting time ({when})" if when else "posting time (the channel's usual time)"
+    from .model import FEATURE_LABELS
+
+    return FEATURE_LABELS.get(name, name)
+
+
+def pct(x: float, digits: int = 0) -> str:
+    """+12% / -8% for a relative change."""
+    if x is None or not math.isfinite(x):
+        return "n/a"
+    return f"{x * 100:+.{digits}f}%"
+
+
+@lru_cache(maxsize=4096)
+def _stems_of(text: str) -> dict[str, str]:
+    from .features import _stem
+
+    stems: dict[str, str] = {}
+    for w in re.findall(r"[A-Za-z][A-Za-z']+", text):
+        stems.setdefault(_stem(w.lower().replace("'s", "")), w.lower())
+    return stems
+
+
+def _word_for_term(term: str, text: str) -> str:
+    """The headline's own words behind a stemmed term ('makerspac' -> 'makerspace')."""
+    stems = _stems_of(text)
+    parts = term.split(" ")
+    shown = [stems.get(p, "a number" if p == "<num>" else p) for p in parts]
+    return " ".join(shown)
+
+
+_WEEKDAY_NAMES = ["Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun"]
+
+
+def _reason_rows(eng: _Engine, d: _Design, frame: pd.DataFrame, top: int = 3) -> list[list[dict]]:
+    """Per draft, the ``top`` feature groups with the largest contributions, in plain words."""
+    contrib = eng.contributions(d)
+    if contrib is None or contrib.empty:
+        return [[] for _ in range(len(frame))]
+    groups = [c for c in contrib.columns if c != "typical_logit"]
+    C = contrib[groups].to_numpy(float)
+    order = np.argsort(-np.abs(C), axis=1)[:, :top]
+    # Plain Python values from here on: the per-draft loop runs 10,000 times for a large batch.
+    top_c = np.take_along_axis(C, order, axis=1).tolist()
+    order = order.tolist()
+    raw_values = eng.raw_dense(d)
+    raw_cols = {c: j for j, c in enumerate(eng.model.dense_columns_)} if raw_values is not None else {}
+    raw_rows = raw_values.tolist() if raw_values is not None else None
+    hours = frame["local_hour"].tolist() if "local_hour" in frame else [math.nan] * len(frame)
+    wdays = frame["local_weekday"].tolist() if "local_weekday" in frame else [math.nan] * len(frame)
+    text_groups = {g for g, name in enumerate(groups) if name in ("topic terms", "wording")}
+    out: list[list[dict]] = []
+    for i in range(len(frame)):
+        rows = []
+        for g, c in zip(order[i], top_c[i]):
+            if abs(c) < MIN_REASON_LOGIT:
+                continue
+            name = groups[g]
+            if g in text_groups:
+                label = _text_group_label(eng, d, i, name)
+            else:
+                value = raw_rows[i][raw_cols[name]] if name in raw_cols else None
+                when = None
+                h = hours[i]
+                if name == "posting time" and h == h:
+                    hh = int(h)
+                    mm = int(round((h - hh) * 60))
+                    w = wdays[i]
+                    day = _WEEKDAY_NAMES[int(w)] + " " if w == w else ""
+                    when = f"{day}{hh:02d}:{mm:02d}"
+                label = _feature_phrase(name, value, when)
+            change = math.exp(c) - 1.0
+            rows.append({"feature": name, "label": label, "logit": c, "change": change,
+                         "text": f"{label}: {change * 100:+.0f}%"})
+        out.append(rows)
+    return out
+
+
+def _top_text_columns(eng: _Engine, d: _Design, group: str, k: int = 2) -> tuple[list, int]:
+    """Per draft, the (up to ``k``) columns of a text block with the largest |effect|, vectorised."""
+    start = eng.n_dense + (0 if group == "topic terms" else eng.n_terms)
+    size = eng.n_terms if group == "topic terms" else eng.n_words
+    sub = d.X[:, start:start + size].tocsr()
+    counts = np.diff(sub.indptr)
+    rows = np.repeat(np.arange(sub.shape[0]), counts)
+    order = np.lexsort((-np.abs(eng.coef[start + sub.indices]), rows))
+    cols = sub.indices[order]
+    out: list = [()] * sub.shape[0]
+    for i in np.flatnonzero(counts).tolist():
+        a = sub.indptr[i]
+        out[i] = tuple(cols[a:a + min(k, counts[i])].tolist())
+    return out, start
+
+
+def _text_group_label(eng: _Engine, d: _Design, i: int, group: str) -> str:
+    """'topic words (makerspace, budget)': the draft's terms with the largest effects."""
+    head = "topic words" if group == "topic terms" else "wording"
+    if not eng.fast:
+        return head
+    if d.blocks is None:
+        d.blocks = {}
+    if group not in d.blocks:
+        d.blocks[group] = _top_text_columns(eng, d, group)
+    top, _ = d.blocks[group]
+    cols = top[i]
+    if not cols:
+        return "no topic word your history knows" if group == "topic terms" else head
+    names = eng.term_names if group == "topic terms" else eng.wording_names
+    shown = [(_word_for_term(names[j], d.texts[i]) if group == "topic terms" else names[j].replace("<num>", "N"))
+             for j in cols if j < len(names)]
+    return f"{head} ({', '.join(repr(s) for s in shown)})" if shown else head
+
+
+# --------------------------------------------------------------- percentiles
+
+_RATES_CACHE: dict[tuple[int, int], tuple] = {}
+
+
+def _history_rates(model, history: pd.DataFrame | None) -> dict[str, np.ndarray]:
+    """Sorted observed rates of past posts per channel (cached per model and history frame)."""
+    key = (id(model), id(history))
+    hit = _RATES_CACHE.get(key)
+    if hit is not None and hit[0] is model and hit[1] is history:
+        return hit[2]
+    rates = _compute_history_rates(model, history)
+    _RATES_CACHE.clear()
+    _RATES_CACHE[key] = (model, history, rates)
+    return rates
+
+
+def _compute_history_rates(model, history: pd.DataFrame | None) -> dict[str, np.ndarray]:
+    """Sorted observed rates of past posts per channel (posts with enough impressions)."""
+    outcome = getattr(model, "outcome_", "clicks")
+    src = history
+    if src is None or outcome not in src or "impressions" not in src:
+        src = getattr(model, "training_posts_summary_", None)
+    if src is None or outcome not in src:
+        return {}
+    n = pd.to_numeric(src["impressions"], errors="coerce").to_numpy(float)
+    k = pd.to_numeric(src[outcome], errors="coerce").to_numpy(float)
+    ch = src["channel"].fillna("(none)").astype(str).replace("", "(none)").to_numpy(object) if "channel" in src else \
+        np.full(len(src), "(none)", dtype=object)
+    ok = np.isfinite(n) & np.isfinite(k) & (n >= MIN_PERCENTILE_IMPRESSIONS)
+    out = {}
+    for c in pd.unique(ch[ok]):
+        sel = ok & (ch == c)
+        out[str(c)] = np.sort(k[sel] / n[sel])
+    return out
+
+
+# ---------------------------------------------------------------- suggestions
+
+def _length_target(eng: _Engine, history: pd.DataFrame | None, channel: str) -> tuple[float, float] | None:
+    """Where longer did best: the upper quartile of past lengths, when the model favours length."""
+    if not eng.fast or "n_chars" not in eng.model.dense_columns_:
+        return None
+    j = eng.model.dense_columns_.index("n_chars")
+    if eng.coef[j] <= 0:
+        return None
+    if history is None or "headline" not in history:
+        return None
+    sel = history
+    if "channel" in history:
+        same = history["channel"].fillna("(none)").astype(str) == channel
+        if same.sum() >= 20:
+            sel = history[same]
+    lengths = sel["headline"].astype(str).str.len().to_numpy(float)
+    if len(lengths) < 20:
+        return None
+    return float(np.percentile(lengths, 75)), float(np.percentile(lengths, 90))
+
+
+def _casing_words(history: pd.DataFrame | None) -> frozenset[str]:
+    """Words the history writes in lower case inside a headline (so not names)."""
+    if history is None or "headline" not in history:
+        return frozenset()
+    key = id(history)
+    hit = _CASING_CACHE.get(key)
+    if hit is not None and hit[0] is history:
+        return hit[1]
+    words: set[str] = set()
+    for text in history["headline"].astype(str).head(20000):
+        for w in text.split()[1:]:
+            w = w.strip(".,:;!?\"'()")
+            if w.isalpha() and w.islower():
+                words.add(w)
+    result = frozenset(words)
+    _CASING_CACHE.clear()
+    _CASING_CACHE[key] = (history, result)
+    return result
+
+
+_CASING_CACHE: dict[int, tuple] = {}
+
+
+def _suggestions(eng: _Engine, d: _Design, prepared: pd.DataFrame, history: pd.DataFrame | None,
+                 level: float, n_best: int) -> list[dict]:
+    """Score every rewrite of every draft in one batch; keep the best whose lift interval excludes zero."""
+    from . import edits
+
+    lower = _casing_words(history)
+    candidates: list[tuple[int, edits.Rewrite]] = []
+    targets: dict[str, tuple | None] = {}
+    for i, text in enumerate(d.texts):
+        ch = str(d.channel[i])
+        if ch not in targets:
+            targets[ch] = _length_target(eng, history, ch)
+        for r in edits.rewrites(text, length_range=targets[ch], lowercase_words=lower):
+            candidates.append((i, r))
+    results = [{"suggestions": [], "n_rewrites": 0, "note": ""} for _ in range(len(d.texts))]
+    if candidates:
+        src = np.array([i for i, _ in candidates])
+        base = prepared.iloc[src].copy()
+        base["headline"] = [r.scored_text for _, r in candidates]
+        base.index = range(len(base))
+        dr = eng.design(base)
+        diff = dr.eta - d.eta[src]
+        var = eng.diff_var(dr, np.arange(len(base)), d, src)
+        sd = np.sqrt(np.maximum(var, 0.0))
+        lift, low, high = rate_lift(d.eta[src], diff, sd, level)
+        p = prob_better(dr.eta, d.eta[src], var, 0.0, 0.0)
+        for k, (i, r) in enumerate(candidates):
+            results[i]["n_rewrites"] += 1
+            if low[k] > 0:  # the whole interval above zero: clearly better
+                results[i]["suggestions"].append({
+                    "kind": r.kind, "text": r.text, "scored_text": r.scored_text, "description": r.description,
+                    "instruction": r.instruction,
+                    "lift": float(lift[k]), "lift_low": float(low[k]), "lift_high": float(high[k]),
+                    "p_better": float(p[k]), "predicted_rate": float(_expit(dr.eta[k])),
+                })
+    for res in results:
+        res["suggestions"].sort(key=lambda s: -s["lift_low"])
+        res["suggestions"] = res["suggestions"][:n_best]
+        if not res["suggestions"]:
+            n_r = res["n_rewrites"]
+            plural = "" if n_r == 1 else "s"
+            res["note"] = (
+                f"no edit is clearly better ({n_r} rewrite{plural} scored; none has a lift whose "
+                f"{int(level * 100)}% interval is above zero)" if n_r else "no safe rewrite applies to this draft"
+            )
+    return results
+
+
+# ------------------------------------------------------------------ the API
+
+def _as_frame(drafts) -> pd.DataFrame:
+    if isinstance(drafts, pd.DataFrame):
+        return drafts
+    if isinstance(drafts, str):
+        return pd.DataFrame({"headline": [drafts]})
+    if isinstance(drafts, Iterable):
+        items = list(drafts)
+        if items and all(isinstance(x, dict) for x in items):
+            return pd.DataFrame(items)
+        if not all(isinstance(x, str) for x in items):
+            raise ContentlabError("drafts must be headlines (text), a list of them, or a DataFrame with 'headline'")
+        return pd.DataFrame({"headline": items})
+    raise ContentlabError("drafts must be headlines (text), a list of them, or a DataFrame with 'headline'")
+
+
+def _load(workspace, model, history, timezone, outcome):
+    notes: list[str] = []
+    if model is None and workspace is None:
+        raise ContentlabError("give a workspace (folder or Workspace) or a fitted model to score with")
+    if model is not None:
+        tz = timezone or "UTC"
+        if workspace is None:
+            return model, history, tz, notes
+    from .workspace import Workspace
+
+    ws = workspace if isinstance(workspace, Workspace) else Workspace.open(workspace, create=False)
+    try:
+        if model is None:
+            row = ws.latest_model_row(outcome)
+            model, summary = ws.load_model(outcome)
+            if row is not None and row[3] != ws.fingerprint(row[2]):
+                notes.append("The model was learned before the latest changes to the history; run contentlab learn "
+                             "to refresh it.")
+        if history is None:
+            history = ws.posts()
+        tz = timezone or ws.timezone
+    finally:
+        if ws is not workspace:
+            ws.close()
+    return model, history, tz, notes
+
+
+def score_drafts(
+    drafts,
+    workspace=None,
+    *,
+    model=None,
+    history: pd.DataFrame | None = None,
+    channel: str | None = None,
+    at: str | None = None,
+    suggest: bool = True,
+    slots: bool = False,
+    timezone: str | None = None,
+    outcome: str | None = None,
+    level: float | None = None,
+    n_suggestions: int = 2,
+    impressions=None,
+) -> pd.DataFrame:
+    """Score draft headlines against the user's history; one row per draft, input columns kept.
+
+    Parameters
+    ----------
+    drafts : str, list of str, or DataFrame
+        Headlines, or a frame with ``headline`` and optional ``channel``,
+        ``publish_at`` (local time in the workspace time zone) and ``group``
+        (drafts are ranked within their group; without one, all together).
+    workspace : path or Workspace, optional
+        Where the model and history live (the latest model is used).
+    model : fitted EngagementModel, optional
+        Score with this model instead (``history`` then gives percentiles,
+        slots and length targets; without it the model's own summary of its
+        training posts gives the percentiles).
+    channel, at : str, optional
+        Channel and planned publish time for drafts that give none.
+    suggest : bool
+        Score rewrites of each draft and keep the best ``n_suggestions`` whose
+        lift interval excludes zero.
+    slots : bool
+        Add the best posting slots of the coming week (needs a history with times).
+    level : float, optional
+        Coverage of the lift and slot intervals (default: the model's own
+        ``interval``, which also sets ``rate_low``/``rate_high``).
+    impressions : number or array, optional
+        Impressions the posts are expected to get, for ``rate_low``/``rate_high``
+        (default: the channel's median in history).
+
+    Returns
+    -------
+    DataFrame with the input columns plus ``predicted_rate``, ``rate_low``,
+    ``rate_high`` (the ``level`` interval of the rate the post will show at the
+    channel's typical impressions), ``expected_low``/``expected_high`` (what the
+    model knows about the typical rate), ``percentile`` (share of past posts on
+    the channel with a lower rate) and ``n_channel_posts``, ``reasons``,
+    ``rank``, ``p_better_than_next`` and ``verdict``, ``unseen_term_share``,
+    ``far_from_history`` and ``distance_note``, then suggestion and slot
+    columns. ``result.attrs`` holds ``cautions``, ``notes``, ``reasons`` (a
+    list of dicts per row), ``suggestions`` and ``slot_plans``.
+    """
+    frame = _as_frame(drafts)
+    model, history, tz, notes = _load(workspace, model, history, timezone, outcome)
+    if level is None:
+        level = float(getattr(model, "interval", 0.9))
+    if not 0 < level < 1:
+        raise ContentlabError(f"level must be between 0 and 1; got {level!r}")
+    eng = _engine(model)
+    known = eng.channels or None
+    prepared = prepare_drafts(frame, tz, channel=channel, at=at, known_channels=known)
+    if (("channel" not in prepared) or prepared["channel"].isna().any()) and known and len(known) > 1 \
+            and "(none)" not in known:
+        missing = np.flatnonzero(prepared["channel"].isna().to_numpy()) if "channel" in prepared else [0]
+        raise ContentlabError(
+            f"{_where(frame.attrs.get('source'), int(missing[0]))}: give the draft a channel (--channel, or a "
+            f"'channel' column); your history has several: {', '.join(known)}"
+        )
+    work = prepared.reset_index(drop=True)
+    d = eng.design(work, impressions=impressions)
+    pred = d.pred
+    cols: dict[str, object] = {}
+    if "channel" not in frame and "channel" in work:
+        cols["channel"] = work["channel"].to_numpy(object)
+    cols["planned_time"] = _planned_times(work)
+    for c in ("predicted_rate", "rate_low", "rate_high", "expected_low", "expected_high", "logit", "logit_se",
+              "impressions_assumed"):
+        cols[c] = np.asarray(pred[c])
+
+    # Percentile among past posts on the same channel.
+    rates = _history_rates(model, history)
+    perc = np.full(len(work), np.nan)
+    n_posts = np.zeros(len(work), dtype=int)
+    rate = np.asarray(pred["predicted_rate"], dtype=float)
+    for c in pd.unique(d.channel):
+        r = rates.get(str(c))
+        if r is None or len(r) == 0:
+            continue
+        sel = d.channel == c
+        perc[sel] = np.searchsorted(r, rate[sel], side="right") / len(r)
+        n_posts[sel] = len(r)
+    cols["percentile"] = perc
+    cols["n_channel_posts"] = n_posts
+    thin = sorted({str(c) for c, n in zip(d.channel, n_posts) if 0 < n < THIN_CHANNEL_POSTS})
+    if thin:
+        notes.append(f"Few past posts on {', '.join(thin)} (under {THIN_CHANNEL_POSTS}): the percentile there is "
+                     "a rough guide.")
+
+    # Reasons.
+    reasons = _reason_rows(eng, d, work)
+    cols["reasons"] = ["; ".join(r["text"] for r in rows) for rows in reasons]
+
+    # Distance from history.
+    share = np.asarray(pred["unseen_term_share"], dtype=float)
+    n_unseen = np.asarray(pred["n_unseen_terms"], dtype=int)
+    outside = np.asarray(pred["n_outside_range"], dtype=int)
+    far = np.asarray(pred["far_from_history"], dtype=bool)
+    cols["unseen_term_share"] = share
+    cols["far_from_history"] = far
+    cols["distance_note"] = [_distance_note(s_, n_, o_, f_) for s_, n_, o_, f_ in zip(share, n_unseen, outside, far)]
+
+    # Ranking within groups, and how sure the order is.
+    cols.update(_rank(eng, d, work))
+
+    attrs_suggestions = None
+    if suggest:
+        sugg = _suggestions(eng, d, work, history, level, n_suggestions)
+        attrs_suggestions = sugg
+        for k in range(n_suggestions):
+            def pick(field, empty, k=k):
+                return [s_["suggestions"][k][field] if len(s_["suggestions"]) > k else empty for s_ in sugg]
+
+            cols[f"suggestion_{k + 1}"] = pick("text", None)
+            cols[f"suggestion_{k + 1}_lift"] = pick("lift", np.nan)
+            cols[f"suggestion_{k + 1}_low"] = pick("lift_low", np.nan)
+            cols[f"suggestion_{k + 1}_high"] = pick("lift_high", np.nan)
+            cols[f"suggestion_{k + 1}_how"] = pick("description", None)
+        cols["suggestion_note"] = [s_["note"] for s_ in sugg]
+
+    plans = None
+    if slots:
+        slot_cols, plans = _slot_columns(model, work, history, tz, notes, level)
+        cols.update(slot_cols)
+
+    validation = getattr(model, "validation_", None) or {}
+    if isinstance(validation, dict) and validation.get("trustworthy") is False:
+        notes.append("WARNING: on held-out posts the model did not beat every simple baseline; trust these "
+                     "scores only as far as the learn output says.")
+    if far.any():
+        notes.append(f"{int(far.sum())} draft(s) are far from the history the model learned on (many unseen words "
+                     "or a feature outside the history's range): their intervals are wider and less certain.")
+    base = frame.reset_index(drop=True)
+    data = {c: base[c].array for c in base.columns if c not in cols}
+    data.update(cols)
+    out = pd.DataFrame(data, index=base.index)
+    out.attrs = {
+        "cautions": list(CAUTIONS),
+        "notes": notes,
+        "reasons": reasons,
+        "suggestions": attrs_suggestions,
+        "slot_plans": plans,
+        "level": level,
+        "outcome": getattr(model, "outcome_", "clicks"),
+        "timezone": tz,
+    }
+    return out
+
+
+def _planned_times(work: pd.DataFrame) -> list[str]:
+    """'Thu 2026-12-03 07:30' per draft, or the fallback the model uses when no time is given."""
+    out = []
+    for date, hour, wd in zip(work["local_date"], work["local_hour"], work["local_weekday"]):
+        if not date:
+            out.append("no time given: channel's usual time")
+            continue
+        text = f"{_WEEKDAY_NAMES[int(wd)]} {date}"
+        if np.isfinite(hour):
+            hh = int(hour)
+            text += f" {hh:02d}:{int(round((hour - hh) * 60)):02d}"
+        else:
+            text += " (no hour given: channel's usual time)"
+        out.append(text)
+    return out
+
+
+def _distance_note(share: float, n_unseen: int, outside: int, far: bool) -> str:
+    parts = []
+    if n_unseen:
+        parts.append(f"{share:.0%} of its words are new to the model ({n_unseen}); the interval is widened for them")
+    else:
+        parts.append("all its words are known to the model")
+    if outside:
+        parts.append(f"{outside} feature(s) outside the range of your history")
+    text = "; ".join(parts)
+    return ("FAR FROM HISTORY: " + text) if far else text
+
+
+def _rank(eng: _Engine, d: _Design, work: pd.DataFrame) -> dict[str, np.ndarray]:
+    """Rank by predicted rate within group; P(truly better than the next one) from the difference."""
+    groups = work["group"].fillna("").astype(str).to_numpy() if "group" in work else np.full(len(work), "")
+    rank = np.zeros(len(work), dtype=int)
+    p_next = np.full(len(work), np.nan)
+    next_gap = np.full(len(work), np.nan)
+    verdict = np.full(len(work), "", dtype=object)
+    for g in pd.unique(groups):
+        idx = np.flatnonzero(groups == g)
+        order = idx[np.argsort(-d.eta[idx], kind="stable")]
+        rank[order] = np.arange(1, len(order) + 1)
+        if len(order) < 2:
+            continue
+        a, b = order[:-1], order[1:]
+        var = eng.diff_var(d, a, d, b)
+        p_next[a] = prob_better(d.eta[a], d.eta[b], var, 0.0, 0.0)
+        next_gap[a] = _expit(d.eta[a]) / _expit(d.eta[b]) - 1.0
+        top = order[0]
+        shown = _prob_text(p_next[top])
+        if p_next[top] >= CLEARLY_AHEAD:
+            verdict[top] = f"clearly ahead of the next draft (P(truly better) {shown})"
+        else:
+            verdict[top] = f"within noise of the next draft (P(truly better) {shown})"
+    return {"group_rank": rank, "p_better_than_next": p_next, "gap_to_next": next_gap, "verdict": verdict}
+
+
+def _prob_text(p: float) -> str:
+    if p > 0.995:
+        return "> 0.99"
+    if p < 0.005:
+        return "< 0.01"
+    return f"= {p:.2f}"
+
+
+def _slot_columns(model, work: pd.DataFrame, history: pd.DataFrame | None, tz: str,
+                  notes: list[str], level: float = 0.9) -> tuple[dict, list]:
+    from .slots import plan_slots
+
+    names = ("best_slot", "best_slot_rate", "best_slot_lift", "best_slot_lift_low", "best_slot_lift_high",
+             "usual_slot")
+    if history is None or "local_weekday" not in history or "local_hour" not in history:
+        notes.append("Best slots need the post history with posting times (score with a workspace, or pass history).")
+        return {c: [None] * len(work) for c in names}, [None] * len(work)
+    cols: dict[str, list] = {c: [] for c in names}
+    plans = []
+    cache: dict[tuple, object] = {}
+    for i in range(len(work)):
+        ch = work["channel"].iloc[i] if "channel" in work else None
+        start = work["local_date"].iloc[i] if "local_date" in work and work["local_date"].iloc[i] else None
+        key = (work["headline"].iloc[i], ch, start)
+        if key not in cache:
+            cache[key] = plan_slots(model, str(work["headline"].iloc[i]), ch, history, start=start, timezone=tz,
+                                    level=level)
+        plan = cache[key]
+        plans.append(plan)
+        b = plan.best.iloc[0] if len(plan.best) else None
+        cols["best_slot"].append(b["slot"] if b is not None else None)
+        for c, field in (("best_slot_rate", "predicted_rate"), ("best_slot_lift", "lift_vs_usual"),
+                         ("best_slot_lift_low", "lift_low"), ("best_slot_lift_high", "lift_high")):
+            cols[c].append(float(b[field]) if b is not None else np.nan)
+        cols["usual_slot"].append(plan.usual.get("label") if plan.usual else None)
+    return cols, plans
+
+
+def score_frame(model, drafts: pd.DataFrame, timezone: str | None = None, impressions=None) -> pd.DataFrame:
+    """The simplest scoring: the input columns plus ``predicted_rate``, ``rate_low``, ``rate_high``.
+
+    What ``contentlab score --input DRAFTS.csv --format csv`` needs at the least,
+    and what other modules (experiments, report) can call without the reasons,
+    ranking and suggestions of :func:`score_drafts`. ``drafts`` may come from
+    :func:`prepare_drafts` already (then ``timezone`` is not needed).
+    """
+    if timezone is None and "local_hour" in drafts:
+        prepared = drafts
+    else:
+        prepared = prepare_drafts(drafts, timezone or "UTC", known_channels=getattr(model, "channels_", None))
+    pred = model.predict_frame(prepared) if impressions is None else model.predict_frame(prepared, impressions)
+    out = drafts.copy()
+    for c in ("predicted_rate", "rate_low", "rate_high"):
+        out[c] = pred[c].to_numpy()
+    return out
