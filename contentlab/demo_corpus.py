@@ -299,3 +299,15 @@ def main(argv: list[str] | None = None) -> None:
 
 if __name__ == "__main__":
     main()
+
+
+def true_rates(headlines: list[str], channel: str, hour: float, truth: dict = GROUND_TRUTH) -> np.ndarray:
+    """Ground-truth click rates of invented headlines (no post noise): the demo's simulated audience."""
+    from .features import HeadlineFeaturizer, topic_tokens
+
+    frame = pd.DataFrame({"headline": headlines, "channel": channel})
+    fs = HeadlineFeaturizer(min_df=1, n_jobs=1).fit(frame).transform(frame)
+    token_sets = [set(topic_tokens(t)) for t in fs.text]
+    terms = {t: np.array([t in s for s in token_sets], dtype=float) for t in truth["topic_effects"]}
+    eta = true_logit(fs.dense, terms, frame["channel"], np.full(len(frame), float(hour)), truth)
+    return 1.0 / (1.0 + np.exp(-eta))
