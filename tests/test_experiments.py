@@ -338,7 +338,7 @@ def test_next_allocation_is_reproducible_and_sums(exp):
 def test_allocation_matches_the_bandit(exp):
     record_results(exp, "laser", results([("A", 500, 10), ("B", 500, 14), ("C", 500, 12)], event_id=["1", "2", "3"]))
     seed = 1  # the fixture's seed
-    bandit = ThompsonBandit(arms=["A", "B", "C"], random_state=seed, temper=2.0, min_share=0.02)
+    bandit = ThompsonBandit(arms=["A", "B", "C"], random_state=seed)  # the defaults, as experiments.py uses them
     bandit.update_many({"A": (500, 10), "B": (500, 14), "C": (500, 12)})
     bandit.n_updates_ = 3  # one update per stored event
     expected = bandit.allocate(777)
