@@ -6,14 +6,20 @@ history (``fit``) and then turns any headlines, past or draft, into the same
 columns (``transform``). Everything is deterministic.
 
 Speed matters because scoring thousands of drafts and importing a million
-posts both go through here, so the per-headline work is kept small:
+posts both go through here, so the per-headline work is kept small, and every
+shortcut gives exactly what the reference libraries give (the tests and
+benchmarks/bench_features.py compare them value for value):
 
 * text is de-duplicated before the expensive parts run;
-* syllables are counted once per distinct word (textstat, cached);
-* VADER runs only on headlines that contain at least one lexicon token — for
-  the rest its result is known exactly (see :func:`vader_scores`);
-* structure features are vectorised regular expressions over the whole column;
-* on large batches the per-headline part is spread over both cores.
+* textstat's counting rules run on precompiled patterns, with syllables
+  counted once per distinct word from a table read straight from the CMU file;
+* VADER's tokens are found without its all-pairs punctuation table, its
+  analyser is skipped for headlines without a lexicon token (their scores are
+  exactly zero), and its valence rules for one word run inline;
+* structure flags are Python regular expressions (never pandas' engine, which
+  changes with pyarrow);
+* on large batches everything per headline, topic terms included, is spread
+  over the cores by a process pool (``PARALLEL_MIN_ROWS``).
 """
 
 from __future__ import annotations
@@ -23,6 +29,7 @@ import math
 import os
 import re
 import string
+import sys
 from dataclasses import dataclass, field
 from functools import lru_cache
 from typing import Iterable, Sequence
@@ -35,8 +42,9 @@ from .errors import ContentlabError
 
 # ---------------------------------------------------------------- cleaning
 
-_TAG = re.compile(r"<[^>]{0,200}>")
-_SPACE = re.compile(r"\s+")
+# A tag is "<" then a tag name (or "/name", "!--" comment, "!DOCTYPE"), so that
+# "3 < 5 and 7 > 2" is left alone.
+_TAG = re.compile(r"<!--.*?-->|</?[A-Za-z][A-Za-z0-9:-]*(?:\s[^<>]{0,200})?/?>|<![A-Za-z][^<>]{0,200}>", re.DOTALL)
 
 
 def clean_headline(raw: object) -> str:
@@ -44,11 +52,13 @@ def clean_headline(raw: object) -> str:
     if raw is None or (isinstance(raw, float) and math.isnan(raw)):
         return ""
     text = str(raw)
-    text = _TAG.sub(" ", text)
-    text = html.unescape(text)
-    # A second pass catches tags that were entity-encoded (``&lt;br&gt;``).
-    text = _TAG.sub(" ", text)
-    return _SPACE.sub(" ", text).strip()
+    if "<" in text or "&" in text:
+        text = _TAG.sub(" ", text)
+        text = html.unescape(text)
+        # A second pass catches tags that were entity-encoded (``&lt;br&gt;``).
+        text = _TAG.sub(" ", text)
+    # str.split() splits on exactly the characters regex \s matches (Py_UNICODE_ISSPACE).
+    return " ".join(text.split())
 
 
 # ------------------------------------------------------------ text analysis
@@ -69,25 +79,45 @@ def length_features(text: str) -> tuple[int, int, float]:
     return len(text), n_words, mean_len
 
 
+# textstat's own tokenisation, precompiled (textstat.backend: remove_punctuation,
+# list_words, count_sentences). textstat calls ``re.sub`` with pattern strings on
+# every text; compiling once and caching syllables per word is where the speed
+# comes from. tests/test_features.py checks equality with textstat on many texts.
+_TS_NONCONTRACTION_APOSTROPHE = re.compile(r"\'(?!" + r"[tsd]|ve|ll|re" + ")")
+_TS_PUNCTUATION = re.compile(r"[^\w\s\']")
+_TS_SENTENCE = re.compile(r"\b[^.!?]+[.!?]*", re.UNICODE)
+
+
+def _textstat_words(text: str) -> list[str]:
+    """textstat's ``list_words(text)``: punctuation removed, contraction apostrophes kept."""
+    return _TS_PUNCTUATION.sub("", _TS_NONCONTRACTION_APOSTROPHE.sub("", text)).split()
+
+
+def _textstat_sentences(text: str) -> int:
+    """textstat's ``count_sentences``: fragments of two words or fewer are not sentences."""
+    if not text:
+        return 0
+    sentences = _TS_SENTENCE.findall(text)
+    ignored = sum(1 for s in sentences if len(_textstat_words(s)) <= 2)
+    return max(1, len(sentences) - ignored)
+
+
 def readability(text: str) -> tuple[float, float]:
     """Flesch Reading Ease and Flesch-Kincaid grade, as textstat computes them.
 
     Same counts as ``textstat.flesch_reading_ease`` / ``flesch_kincaid_grade``
     (its word list, its sentence count, CMU-dictionary syllables with a
     hyphenation fallback) but syllables are cached per word rather than per
-    text, which matters when every headline is new. The benchmark checks the
-    two agree on every headline.
+    text, which matters when every headline is new. The tests and the
+    benchmark check the two agree.
     """
-    from textstat.backend.counts._count_sentences import count_sentences
-    from textstat.backend.selections._list_words import list_words
-
-    words = list_words(text, lowercase=True)
-    n_words = len(words)
-    n_sentences = count_sentences(text)
+    stripped = _TS_PUNCTUATION.sub("", _TS_NONCONTRACTION_APOSTROPHE.sub("", text))
+    n_words = len(stripped.split())
+    n_sentences = _textstat_sentences(text)
     if n_words == 0 or n_sentences == 0:
         return 0.0, 0.0
-    # textstat: count_syllables() over list_words(lowercase) then / count_words
-    syllables = sum(_word_syllables_raw(w) for w in words)
+    # textstat: count_syllables() over list_words(lowercase=True), then / count_words
+    syllables = sum(map(_word_syllables_raw, stripped.lower().split()))
     words_per_sentence = n_words / n_sentences
     syllables_per_word = syllables / n_words
     if words_per_sentence == 0 or syllables_per_word == 0:
@@ -99,37 +129,48 @@ def readability(text: str) -> tuple[float, float]:
     return fre, fkg
 
 
-@lru_cache(maxsize=200_000)
+@lru_cache(maxsize=400_000)
 def _word_syllables_raw(word: str) -> int:
-    """Syllables of one already-listed word, by textstat's own rule."""
-    from .langdata import ensure_language_data
-    from textstat.backend.utils._get_cmudict import get_cmudict
+    """Syllables of one already-listed word, by textstat's own rule.
 
-    ensure_language_data()
+    textstat: the first CMU pronunciation's stressed phones; for a word the
+    dictionary lacks, pyphen's hyphenation points plus one.
+    """
+    from .langdata import syllable_table
+
+    count = syllable_table().get(word)
+    if count is not None:
+        return count
+    return len(_pyphen().positions(word)) + 1
+
+
+@lru_cache(maxsize=1)
+def _pyphen():
     from textstat.backend.utils._get_pyphen import get_pyphen
 
-    try:
-        phones = get_cmudict("en_US")[word][0]
-        return sum(1 for p in phones if p[-1].isdigit())
-    except (TypeError, IndexError, KeyError):
-        return len(get_pyphen("en_US").positions(word)) + 1
+    return get_pyphen("en_US")
 
 
 _VADER = None
 _VADER_TOKENS: frozenset[str] | None = None
 _PUNCT = string.punctuation
+_PUNCT_CHARS = frozenset(string.punctuation)
+_DELETE_PUNCT = str.maketrans("", "", string.punctuation)
+_VADER_PUNC_LIST: frozenset[str] = frozenset()
 
 
 def _vader():
-    global _VADER, _VADER_TOKENS
+    global _VADER, _VADER_TOKENS, _VADER_PUNC_LIST
     if _VADER is None:
         from .langdata import ensure_language_data
 
         ensure_language_data()
         from nltk.sentiment.vader import SentimentIntensityAnalyzer
 
-        _VADER = SentimentIntensityAnalyzer()
-        _VADER_TOKENS = frozenset(_VADER.lexicon)
+        analyser = SentimentIntensityAnalyzer()
+        _VADER_TOKENS = frozenset(analyser.lexicon)
+        _VADER_PUNC_LIST = frozenset(analyser.constants.PUNC_LIST)
+        _VADER = analyser
     return _VADER
 
 
@@ -138,26 +179,148 @@ def lexicon() -> dict[str, float]:
     return _vader().lexicon
 
 
+def vader_tokens(text: str) -> list[str]:
+    """VADER's ``words_and_emoticons`` of a text, computed directly.
+
+    NLTK's ``SentiText`` builds a dictionary of every (punctuation, word) pair
+    of the text to strip one punctuation mark from the edge of a token; that
+    is two thirds of VADER's time on a headline. The rule it implements is: a
+    token longer than one character that is a ``PUNC_LIST`` entry followed (or
+    preceded) by a punctuation-free word of the text is replaced by that
+    word. Since the word holds no punctuation, the mark must be the token's
+    whole leading (or trailing) run of punctuation, so one look-up decides.
+    """
+    _vader()
+    words_only = None  # built on the first token with punctuation at an edge
+    out = []
+    for token in text.split():
+        if len(token) <= 1:
+            continue
+        if (token[0] in _PUNCT_CHARS or token[-1] in _PUNCT_CHARS) and words_only is None:
+            words_only = {w for w in text.translate(_DELETE_PUNCT).split() if len(w) > 1}
+        if token[0] in _PUNCT_CHARS:
+            core = token.lstrip(_PUNCT)
+            if core in words_only and token[: len(token) - len(core)] in _VADER_PUNC_LIST:
+                token = core
+        elif token[-1] in _PUNCT_CHARS:
+            core = token.rstrip(_PUNCT)
+            if core in words_only and token[len(core):] in _VADER_PUNC_LIST:
+                token = core
+        out.append(token)
+    return out
+
+
+class _SentiTokens:
+    """What NLTK's ``sentiment_valence`` reads from a ``SentiText``."""
+
+    __slots__ = ("words_and_emoticons", "is_cap_diff")
+
+    def __init__(self, words: list[str]):
+        self.words_and_emoticons = words
+        n_caps = sum(1 for w in words if w.isupper())
+        self.is_cap_diff = 0 < len(words) - n_caps < len(words)
+
+
 def vader_scores(text: str) -> tuple[float, float, float]:
     """VADER compound, positive and negative proportions (Hutto and Gilbert, 2014).
 
-    VADER scores come only from tokens in its lexicon: a text with none of
-    them scores compound 0, pos 0, neg 0 whatever else it holds. So we test
-    for lexicon tokens first (a superset of VADER's own tokenisation: each
-    whitespace token lower-cased, with and without edge punctuation) and run
-    the full analyser only when there is one.
+    Equal to NLTK's ``SentimentIntensityAnalyzer.polarity_scores`` (the tests
+    check it on many texts), with two shortcuts. The tokens come from
+    :func:`vader_tokens`. And VADER scores come only from tokens in its
+    lexicon: a text with none of them scores compound 0, pos 0, neg 0
+    whatever else it holds, so those texts skip the analyser. The valence
+    rules themselves (boosters, negation, "but", idioms, capitals,
+    punctuation emphasis) are NLTK's own methods.
     """
     analyser = _vader()
-    has_candidate = False
-    for token in text.split():
-        low = token.lower()
-        if low in _VADER_TOKENS or low.strip(_PUNCT) in _VADER_TOKENS:
-            has_candidate = True
-            break
-    if not has_candidate:
+    words = vader_tokens(text)
+    lex = _VADER_TOKENS
+    lowered = [w.lower() for w in words]
+    if lex.isdisjoint(lowered):
         return 0.0, 0.0, 0.0
-    scores = analyser.polarity_scores(text)
+    # The loop of NLTK's polarity_scores, on the same tokens.
+    senti = _SentiTokens(words)
+    boosters = analyser.constants.BOOSTER_DICT
+    first_index: dict[str, int] = {}
+    for idx, token in enumerate(words):
+        first_index.setdefault(token, idx)
+    sentiments: list[float] = []
+    last = len(words) - 1
+    for item, low in zip(words, lowered):
+        i = first_index[item]
+        if (i < last and low == "kind" and words[i + 1].lower() == "of") or low in boosters:
+            sentiments.append(0)
+        elif low not in lex:
+            sentiments.append(0)  # sentiment_valence appends 0 for these
+        else:
+            sentiments.append(_valence(analyser, words, lowered, i, senti.is_cap_diff))
+    sentiments = analyser._but_check(words, sentiments)
+    scores = analyser.score_valence(sentiments, text)
     return scores["compound"], scores["pos"], scores["neg"]
+
+
+def _valence(analyser, words: list[str], lowered: list[str], i: int, is_cap_diff: bool) -> float:
+    """NLTK's ``sentiment_valence`` for the lexicon word at ``i``, step for step.
+
+    The same operations in the same order (so the same floating-point
+    result), with ``scalar_inc_dec``, ``_never_check`` and ``negated`` written
+    inline for one word; the idiom and "least" rules stay NLTK's own methods.
+    The tests compare the outcome with ``polarity_scores`` on many texts.
+    """
+    c = analyser.constants
+    lex = analyser.lexicon
+    boosters = c.BOOSTER_DICT
+    negate = c.NEGATE
+    item = words[i]
+    valence = lex[lowered[i]]
+    if item.isupper() and is_cap_diff:
+        if valence > 0:
+            valence += c.C_INCR
+        else:
+            valence -= c.C_INCR
+    for start_i in range(0, 3):
+        if i > start_i and lowered[i - (start_i + 1)] not in lex:
+            before = words[i - (start_i + 1)]
+            before_low = lowered[i - (start_i + 1)]
+            # scalar_inc_dec(before, valence, is_cap_diff)
+            scalar = 0.0
+            if before_low in boosters:
+                scalar = boosters[before_low]
+                if valence < 0:
+                    scalar *= -1
+                if before.isupper() and is_cap_diff:
+                    if valence > 0:
+                        scalar += c.C_INCR
+                    else:
+                        scalar -= c.C_INCR
+            if start_i == 1 and scalar != 0:
+                scalar = scalar * 0.95
+            if start_i == 2 and scalar != 0:
+                scalar = scalar * 0.9
+            valence = valence + scalar
+            # _never_check(valence, words, start_i, i); negated() of one word
+            if start_i == 0:
+                w = lowered[i - 1]
+                if w in negate or "n't" in w:
+                    valence = valence * c.N_SCALAR
+            elif start_i == 1:
+                if words[i - 2] == "never" and (words[i - 1] == "so" or words[i - 1] == "this"):
+                    valence = valence * 1.5
+                else:
+                    w = lowered[i - 2]
+                    if w in negate or "n't" in w:
+                        valence = valence * c.N_SCALAR
+            else:
+                if (words[i - 3] == "never" and (words[i - 2] == "so" or words[i - 2] == "this")) or (
+                    words[i - 1] == "so" or words[i - 1] == "this"
+                ):
+                    valence = valence * 1.25
+                else:
+                    w = lowered[i - 3]
+                    if w in negate or "n't" in w:
+                        valence = valence * c.N_SCALAR
+                valence = analyser._idioms_check(valence, words, i)
+    return analyser._least_check(valence, words, i)
 
 
 @lru_cache(maxsize=1)
@@ -209,16 +372,32 @@ _EMOJI = re.compile(
 )
 
 
+_STRUCTURE_REGEX = [
+    (re.compile(pattern), name not in {"has_quote", "split_colon_dash"})
+    for name, pattern in STRUCTURE_PATTERNS.items()
+]
+
+
+def structure_row(text: str) -> tuple[float, ...]:
+    """Structure flags and counts of one clean headline, in ``STRUCTURE_COLUMNS`` order.
+
+    Python's ``re`` on every text, never pandas' string methods: those switch
+    to another regex engine (RE2, ASCII ``\\b``) when pyarrow is installed, and
+    the features must not depend on what else is installed.
+    """
+    lower = text.lower()
+    flags = [1.0 if regex.search(lower if on_lower else text) else 0.0 for regex, on_lower in _STRUCTURE_REGEX]
+    flags.append(float(len(_ALLCAPS.findall(text))))
+    flags.append(float(len(_EMOJI.findall(text))))
+    return tuple(flags)
+
+
 def structure_features(texts: pd.Series) -> pd.DataFrame:
-    """Binary structure flags and counts, vectorised over a column of clean text."""
-    out = {}
-    lower = texts.str.lower()
-    for name, pattern in STRUCTURE_PATTERNS.items():
-        source = texts if name in {"has_quote", "split_colon_dash"} else lower
-        out[name] = source.str.contains(pattern, regex=True).astype(np.float64).to_numpy()
-    out["n_allcaps_words"] = texts.str.count(_ALLCAPS.pattern).astype(np.float64).to_numpy()
-    out["n_emoji"] = texts.str.count(_EMOJI.pattern).astype(np.float64).to_numpy()
-    return pd.DataFrame(out, index=texts.index)
+    """Binary structure flags and counts over a column of clean text (each distinct text once)."""
+    values = list(texts)
+    uniques, inverse = _distinct(values)
+    matrix = np.asarray([structure_row(t) for t in uniques], dtype=np.float64).reshape(len(uniques), len(STRUCTURE_COLUMNS))
+    return pd.DataFrame(matrix[inverse], columns=STRUCTURE_COLUMNS, index=texts.index)
 
 
 # ------------------------------------------------------------ topic terms
@@ -239,29 +418,38 @@ def _stemmer():
     return SnowballStemmer("english")
 
 
-def topic_tokens(text: str) -> list[str]:
-    """Stemmed unigrams and bigrams of a headline, stop words removed.
-
-    Bigrams join neighbouring kept words, so "the price of bread" gives
-    "price", "bread" and "price bread". Digits become one token ``<num>`` so
-    that "7 ways" and "9 ways" share a term.
-    """
+def _stop_words() -> frozenset[str]:
     global _STOP
     if _STOP is None:
         from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS
 
         _STOP = frozenset(ENGLISH_STOP_WORDS) | {"s", "t", "ll", "re", "ve", "d"}
-    kept = []
-    for tok in _TERM_TOKEN.findall(text.lower().replace("’", "'")):
-        tok = tok.strip("'")
-        if tok.isdigit():
-            kept.append("<num>")
-            continue
-        if tok.endswith("'s"):
-            tok = tok[:-2]
-        if len(tok) < 2 or tok in _STOP:
-            continue
-        kept.append(_stem(tok))
+    return _STOP
+
+
+@lru_cache(maxsize=400_000)
+def _term_of(token: str) -> str | None:
+    """The term one raw token contributes (stemmed, ``<num>`` for digits), or None for a stop word."""
+    token = token.strip("'")
+    if token.isdigit():
+        return "<num>"
+    if token.endswith("'s"):
+        token = token[:-2]
+    if len(token) < 2 or token in _stop_words():
+        return None
+    return _stem(token)
+
+
+def topic_tokens(text: str) -> list[str]:
+    """Stemmed unigrams and bigrams of a headline, stop words removed.
+
+    Bigrams join neighbouring kept words, so "the price of bread" gives
+    "price", "bread" and "price bread". Digits become one token ``<num>`` so
+    that "7 ways" and "9 ways" share a term. Each distinct raw token is
+    looked up once (``_term_of`` is cached): stemming is the slow part.
+    """
+    _stop_words()
+    kept = [t for t in map(_term_of, _TERM_TOKEN.findall(text.lower().replace("’", "'"))) if t is not None]
     bigrams = [f"{a} {b}" for a, b in zip(kept, kept[1:])]
     return kept + bigrams
 
@@ -323,48 +511,137 @@ def text_features(text: str) -> tuple[float, ...]:
     return (n_chars, n_words, mean_len, fre, fkg, compound, pos, neg, n_pos, n_neg)
 
 
-def _text_feature_rows(texts: Sequence[str]) -> list[tuple[float, ...]]:
-    return [text_features(t) for t in texts]
+def _text_feature_rows(texts: Sequence[str]) -> np.ndarray:
+    return np.asarray([text_features(t) for t in texts], dtype=np.float64).reshape(len(texts), len(TEXT_COLUMNS))
+
+
+def _text_and_structure_rows(texts: Sequence[str]) -> np.ndarray:
+    rows = [text_features(t) + structure_row(t) for t in texts]
+    return np.asarray(rows, dtype=np.float64).reshape(len(texts), len(TEXT_COLUMNS) + len(STRUCTURE_COLUMNS))
 
 
 def _warm() -> None:
+    """Load the lexicon, syllable table and hyphenation patterns once (before forking)."""
     _vader()
+    _stemmer()
     readability("warm up the syllable dictionary")
+    _pyphen()
 
 
-PARALLEL_MIN_ROWS = 20_000
+# Below this many distinct headlines one process is faster than starting a pool
+# (measured with benchmarks/bench_features.py: a forked pool costs ~0.1 s,
+# one headline ~0.15 ms on one core).
+PARALLEL_MIN_ROWS = 2_000
+
+
+def _distinct(texts: Sequence[str]) -> tuple[list[str], np.ndarray]:
+    """Distinct texts in first-seen order and, per input, the position of its text."""
+    positions: dict[str, int] = {}
+    inverse = np.fromiter((positions.setdefault(t, len(positions)) for t in texts), dtype=np.int64, count=len(texts))
+    return list(positions), inverse
+
+
+def _warm_terms() -> None:
+    _stemmer()
+    _stop_words()
+
+
+def _map_chunks(uniques: list, chunk_fn, n_jobs: int | None, progress: bool, warm=_warm) -> list:
+    """``chunk_fn`` over chunks of distinct texts, in order; on a process pool when the batch is large."""
+    n_jobs = n_jobs if n_jobs is not None else (os.cpu_count() or 1)
+    n = len(uniques)
+    warm()  # in the parent, so forked workers inherit the loaded data
+    bar = None
+    if progress and n > 5000:
+        from tqdm import tqdm
+
+        bar = tqdm(total=n, desc="features", unit="headline", leave=False, file=sys.stderr)
+    try:
+        parts = []
+        if n_jobs > 1 and n >= PARALLEL_MIN_ROWS:
+            from concurrent.futures import ProcessPoolExecutor
+            import multiprocessing as mp
+
+            # Several chunks per worker keep both busy to the end and the bar moving.
+            size = int(min(5000, max(250, math.ceil(n / (n_jobs * 4)))))
+            chunks = [uniques[s:s + size] for s in range(0, n, size)]
+            # Forked workers start at once with the parent's loaded data; fork is
+            # only safe on Linux (macOS system libraries are not fork-safe).
+            ctx = mp.get_context("fork") if sys.platform.startswith("linux") else None
+            with ProcessPoolExecutor(max_workers=n_jobs, mp_context=ctx, initializer=warm) as pool:
+                for chunk, part in zip(chunks, pool.map(chunk_fn, chunks)):
+                    parts.append(part)
+                    if bar is not None:
+                        bar.update(len(chunk))
+            return parts
+        for s in range(0, n, 2000):
+            chunk = uniques[s:s + 2000]
+            parts.append(chunk_fn(chunk))
+            if bar is not None:
+                bar.update(len(chunk))
+        return parts
+    finally:
+        if bar is not None:
+            bar.close()
+
+
+def _rows_for(uniques: list[str], row_fn, width: int, n_jobs: int | None, progress: bool) -> np.ndarray:
+    parts = _map_chunks(uniques, row_fn, n_jobs, progress)
+    return np.vstack(parts) if parts else np.zeros((0, width))
 
 
 def text_feature_matrix(texts: Sequence[str], n_jobs: int | None = None, progress: bool = False) -> np.ndarray:
     """Text features for many headlines: de-duplicated, parallel on large batches."""
-    uniques, inverse = np.unique(np.asarray(texts, dtype=object).astype(str), return_inverse=True)
-    n_jobs = n_jobs if n_jobs is not None else (os.cpu_count() or 1)
-    rows: list[tuple[float, ...]]
-    if n_jobs > 1 and len(uniques) >= PARALLEL_MIN_ROWS:
-        from concurrent.futures import ProcessPoolExecutor
-        import multiprocessing as mp
+    uniques, inverse = _distinct([str(t) for t in texts])
+    matrix = _rows_for(uniques, _text_feature_rows, len(TEXT_COLUMNS), n_jobs, progress)
+    return matrix[inverse]
 
-        chunks = np.array_split(uniques, max(n_jobs * 8, 1))
-        ctx = mp.get_context("fork") if "fork" in mp.get_all_start_methods() else None
-        rows = []
-        with ProcessPoolExecutor(max_workers=n_jobs, mp_context=ctx, initializer=_warm) as pool:
-            results = pool.map(_text_feature_rows, [list(c) for c in chunks])
-            if progress:
-                from tqdm import tqdm
 
-                results = tqdm(results, total=len(chunks), desc="features", unit="chunk", leave=False)
-            for part in results:
-                rows.extend(part)
-    else:
-        _warm()
-        it: Iterable[str] = uniques
-        if progress and len(uniques) > 5000:
-            from tqdm import tqdm
+def text_and_structure_matrix(texts: Sequence[str], n_jobs: int | None = None, progress: bool = False) -> np.ndarray:
+    """``TEXT_COLUMNS`` then ``STRUCTURE_COLUMNS`` for many headlines, in one pass."""
+    uniques, inverse = _distinct([str(t) for t in texts])
+    width = len(TEXT_COLUMNS) + len(STRUCTURE_COLUMNS)
+    matrix = _rows_for(uniques, _text_and_structure_rows, width, n_jobs, progress)
+    return matrix[inverse]
 
-            it = tqdm(uniques, desc="features", unit="headline", leave=False)
-        rows = [text_features(t) for t in it]
-    matrix = np.asarray(rows, dtype=np.float64).reshape(len(uniques), len(TEXT_COLUMNS))
-    return matrix[inverse.reshape(-1)]
+
+def _term_columns(texts: Sequence[str], vocabulary: dict[str, int]) -> tuple[np.ndarray, np.ndarray]:
+    """Per text, the sorted vocabulary columns of its terms: (lengths, concatenated columns)."""
+    lengths = np.zeros(len(texts), dtype=np.int64)
+    columns: list[int] = []
+    for i, text in enumerate(texts):
+        cols = sorted({vocabulary[t] for t in topic_tokens(text) if t in vocabulary})
+        lengths[i] = len(cols)
+        columns.extend(cols)
+    return lengths, np.asarray(columns, dtype=np.int32)
+
+
+def _csr_from_columns(lengths: np.ndarray, columns: np.ndarray, n_columns: int) -> sparse.csr_matrix:
+    indptr = np.zeros(len(lengths) + 1, dtype=np.int64)
+    np.cumsum(lengths, out=indptr[1:])
+    return sparse.csr_matrix(
+        (np.ones(len(columns), dtype=np.float64), columns.astype(np.int32, copy=False), indptr),
+        shape=(len(lengths), n_columns),
+    )
+
+
+def _doc_freq_chunk(pairs: Sequence[tuple[str, int]]) -> dict[str, int]:
+    """Document frequency of each term over (distinct text, number of posts with it) pairs."""
+    counts: dict[str, int] = {}
+    for text, n_copies in pairs:
+        for tok in set(topic_tokens(text)):
+            counts[tok] = counts.get(tok, 0) + n_copies
+    return counts
+
+
+class _TransformChunk:
+    """Picklable worker task: text, structure and term columns of a chunk of distinct texts."""
+
+    def __init__(self, vocabulary: dict[str, int]):
+        self.vocabulary = vocabulary
+
+    def __call__(self, texts: Sequence[str]):
+        return _text_and_structure_rows(texts), _term_columns(texts, self.vocabulary)
 
 
 # ------------------------------------------------------------- estimator
@@ -426,10 +703,14 @@ class HeadlineFeaturizer:
         if not isinstance(self.max_terms, int) or self.max_terms < 0:
             raise ContentlabError(f"max_terms must be a whole number >= 0, got {self.max_terms!r}")
         texts = _texts_of(posts)
+        # Document frequency counts every post; each distinct text is tokenised once.
+        uniques, inverse = _distinct([str(t) for t in texts])
+        copies = np.bincount(inverse, minlength=len(uniques))
         doc_freq: dict[str, int] = {}
-        for tokens in _unique_token_sets(texts):
-            for tok in tokens:
-                doc_freq[tok] = doc_freq.get(tok, 0) + 1
+        pairs = list(zip(uniques, copies.tolist()))
+        for part in _map_chunks(pairs, _doc_freq_chunk, self.n_jobs, False, warm=_warm_terms):
+            for tok, count in part.items():
+                doc_freq[tok] = doc_freq.get(tok, 0) + count
         kept = [(t, c) for t, c in doc_freq.items() if c >= self.min_df]
         # Deterministic order: most frequent first, ties alphabetical.
         kept.sort(key=lambda tc: (-tc[1], tc[0]))
@@ -447,22 +728,25 @@ class HeadlineFeaturizer:
             raise ContentlabError("The featurizer is not fitted yet: call fit(history) first.")
         texts = _texts_of(posts)
         index = posts.index
-        text_part = pd.DataFrame(
-            text_feature_matrix(texts.tolist(), n_jobs=self.n_jobs, progress=progress),
-            columns=TEXT_COLUMNS,
-            index=index,
-        )
-        struct_part = structure_features(texts)
+        uniques, inverse = _distinct([str(t) for t in texts])
+        parts = _map_chunks(uniques, _TransformChunk(self.vocabulary_), self.n_jobs, progress)
+        width = len(TEXT_COLUMNS) + len(STRUCTURE_COLUMNS)
+        dense_rows = np.vstack([d for d, _ in parts]) if parts else np.zeros((0, width))
+        lengths = np.concatenate([t[0] for _, t in parts]) if parts else np.zeros(0, dtype=np.int64)
+        columns = np.concatenate([t[1] for _, t in parts]) if parts else np.zeros(0, dtype=np.int32)
+        terms = _csr_from_columns(lengths, columns, len(self.vocabulary_))[inverse]
         hours = posts["local_hour"].to_numpy(dtype=float) if "local_hour" in posts else np.full(len(posts), np.nan)
         weekdays = (
             posts["local_weekday"].to_numpy(dtype=float) if "local_weekday" in posts else np.full(len(posts), np.nan)
         )
         time_part = time_features(hours, weekdays)
         time_part.index = index
-        dense = pd.concat([text_part, struct_part, time_part], axis=1)[DENSE_COLUMNS]
+        text_part = pd.DataFrame(dense_rows[inverse], columns=TEXT_COLUMNS + STRUCTURE_COLUMNS, index=index)
+        # Two blocks, as callers expect: to_numpy() of a selection gives a fresh, writeable array.
+        dense = pd.concat([text_part, time_part], axis=1)[DENSE_COLUMNS]
         return FeatureSet(
             dense=dense,
-            terms=self.term_matrix(texts),
+            terms=sparse.csr_matrix(terms),
             term_names=self.term_names_,
             channel=_channels_of(posts),
             text=texts,
@@ -473,22 +757,9 @@ class HeadlineFeaturizer:
 
     def term_matrix(self, texts: pd.Series) -> sparse.csr_matrix:
         """Binary presence of each vocabulary term, one row per text."""
-        vocab = self.vocabulary_
-        indptr = [0]
-        indices: list[int] = []
-        cache: dict[str, list[int]] = {}
-        for text in texts:
-            cols = cache.get(text)
-            if cols is None:
-                cols = sorted({vocab[t] for t in topic_tokens(text) if t in vocab})
-                cache[text] = cols
-            indices.extend(cols)
-            indptr.append(len(indices))
-        data = np.ones(len(indices), dtype=np.float64)
-        return sparse.csr_matrix(
-            (data, np.asarray(indices, dtype=np.int32), np.asarray(indptr, dtype=np.int64)),
-            shape=(len(indptr) - 1, len(vocab)),
-        )
+        uniques, inverse = _distinct([str(t) for t in texts])
+        lengths, columns = _term_columns(uniques, self.vocabulary_)
+        return _csr_from_columns(lengths, columns, len(self.vocabulary_))[inverse]
 
     def unseen_term_share(self, texts: pd.Series) -> np.ndarray:
         """Share of each text's unigram terms that history never showed often enough to learn."""
@@ -512,8 +783,3 @@ def _channels_of(posts: pd.DataFrame) -> pd.Series:
     if "channel" not in posts:
         return pd.Series(["(none)"] * len(posts), index=posts.index, dtype=object)
     return posts["channel"].fillna("(none)").astype(str).replace("", "(none)")
-
-
-def _unique_token_sets(texts: pd.Series) -> Iterable[set[str]]:
-    for text in texts:
-        yield set(topic_tokens(text))

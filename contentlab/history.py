@@ -6,7 +6,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from .errors import ContentlabError
-from .ingest import History, format_problems, read_history
+from .ingest import READ_STEPS, History, format_problems, read_history
 from .workspace import Workspace
 
 
@@ -54,7 +54,13 @@ def import_history(
     bad and ``skip_bad`` is off; the workspace is then left as it was.
     """
     path = Path(path)
-    history: History = read_history(path, mapping, timezone=ws.timezone)
+    show = progress and _is_large(path)
+    reading = _bar(show, desc=f"checking {path.name}", total=READ_STEPS, unit="step")
+    try:
+        history: History = read_history(path, mapping, timezone=ws.timezone, progress=reading)
+    finally:
+        if reading is not None:
+            reading.close()
     if history.problems and not skip_bad:
         raise ContentlabError(
             f"{path}: {history.rejected.shape[0]} of {history.rows_read} rows have problems; nothing was imported.\n"
@@ -63,25 +69,47 @@ def import_history(
         )
     if history.rows_read == 0:
         raise ContentlabError(f"{path}: has a header but no rows.")
-    bar = None
-    if progress and len(history.posts) > 20_000:
-        from tqdm import tqdm
-
-        bar = tqdm(total=len(history.posts), desc="storing", unit="post", leave=False)
-    try:
-        with ws.conn:
-            added, updated, unchanged = ws.upsert_posts(history.posts, source="import", progress=bar)
-            ws.record_import(str(path), history.rows_read, added, updated, unchanged, len(history.rejected))
-    finally:
-        if bar is not None:
-            bar.close()
     out_file = None
     if skip_bad and len(history.rejected):
+        # Written before the transaction, so a file we cannot write leaves the workspace as it was.
         out = rejected_path(path)
         from .safety import neutralise_frame
 
-        neutralise_frame(history.rejected).to_csv(out, index=False)
+        try:
+            neutralise_frame(history.rejected).to_csv(out, index=False)
+        except OSError as exc:
+            raise ContentlabError(f"{out}: cannot write the rejected rows ({exc.strerror}); nothing was imported.") from None
         out_file = str(out)
+    storing = _bar(show, desc="storing", total=len(history.posts), unit="post")
+    try:
+        with ws.conn:
+            added, updated, unchanged = ws.upsert_posts(history.posts, source="import", progress=storing)
+            ws.record_import(str(path), history.rows_read, added, updated, unchanged, len(history.rejected))
+    finally:
+        if storing is not None:
+            storing.close()
     return ImportSummary(
         str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file
     )
+
+
+# Files above this size show progress bars (about 30,000 posts).
+LARGE_FILE_BYTES = 4_000_000
+
+
+def _is_large(path: Path) -> bool:
+    try:
+        return path.stat().st_size >= LARGE_FILE_BYTES
+    except OSError:
+        return False
+
+
+def _bar(show: bool, **kwargs):
+    """A tqdm bar on stderr that disappears when done, or None."""
+    if not show:
+        return None
+    import sys
+
+    from tqdm import tqdm
+
+    return tqdm(file=sys.stderr, leave=False, dynamic_ncols=True, **kwargs)

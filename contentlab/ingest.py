@@ -7,10 +7,12 @@ the caller decides whether to write anything.
 
 from __future__ import annotations
 
+import codecs
 import csv
 import gzip
 import io
 import math
+import re
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -71,8 +73,12 @@ class History:
 
 # ------------------------------------------------------------------ reading
 
-def read_text(path: Path) -> str:
-    """File bytes decoded as UTF-8 (with or without BOM) or, failing that, cp1252."""
+def read_bytes(path: Path) -> tuple[bytes, str]:
+    """File bytes (gunzipped, BOM removed) and their encoding: UTF-8 if they are valid UTF-8, else cp1252.
+
+    The bytes go to pandas as they are, which needs far less memory on a large
+    export than decoding the whole file into one string first.
+    """
     try:
         raw = path.read_bytes()
     except FileNotFoundError:
@@ -85,23 +91,50 @@ def read_text(path: Path) -> str:
         except (OSError, EOFError) as exc:
             raise ContentlabError(f"{path}: looks gzip-compressed but cannot be read ({exc}).") from None
     if raw.startswith(b"\xef\xbb\xbf"):
-        return raw[3:].decode("utf-8", errors="replace")
+        return raw[3:], "utf-8"
+    return raw, "utf-8" if _is_utf8(raw) else "cp1252"
+
+
+def _is_utf8(raw: bytes, block: int = 1 << 20) -> bool:
+    """Whether ``raw`` decodes as UTF-8, checked a megabyte at a time (no full-size copy)."""
+    decoder = codecs.getincrementaldecoder("utf-8")()
+    view = memoryview(raw)
     try:
-        return raw.decode("utf-8")
+        for start in range(0, len(raw), block):
+            decoder.decode(view[start:start + block], final=False)
+        decoder.decode(b"", final=True)
     except UnicodeDecodeError:
-        # cp1252 leaves five bytes undefined; map those through latin-1 rather than fail.
-        return raw.decode("cp1252", errors="replace")
+        return False
+    return True
+
+
+def read_text(path: Path) -> str:
+    """File text: UTF-8 (with or without BOM) or, failing that, cp1252.
+
+    The five bytes cp1252 leaves undefined become U+FFFD rather than an error.
+    """
+    raw, encoding = read_bytes(path)
+    return raw.decode(encoding, errors="replace")
 
 
 def sniff_delimiter(text: str) -> str:
-    """Comma, semicolon or tab, whichever splits the header consistently."""
+    """Comma, semicolon or tab: the one the header row uses most (outside quotes).
+
+    The header decides because headlines in the rows below are free text full
+    of commas and semicolons; csv.Sniffer breaks a tie.
+    """
+    header = text.split("\n", 1)[0]
+    outside = re.sub(r'"[^"]*"', "", header)
+    counts = {d: outside.count(d) for d in (",", ";", "\t")}
+    best = max(counts.values())
+    winners = [d for d, c in counts.items() if c == best]
+    if best > 0 and len(winners) == 1:
+        return winners[0]
     sample = "\n".join(text.splitlines()[:20])
     try:
         return csv.Sniffer().sniff(sample, delimiters=",;\t").delimiter
     except csv.Error:
-        header = text.split("\n", 1)[0]
-        counts = {d: header.count(d) for d in (",", ";", "\t")}
-        return max(counts, key=counts.get) if max(counts.values()) > 0 else ","
+        return winners[0] if best > 0 else ","
 
 
 def load_mapping(path: Path | None) -> dict[str, str]:
@@ -131,22 +164,35 @@ def load_mapping(path: Path | None) -> dict[str, str]:
 
 def read_table(path: Path, mapping: dict[str, str]) -> tuple[pd.DataFrame, list[str]]:
     """All cells as text, columns renamed to contentlab's names."""
-    text = read_text(path)
-    if not text.strip():
+    raw, encoding = read_bytes(path)
+    if not raw.strip():
         raise ContentlabError(f"{path}: the file is empty. Export the post history with a header row.")
-    delimiter = sniff_delimiter(text)
+    delimiter = sniff_delimiter(raw[:65536].decode(encoding, errors="replace"))
     try:
         frame = pd.read_csv(
-            io.StringIO(text),
+            io.BytesIO(raw),
+            encoding=encoding,
+            encoding_errors="replace",
             sep=delimiter,
             dtype=str,
             keep_default_na=False,
             skipinitialspace=True,
+            skip_blank_lines=False,  # so that row numbers stay line numbers
             engine="c",
         )
     except (pd.errors.ParserError, ValueError) as exc:
-        raise ContentlabError(f"{path}: cannot be read as CSV ({exc}).") from None
+        detail = " ".join(str(exc).split())
+        raise ContentlabError(
+            f"{path}: cannot be read as CSV ({detail}). A row with more cells than the header usually "
+            "means a cell holds the delimiter without quotes around it."
+        ) from None
     frame.columns = [str(c).strip() for c in frame.columns]
+    frame.index = pd.RangeIndex(2, len(frame) + 2)  # file row numbers; the header is row 1
+    frame = frame.fillna("")
+    if len(frame.columns):
+        blank = (frame == "").all(axis=1)
+        if blank.any():
+            frame = frame.loc[~blank]
     rename = {}
     for ours, theirs in mapping.items():
         if theirs not in frame.columns:
@@ -158,6 +204,12 @@ def read_table(path: Path, mapping: dict[str, str]) -> tuple[pd.DataFrame, list[
     frame = frame.rename(columns=rename)
     lowered = {c: c.lower() for c in frame.columns if c not in rename.values() and c.lower() in KNOWN}
     frame = frame.rename(columns=lowered)
+    repeated = sorted({c for c in frame.columns if list(frame.columns).count(c) > 1})
+    if repeated:
+        raise ContentlabError(
+            f"{path}: row 1 (header), more than one column would be read as {', '.join(repeated)}. "
+            "Rename or remove the extra column, or map only one of them."
+        )
     ignored = [c for c in frame.columns if c not in KNOWN]
     return frame, ignored
 
@@ -177,6 +229,10 @@ def _count_column(frame: pd.DataFrame, column: str, rows: np.ndarray, problems: 
     finite_vals = values.to_numpy(dtype=float, na_value=np.nan)
     negative = np.nan_to_num(finite_vals, nan=0.0, posinf=0.0, neginf=0.0) < 0
     fractional = np.isfinite(finite_vals) & (np.floor(finite_vals) != finite_vals)
+    # Above 2**53 a float no longer holds every whole number; no post has that many.
+    too_large = np.isfinite(finite_vals) & (finite_vals > 2.0**53)
+    for i in np.flatnonzero(too_large):
+        problems.append((i, column, f"{_short(raw.iat[i])} is too large to be a count"))
     for i in np.flatnonzero(empty):
         problems.append((i, column, "is empty; write 0 if there were none"))
     for i in np.flatnonzero(named_nan | (nonnum & ~named_nan)):
@@ -189,7 +245,7 @@ def _count_column(frame: pd.DataFrame, column: str, rows: np.ndarray, problems: 
         problems.append((i, column, f"{raw.iat[i]} is negative; counts cannot be below 0"))
     for i in np.flatnonzero(fractional & ~negative):
         problems.append((i, column, f"{raw.iat[i]} is fractional; counts must be whole numbers"))
-    bad = empty | nonnum | named_nan | infinite | negative | fractional
+    bad = empty | nonnum | named_nan | infinite | negative | fractional | too_large
     clean = np.where(bad, 0, np.nan_to_num(finite_vals, nan=0, posinf=0, neginf=0)).astype(np.int64)
     return clean, bad
 
@@ -252,8 +308,21 @@ def parse_times(raw: pd.Series, timezone: str) -> tuple[pd.Series, np.ndarray, n
     return stored, has_time, failed
 
 
-def read_history(path: Path | str, mapping_path: Path | str | None = None, timezone: str = "UTC") -> History:
-    """Read, map and validate one export. Raises only for file-level problems."""
+READ_STEPS = 5
+
+
+def read_history(path: Path | str, mapping_path: Path | str | None = None, timezone: str = "UTC", *,
+                 progress=None) -> History:
+    """Read, map and validate one export. Raises only for file-level problems.
+
+    ``progress``, if given, is a tqdm-like bar advanced once per step
+    (:data:`READ_STEPS` steps in all).
+    """
+
+    def step(name: str) -> None:
+        if progress is not None:
+            progress.set_postfix_str(name, refresh=False)
+            progress.update(1)
     path = Path(path)
     file = str(path)
     mapping = load_mapping(Path(mapping_path) if mapping_path else None)
@@ -268,8 +337,9 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
             f"{file}: row 1 (header), missing required column(s): {', '.join(need)}. "
             f"The file has: {', '.join(frame.columns)}. Rename them, or pass --map MAP.toml."
         )
+    step("read")
     n = len(frame)
-    rows = np.arange(n) + 2  # header is line 1
+    rows = frame.index.to_numpy(dtype=np.int64)  # line numbers; the header is line 1
     found: list[tuple[int, str, str]] = []
 
     post_id = frame["post_id"].str.strip()
@@ -281,6 +351,7 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
         cell = frame["published_at"].iat[i]
         found.append((i, "published_at", f"'{_short(cell)}' is not an ISO 8601 date or date-time (e.g. 2026-03-14 or 2026-03-14T09:30:00+01:00)"))
 
+    step("dates")
     headline_raw = frame["headline"]
     headline = headline_raw.map(clean_headline)
     for i in np.flatnonzero((headline == "").to_numpy()):
@@ -289,23 +360,28 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
     for i in np.flatnonzero(lengths > MAX_HEADLINE_CHARS):
         found.append((i, "headline", f"has {lengths[i]} characters; the limit is {MAX_HEADLINE_CHARS}"))
 
-    impressions, _ = _count_column(frame, "impressions", rows, found, file)
+    step("headlines")
+    impressions, bad_impressions = _count_column(frame, "impressions", rows, found, file)
     out = {"impressions": impressions}
+    invalid = {"impressions": bad_impressions}
     for column in ["clicks", "engagements"] + [c for c in ENGAGEMENT_PARTS if c in frame.columns]:
         if column in frame.columns:
-            out[column], _ = _count_column(frame, column, rows, found, file)
+            out[column], invalid[column] = _count_column(frame, column, rows, found, file)
     engagements = None
+    parts = [c for c in ENGAGEMENT_PARTS if c in frame.columns]
     if "engagements" in frame.columns:
-        engagements = out["engagements"]
-    elif any(c in frame.columns for c in ENGAGEMENT_PARTS):
-        engagements = sum(out[c] for c in ENGAGEMENT_PARTS if c in frame.columns)
+        engagements, bad_engagements = out["engagements"], invalid["engagements"]
+    elif parts:
+        engagements = sum(out[c] for c in parts)
+        bad_engagements = np.logical_or.reduce([invalid[c] for c in parts])
     clicks = out.get("clicks")
+    # Compared only where both cells are valid counts, so one bad cell gives one problem.
     if clicks is not None:
-        for i in np.flatnonzero(clicks > impressions):
+        for i in np.flatnonzero((clicks > impressions) & ~invalid["clicks"] & ~bad_impressions):
             found.append((i, "clicks", f"{clicks[i]} clicks is more than its {impressions[i]} impressions"))
     if engagements is not None:
-        name = "engagements" if "engagements" in frame.columns else "+".join(c for c in ENGAGEMENT_PARTS if c in frame.columns)
-        for i in np.flatnonzero(engagements > impressions):
+        name = "engagements" if "engagements" in frame.columns else "+".join(parts)
+        for i in np.flatnonzero((engagements > impressions) & ~bad_engagements & ~bad_impressions):
             found.append((i, name, f"{engagements[i]} engagements is more than its {impressions[i]} impressions"))
 
     cost = np.full(n, np.nan)
@@ -337,6 +413,7 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
     clean["cost"] = cost
     clean["row"] = rows
 
+    step("counts")
     # The same post_id twice: fine when identical, a problem when the values differ.
     bad_rows = np.zeros(n, dtype=bool)
     for i, _, _ in found:
@@ -344,17 +421,25 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
     dup = clean["post_id"].duplicated(keep=False).to_numpy() & ~bad_rows & (post_id != "").to_numpy()
     if dup.any():
         value_cols = [c for c in STORED if c != "post_id"]
-        sub = clean.loc[dup, ["post_id"] + value_cols]
-        first = sub.drop_duplicates("post_id", keep="first").set_index("post_id")
-        for pos in np.flatnonzero(dup):
-            pid = clean["post_id"].iat[pos]
-            ref = first.loc[pid]
-            row_vals = clean.iloc[pos]
-            if any(not _same(row_vals[c], ref[c]) for c in value_cols):
-                first_row = int(clean.loc[clean["post_id"] == pid, "row"].iloc[0])
-                found.append((pos, "post_id", f"'{_short(pid)}' appears again with different values (first at row {first_row})"))
+        positions = np.flatnonzero(dup)
+        # Compare every repeat with the first valid row of its post_id, column by column.
+        ids = clean["post_id"].to_numpy(dtype=object)[positions]
+        first_of = {}
+        for pos, pid in zip(positions, ids):
+            first_of.setdefault(pid, pos)
+        ref = np.array([first_of[pid] for pid in ids])
+        differs = np.zeros(len(positions), dtype=bool)
+        for column in value_cols:
+            values = clean[column].to_numpy(dtype=object)
+            a, b = values[positions], values[ref]
+            a_missing, b_missing = pd.isna(a), pd.isna(b)
+            same = (a_missing & b_missing) | (~a_missing & ~b_missing & (a == b))
+            differs |= ~same
+        for pos, ref_pos, pid in zip(positions[differs], ref[differs], ids[differs]):
+            found.append((pos, "post_id", f"'{_short(pid)}' appears again with different values (first at row {rows[ref_pos]})"))
         # Identical repeats are dropped quietly below.
 
+    step("duplicates")
     problems = [Problem(file, int(rows[i]), col, reason) for i, col, reason in found]
     problems.sort(key=lambda p: (p.row, p.column))
     bad_rows = np.zeros(n, dtype=bool)
@@ -362,7 +447,7 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
         bad_rows[i] = True
     good = clean.loc[~bad_rows].drop_duplicates("post_id", keep="first")
     rejected = frame.loc[bad_rows].copy()
-    rejected.insert(0, "row", rows[bad_rows])
+    rejected.insert(0, "row", rows[bad_rows], allow_duplicates=True)
     reasons: dict[int, list[str]] = {}
     for p in problems:
         reasons.setdefault(p.row, []).append(f"{p.column}: {p.reason}")
@@ -374,14 +459,6 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
         rows_read=n,
         ignored_columns=ignored,
     )
-
-
-def _same(a, b) -> bool:
-    a_missing = a is None or (isinstance(a, float) and math.isnan(a))
-    b_missing = b is None or (isinstance(b, float) and math.isnan(b))
-    if a_missing or b_missing:
-        return a_missing and b_missing
-    return a == b
 
 
 def format_problems(problems: list[Problem], limit: int = 20) -> str:

@@ -123,3 +123,32 @@ def ensure_language_data() -> Path:
         nltk.download = _refuse_download
         _READY = root
         return root
+
+
+_SYLLABLES: dict[str, int] | None = None
+
+
+def syllable_table() -> dict[str, int]:
+    """Word -> syllables of its first CMU pronunciation, read from our cmudict file.
+
+    textstat asks NLTK's cmudict reader for ``dict()[word][0]`` and counts the
+    phones that carry a stress digit. NLTK's reader takes each line's first
+    field, lower-cased, and the fields after the variant number, keeping the
+    file's order; we read the same file the same way, which takes a fraction
+    of the time NLTK's corpus view needs (about 0.2 s instead of about 2 s).
+    """
+    global _SYLLABLES
+    if _SYLLABLES is not None:
+        return _SYLLABLES
+    root = ensure_language_data()
+    table: dict[str, int] = {}
+    with open(root / "corpora" / "cmudict" / "cmudict", encoding="utf-8", errors="replace") as handle:
+        for line in handle:
+            pieces = line.split()
+            if not pieces:
+                continue
+            word = pieces[0].lower()
+            if word not in table:
+                table[word] = sum(1 for phone in pieces[2:] if phone[-1].isdigit())
+    _SYLLABLES = table
+    return table

@@ -13,11 +13,11 @@ _FLAGS = {"is_question", "has_exclamation", "leading_number", "has_digit", "list
 _SKIP = {"hour_sin", "hour_cos", "hour_sin2", "hour_cos2", "weekday_sin", "weekday_cos"}
 
 
-def feature_summary(posts: pd.DataFrame, min_df: int = 3) -> str:
+def feature_summary(posts: pd.DataFrame, min_df: int = 3, progress: bool = False) -> str:
     """Posts per channel, date range, and each feature's spread, as a table."""
     if posts.empty:
         return "The workspace has no posts yet. Import an export: contentlab import FILE"
-    fs = HeadlineFeaturizer(min_df=min_df).fit_transform(posts)
+    fs = HeadlineFeaturizer(min_df=min_df).fit_transform(posts, progress=progress)
     lines = [f"{len(posts)} posts from {posts['local_date'].min():%Y-%m-%d} to {posts['local_date'].max():%Y-%m-%d}"]
     by_channel = posts.groupby(fs.channel.values).agg(
         posts=("post_id", "size"), impressions=("impressions", "sum"), clicks=("clicks", "sum")

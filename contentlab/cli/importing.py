@@ -35,6 +35,7 @@ def register(subparsers) -> None:
         description="Turn every stored post into features and print a summary per feature.",
         example="contentlab features --workspace my-workspace",
     )
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
     add_workspace_option(p)
     p.set_defaults(handler=cmd_features)
 
@@ -51,15 +52,41 @@ def register(subparsers) -> None:
 
 
 def cmd_import(args: argparse.Namespace) -> int:
+    from ..errors import ContentlabError
     from ..history import import_history
-    from ..workspace import Workspace, check_timezone
+    from ..workspace import DB_NAME, Workspace, check_timezone, resolve_dir
 
     if args.timezone:
         check_timezone(args.timezone)
-    with Workspace.open(args.workspace, timezone=args.timezone) as ws:
-        summary = import_history(ws, args.file, args.map, skip_bad=args.skip_bad, progress=not args.quiet)
+    folder = resolve_dir(args.workspace)
+    folder_existed, db_existed = folder.exists(), (folder / DB_NAME).exists()
+    try:
+        with Workspace.open(args.workspace) as ws:
+            previous = ws.timezone
+            if args.timezone:
+                ws.set_setting("timezone", args.timezone)
+            try:
+                summary = import_history(ws, args.file, args.map, skip_bad=args.skip_bad, progress=not args.quiet)
+            except ContentlabError:
+                if db_existed and args.timezone:
+                    ws.set_setting("timezone", previous)  # a failed import changes nothing
+                raise
+    except ContentlabError:
+        if not db_existed:  # a first import that failed leaves no empty workspace behind
+            _remove_new_workspace(folder, DB_NAME, remove_folder=not folder_existed)
+        raise
     print(summary.line())
     return 0
+
+
+def _remove_new_workspace(folder, db_name: str, remove_folder: bool) -> None:
+    for suffix in ("", "-wal", "-shm", "-journal"):
+        (folder / f"{db_name}{suffix}").unlink(missing_ok=True)
+    if remove_folder:
+        try:
+            folder.rmdir()  # only if empty: never removes anything we did not create
+        except OSError:
+            pass
 
 
 def cmd_features(args: argparse.Namespace) -> int:
@@ -67,7 +94,7 @@ def cmd_features(args: argparse.Namespace) -> int:
     from ..workspace import Workspace
 
     with Workspace.open(args.workspace, create=False) as ws:
-        print(feature_summary(ws.posts()))
+        print(feature_summary(ws.posts(), progress=not args.quiet))
     return 0
 
 

@@ -1,0 +1,83 @@
+"""Shared fixtures: small CSV files, workspace digests, the demo corpus, the real archive."""
+
+from __future__ import annotations
+
+import gzip
+import hashlib
+import os
+import sqlite3
+from pathlib import Path
+
+import pytest
+
+REPO = Path(__file__).resolve().parents[1]
+CORPUS = REPO / "corpus"
+
+GOOD_ROWS = [
+    # post_id, published_at, headline, impressions, clicks, channel
+    ("p1", "2026-03-02T09:15:00+00:00", "Seven ways to use the library", "1000", "25", "blog"),
+    ("p2", "2026-03-03T18:30:00+01:00", "Is the reading room open late?", "800", "12", "newsletter"),
+    ("p3", "2026-03-04", '"New <strong>makerspace</strong> hours &amp; prices"', "1200", "30", "social_short"),
+]
+HEADER = ["post_id", "published_at", "headline", "impressions", "clicks", "channel"]
+
+
+def csv_text(rows, header=HEADER, delimiter=",") -> str:
+    """A small export as text; cells are written as given (quote them yourself when needed)."""
+    lines = [delimiter.join(header)] + [delimiter.join(r) for r in rows]
+    return "\n".join(lines) + "\n"
+
+
+@pytest.fixture
+def write_csv(tmp_path):
+    """write_csv(rows, name=..., header=..., delimiter=..., encoding=..., gz=...) -> Path."""
+
+    def write(rows=GOOD_ROWS, name="posts.csv", header=HEADER, delimiter=",", encoding="utf-8", gz=False,
+              bom=False) -> Path:
+        data = csv_text(rows, header, delimiter).encode(encoding)
+        if bom:
+            data = b"\xef\xbb\xbf" + data
+        path = tmp_path / name
+        path.write_bytes(gzip.compress(data) if gz else data)
+        return path
+
+    return write
+
+
+def workspace_digest(directory: Path) -> tuple[int, str]:
+    """(number of posts, SHA-256 of a full SQL dump): equal before and after means nothing changed."""
+    conn = sqlite3.connect(Path(directory) / "workspace.sqlite")
+    try:
+        count = conn.execute("SELECT COUNT(*) FROM posts").fetchone()[0]
+        dump = "\n".join(conn.iterdump())
+    finally:
+        conn.close()
+    return count, hashlib.sha256(dump.encode("utf-8")).hexdigest()
+
+
+@pytest.fixture
+def digest():
+    return workspace_digest
+
+
+@pytest.fixture
+def demo_posts() -> Path:
+    return CORPUS / "posts.csv"
+
+
+@pytest.fixture
+def archive_path() -> Path:
+    """The Upworthy Research Archive extract (Matias et al., Scientific Data 2021), or skip."""
+    env = os.environ.get("CONTENTLAB_SHARED_DATA")
+    path = Path(env) if env else REPO.parent / "shared" / "data" / "ab-archive-dev.csv.gz"
+    if not path.exists():
+        pytest.skip(f"real archive not found at {path} (set CONTENTLAB_SHARED_DATA to ab-archive-dev.csv.gz)")
+    return path
+
+
+def row_with(row: tuple, **changes) -> tuple:
+    """A copy of a GOOD_ROWS row with some cells replaced by name."""
+    cells = list(row)
+    for name, value in changes.items():
+        cells[HEADER.index(name)] = value
+    return tuple(cells)
