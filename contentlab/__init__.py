@@ -16,6 +16,14 @@ _LAZY = {
     "ContentlabError": ("contentlab.errors", "ContentlabError"),
     "ThompsonBandit": ("contentlab.bandit", "ThompsonBandit"),
     "score_drafts": ("contentlab.scoring", "score_drafts"),
+    "EngagementModel": ("contentlab.model", "EngagementModel"),
+    "PenalizedBinomialGLM": ("contentlab.glm", "PenalizedBinomialGLM"),
+    "create_experiment": ("contentlab.experiments", "create_experiment"),
+    "next_allocation": ("contentlab.experiments", "next_allocation"),
+    "record_results": ("contentlab.experiments", "record_results"),
+    "experiment_status": ("contentlab.experiments", "experiment_status"),
+    "build_report": ("contentlab.report", "build_report"),
+    "write_report": ("contentlab.report", "write_report"),
 }
 
 
