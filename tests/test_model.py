@@ -1,0 +1,260 @@
+"""EngagementModel: reference fits, demo ground-truth recovery, time-respecting CV, intervals, archive signs."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from contentlab.errors import ContentlabError
+from contentlab.ingest import read_history
+from contentlab.model import EngagementModel
+from contentlab.workspace import add_local_time
+
+ROOT = Path(__file__).resolve().parent.parent
+CORPUS = ROOT / "corpus"
+
+
+def demo_posts() -> pd.DataFrame:
+    truth = json.loads((CORPUS / "ground_truth.json").read_text())
+    posts = read_history(CORPUS / "posts.csv", timezone=truth["timezone"]).posts.drop(columns="row")
+    return add_local_time(posts, truth["timezone"])
+
+
+@pytest.fixture(scope="module")
+def truth() -> dict:
+    return json.loads((CORPUS / "ground_truth.json").read_text())
+
+
+@pytest.fixture(scope="module")
+def demo_model() -> EngagementModel:
+    # Few bootstrap refits keep the module fast; the point estimates do not depend on them.
+    return EngagementModel(n_bootstrap=20, random_state=1).fit(demo_posts(), outcome="clicks")
+
+
+# ----------------------------------------------------------------------------- reference: statsmodels
+
+def synthetic_posts(n: int = 600, seed: int = 3) -> pd.DataFrame:
+    """Headlines whose negative words, question marks and length vary independently."""
+    rng = np.random.default_rng(seed)
+    neg = ["awful", "crisis", "painful", "worry", "damage", "fear"]
+    fill = ["library", "garden", "market", "river", "council", "bridge", "school", "museum", "street"]
+    rows = []
+    start = pd.Timestamp("2025-01-06")
+    for i in range(n):
+        words = list(rng.choice(fill, size=rng.integers(3, 9)))
+        for _ in range(rng.integers(0, 3)):
+            words.insert(int(rng.integers(0, len(words))), str(rng.choice(neg)))
+        text = " ".join(words).capitalize() + ("?" if rng.random() < 0.4 else "")
+        rows.append({
+            "post_id": f"p{i:04d}",
+            "published_at": (start + pd.Timedelta(days=int(i * 70 / n))).strftime("%Y-%m-%d"),
+            "has_time": 0,
+            "headline": text,
+            "impressions": int(rng.integers(500, 5000)),
+            "channel": "blog" if rng.random() < 0.5 else "newsletter",
+            "experiment_id": None,
+            "image_id": None,
+        })
+    return pd.DataFrame(rows)
+
+
+def test_unpenalised_limit_matches_statsmodels_glm():
+    """Reference: statsmodels GLM(family=Binomial()) on (clicks, non-clicks), the same design."""
+    import statsmodels.api as sm
+
+    from contentlab.features import HeadlineFeaturizer
+
+    posts = synthetic_posts()
+    dense = ["n_negative_words", "is_question", "n_chars"]
+    fs = HeadlineFeaturizer(min_df=1, n_jobs=1).fit(posts).transform(posts)
+    rng = np.random.default_rng(11)
+    blog = (posts["channel"] == "blog").to_numpy(float)
+    eta = -3.5 + 0.3 * blog + 0.12 * fs.dense["n_negative_words"] - 0.2 * fs.dense["is_question"] \
+        - 0.004 * fs.dense["n_chars"]
+    posts["clicks"] = rng.binomial(posts["impressions"], 1 / (1 + np.exp(-eta)))
+    posts = add_local_time(posts, "UTC")
+
+    model = EngagementModel(dense_features=dense, use_time=False, terms=False, wording="none",
+                            alphas=[1e-12], dense_alpha=1e-12, n_bootstrap=0).fit(posts)
+    st = model.state_
+    ours = model.glm_.coef_[: len(dense)] / st["scale"]
+
+    X = sm.add_constant(np.column_stack([fs.dense[dense].to_numpy(float), blog]))
+    endog = np.column_stack([posts["clicks"], posts["impressions"] - posts["clicks"]])
+    ref = sm.GLM(endog, X, family=sm.families.Binomial()).fit()
+    np.testing.assert_allclose(ours, ref.params[1:4], atol=1e-3)
+    # Channel contrast (blog vs newsletter) and the fitted rates agree too.
+    ch = model.glm_.coef_[len(dense): len(dense) + 2]
+    contrast = ch[model.channels_.index("blog")] - ch[model.channels_.index("newsletter")]
+    assert abs(contrast - ref.params[4]) < 1e-3
+    np.testing.assert_allclose(model.predict(posts), ref.fittedvalues, rtol=1e-3)
+
+
+# ----------------------------------------------------------------------------- demo recovery
+
+def _effect_table(model: EngagementModel, truth: dict) -> pd.DataFrame:
+    """Ground-truth effect vs learned one, both as log-odds change for the driver's step."""
+    dr = model.drivers(top_terms=60).set_index("driver")
+    steps = {"n_chars": 10.0, "flesch_reading_ease": 10.0}
+    rows = []
+    for name, effect in truth["effects"].items():
+        rows.append((name, effect * steps.get(name, 1.0), dr.loc[name, "effect_logit"]))
+    for stem, effect in truth["topic_effects"].items():
+        match = [d for d in dr.index if d.startswith("term: ") and d[6:].startswith(stem)]
+        assert match, f"topic term {stem} missing from drivers"
+        rows.append((stem, effect, dr.loc[match[0], "effect_logit"]))
+    he = truth["hour_effect"]
+    true_hour = he["amplitude"] * (np.cos(2 * np.pi * (18 - he["peak_hour"]) / 24)
+                                   - np.cos(2 * np.pi * (9 - he["peak_hour"]) / 24))
+    rows.append(("hour 18:00 vs 09:00", true_hour, dr.loc["posting hour", "effect_logit"]))
+    return pd.DataFrame(rows, columns=["effect", "truth", "learned"])
+
+
+def test_demo_recovers_ground_truth(demo_model, truth):
+    """Reference: corpus/ground_truth.json, the generator's own effects (contentlab/demo_corpus.py)."""
+    table = _effect_table(demo_model, truth)
+    nonzero = table[table["truth"] != 0]
+    wrong_sign = nonzero[np.sign(nonzero["truth"]) != np.sign(nonzero["learned"])]
+    assert wrong_sign.empty, f"wrong sign:\n{wrong_sign}"
+    # "Large": at least 0.1 on the log-odds for the driver's step (our threshold).
+    large = table[table["truth"].abs() >= 0.1]
+    rel_err = (large["learned"] - large["truth"]).abs() / large["truth"].abs()
+    assert (rel_err <= 0.25).all(), f"outside 25%:\n{large.assign(rel_err=rel_err)}"
+    assert len(large) >= 7
+
+
+def test_demo_validation_beats_baselines(demo_model):
+    v = demo_model.validation_
+    assert all(row["beats_baseline"] for row in v["deviance"])
+    assert v["trustworthy"]
+    assert v["pairwise"]["n_pairs"] > 0 and v["pairwise"]["accuracy"] > 0.5
+    assert {"overall rate", "per-channel rate", "per-channel and hour-block rate"} == {
+        row["baseline"] for row in v["deviance"]}
+
+
+def test_drivers_table_is_consistent(demo_model):
+    dr = demo_model.drivers()
+    assert list(dr["rank"]) == list(range(1, len(dr) + 1))
+    assert (dr["relative_change"].abs().diff().dropna() <= 1e-12).all()  # ranked by size
+    spans = (dr["low"] <= 0) & (dr["high"] >= 0)
+    assert (spans == dr["uncertain"]).all()
+    assert (dr["low"] <= dr["high"]).all()
+    assert any("not proof of cause" in c for c in dr.attrs["cautions"])
+    assert any("truthful" in c for c in dr.attrs["cautions"])
+    assert dr["sentence"].str.contains("interval").all()
+
+
+def test_time_cv_never_sees_the_future(demo_model):
+    """Changing later posts' clicks must not change held-out predictions of earlier blocks."""
+    oof = demo_model.oof_
+    assert oof.loc[oof["fold"] == -1, "logit"].isna().all()
+    assert oof.loc[oof["fold"] >= 1, "logit"].notna().all()
+    posts = demo_posts()
+    # One candidate penalty and variant: what is tested is the fits, not the choice between them.
+    small = EngagementModel(n_bootstrap=0, alphas=[1e-2], adaptive=False).fit(posts)
+    fold = small.oof_.set_index("post_id")["fold"]
+    later = posts["post_id"].map(fold).to_numpy() == 2
+    changed = posts.copy()
+    changed.loc[later, "clicks"] = (changed.loc[later, "impressions"] * 0.2).round()
+    other = EngagementModel(n_bootstrap=0, alphas=[1e-2], adaptive=False).fit(changed)
+    a = small.oof_.set_index("post_id")
+    b = other.oof_.set_index("post_id")
+    early = a.index[a["fold"] == 1]
+    np.testing.assert_allclose(a.loc[early, "logit"], b.loc[early, "logit"], rtol=0, atol=1e-9)
+    # ... while the block after the changed one (which learns from it) does move.
+    assert not np.allclose(a.loc[a["fold"] == 3, "logit"], b.loc[a["fold"] == 3, "logit"])
+
+
+def test_predict_frame_and_contributions(demo_model):
+    drafts = pd.DataFrame({
+        "headline": ["Have you tried the makerspace laser cutter yet?", "5 things to know about the makerspace",
+                     "Zyxwv qwrtp blorf snarfle"],
+        "channel": ["newsletter", "newsletter", "blog"],
+        "local_hour": [7.5, np.nan, 18.0],
+        "local_weekday": [3.0, np.nan, 4.0],
+    })
+    pred = demo_model.predict_frame(drafts)
+    assert list(pred.index) == list(drafts.index)
+    for col in ("predicted_rate", "rate_low", "rate_high", "logit", "logit_se", "unseen_term_share"):
+        assert col in pred
+    assert (pred["rate_low"] < pred["predicted_rate"]).all() and (pred["predicted_rate"] < pred["rate_high"]).all()
+    assert (pred["expected_low"] >= pred["rate_low"]).all() and (pred["expected_high"] <= pred["rate_high"]).all()
+    # Unseen words: flagged, and the interval widens.
+    assert pred.loc[2, "unseen_term_share"] == 1.0 and bool(pred.loc[2, "far_from_history"])
+    assert pred.loc[2, "logit_se"] > pred.loc[0, "logit_se"]
+    contrib = demo_model.contributions(drafts)
+    total = contrib.drop(columns="typical_logit").sum(axis=1) + contrib["typical_logit"]
+    np.testing.assert_allclose(total, pred["logit"], atol=1e-9)
+    assert contrib.loc[0, "is_question"] < 0 < contrib.loc[1, "has_digit"]
+    with pytest.raises(ContentlabError, match="not in the history"):
+        demo_model.predict_frame(pd.DataFrame({"headline": ["x y z"], "channel": ["tiktok"]}))
+
+
+def test_interval_coverage_on_later_demo_posts():
+    """Nominal 90% predictive intervals should hold 85-95% of later posts' observed rates."""
+    posts = demo_posts()
+    cut = posts["published_at"].sort_values().iloc[int(len(posts) * 0.75)]
+    train, test = posts[posts["published_at"] < cut], posts[posts["published_at"] >= cut]
+    model = EngagementModel(n_bootstrap=20).fit(train)
+    pred = model.predict_frame(test, impressions=test["impressions"].to_numpy())
+    rate = (test["clicks"] / test["impressions"]).to_numpy()
+    inside = (rate >= pred["rate_low"].to_numpy()) & (rate <= pred["rate_high"].to_numpy())
+    assert 0.85 <= inside.mean() <= 0.95, inside.mean()
+
+
+def test_refuses_small_history():
+    posts = demo_posts().head(40)
+    with pytest.raises(ContentlabError, match="at least 60 posts"):
+        EngagementModel(n_bootstrap=0).fit(posts)
+
+
+def test_parameters_checked_in_fit():
+    posts = demo_posts()
+    model = EngagementModel(min_df=0)
+    assert model.get_params()["min_df"] == 0  # stored unchanged
+    with pytest.raises(ContentlabError, match="min_df"):
+        model.fit(posts)
+    with pytest.raises(ContentlabError, match="dense_features"):
+        EngagementModel(dense_features=["no_such"]).fit(posts)
+    with pytest.raises(ContentlabError, match="not fitted"):
+        EngagementModel().predict(posts)
+
+
+# ----------------------------------------------------------------------------- archive
+
+def _archive() -> Path | None:
+    env = os.environ.get("CONTENTLAB_SHARED_DATA")
+    p = Path(env) if env else ROOT.parent / "shared" / "data" / "ab-archive-dev.csv.gz"
+    return p if p.exists() else None
+
+
+@pytest.mark.skipif(_archive() is None, reason="../shared/data/ab-archive-dev.csv.gz not available "
+                                               "(set CONTENTLAB_SHARED_DATA to run the archive check)")
+def test_archive_emotion_word_signs():
+    """Upworthy Research Archive (Matias et al., Scientific Data 2021): negative words raise clicks and
+    positive words do not (Robertson et al., Nature Human Behaviour 2023; Gligoric et al., PLOS ONE 2023)."""
+    posts = add_local_time(read_history(_archive()).posts.drop(columns="row"), "UTC")
+    model = EngagementModel(n_bootstrap=0, wording="none", alphas=[3e-3], adaptive=False).fit(posts)
+    dr = model.drivers(top_terms=0).set_index("driver")
+    assert dr.loc["n_negative_words", "effect_logit"] > 0
+    assert dr.loc["n_positive_words", "effect_logit"] <= 0
+    assert model.validation_["within_experiment"]["n_posts"] > 1000
+
+
+def test_forked_workers_give_the_same_fit(monkeypatch):
+    """CV folds and bootstrap refits in worker processes: same numbers as in one process."""
+    import contentlab.model as model_module
+
+    posts = demo_posts()
+    kw = dict(n_bootstrap=4, alphas=[1e-2, 1e-3])
+    serial = EngagementModel(n_jobs=1, **kw).fit(posts)
+    monkeypatch.setattr(model_module, "PARALLEL_MIN_POSTS", 0)
+    forked = EngagementModel(n_jobs=2, **kw).fit(posts)
+    pd.testing.assert_frame_equal(serial.cv_results_, forked.cv_results_)
+    np.testing.assert_array_equal(serial.glm_.coef_, forked.glm_.coef_)
+    np.testing.assert_array_equal(serial.boot_coef_, forked.boot_coef_)
