@@ -6,7 +6,10 @@ Prints, separately: featurising the posts (HeadlineFeaturizer, which learn runs
 first), the whole EngagementModel.fit (featurising + time-fold CV of the
 penalty + final fit + bootstrap), and peak resident memory of the process.
 Target in the issue: under 30 s and 4 GB on 2 cores. No assertions; the
-machine is shared, so figures are noisy.
+machine is shared, so figures are noisy. 100,000 posts is a "large history"
+for learn (contentlab.model.LARGE_HISTORY_POSTS): its penalty search runs coarse
+to fine with a looser CV tolerance; ``--jobs 2`` also runs the CV folds and the
+bootstrap refits in two worker processes.
 
 Example::
 

@@ -258,3 +258,25 @@ def test_forked_workers_give_the_same_fit(monkeypatch):
     pd.testing.assert_frame_equal(serial.cv_results_, forked.cv_results_)
     np.testing.assert_array_equal(serial.glm_.coef_, forked.glm_.coef_)
     np.testing.assert_array_equal(serial.boot_coef_, forked.boot_coef_)
+
+
+def test_large_history_economies_keep_the_choice(monkeypatch, demo_model):
+    """Coarse-to-fine penalty search and looser CV tolerance (used from LARGE_HISTORY_POSTS on).
+
+    Reference: the full search of the demo fit. The economised search may stop on a
+    neighbouring candidate (half a decade away) but must reach the same signs for the
+    ground-truth dense effects and fit the final model at the usual tight tolerance.
+    """
+    import contentlab.model as model_module
+
+    monkeypatch.setattr(model_module, "LARGE_HISTORY_POSTS", 0)
+    quick = EngagementModel(n_bootstrap=0, random_state=1).fit(demo_posts(), outcome="clicks")
+    # The first candidates searched are one decade apart (1e-1, then 1e-2).
+    assert np.allclose(quick.cv_results_["alpha"].unique()[:2], [1e-1, 1e-2])
+    ratio = quick.alpha_ / demo_model.alpha_
+    assert 10 ** -0.51 <= ratio <= 10 ** 0.51, (quick.alpha_, demo_model.alpha_)
+    assert quick.glm_.tol == 1e-6
+    a = demo_model.glm_.coef_[: len(demo_model.dense_columns_)]
+    b = quick.glm_.coef_[: len(quick.dense_columns_)]
+    big = np.abs(a) > 0.05
+    assert big.any() and np.all(np.sign(a[big]) == np.sign(b[big]))
