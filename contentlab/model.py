@@ -927,8 +927,6 @@ class EngagementModel(BaseEstimator):
         expected_high, logit, logit_se, impressions_assumed,
         unseen_term_share, n_unseen_terms, n_outside_range, far_from_history``.
         """
-        from scipy import stats
-
         X, channel, unseen_n, unseen_share, outside, _ = self._draft_design(drafts, allow_unknown_channel)
         coef = self.glm_.coef_[: self.n_shared_]
         eta = np.asarray(X @ coef).ravel() + self.glm_.intercept_
@@ -937,44 +935,58 @@ class EngagementModel(BaseEstimator):
             param_var = np.var(eb, axis=1, ddof=1)
         else:
             param_var = np.zeros(len(eta))
+        return pd.DataFrame(
+            self.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions),
+            index=drafts.index,
+        )
+
+    def interval_columns(self, eta, param_var, unseen_n, unseen_share, outside, channel,
+                         impressions=None) -> dict[str, np.ndarray]:
+        """``predict_frame``'s columns from a draft design's logits and bootstrap variance.
+
+        The one place the predictive interval is computed; scoring's batch path
+        calls it too, so the two can never disagree.
+        """
+        from scipy import stats
+
+        eta = np.asarray(eta, dtype=float)
+        unseen_n = np.asarray(unseen_n, dtype=float)
         # A word the model has never seen has an unknown effect: as much variance as a typical term's.
-        var_se = param_var + unseen_n * self.term_effect_var_
+        var_se = np.asarray(param_var, dtype=float) + unseen_n * self.term_effect_var_
         logit_se = np.sqrt(var_se)
         if impressions is None:
-            n_imp = np.array([self.channel_impressions_.get(c, np.median(list(self.channel_impressions_.values())))
-                              for c in channel], dtype=float)
+            fallback = float(np.median(list(self.channel_impressions_.values())))
+            n_imp = np.array([self.channel_impressions_.get(c, fallback) for c in channel], dtype=float)
         else:
             n_imp = np.broadcast_to(np.asarray(impressions, dtype=float), eta.shape).astype(float)
             if np.any(~np.isfinite(n_imp) | (n_imp <= 0)):
                 raise ContentlabError("impressions must be numbers > 0")
         s2 = var_se + self.overdispersion_
         z = stats.norm.ppf(0.5 + self.interval / 2)
+        # Logit-normal rate (parameters + post-to-post spread) by Gauss-Hermite moments, then binomial
+        # noise at n_imp impressions, moment-matched to a Beta for the interval of the observed rate.
         lat = expit(eta[:, None] + np.sqrt(s2)[:, None] * _GH_NODES[None, :])
         m = lat @ _GH_WEIGHTS
         v = np.maximum((lat ** 2) @ _GH_WEIGHTS - m ** 2, 1e-18)
         v_obs = v + np.maximum(m - m ** 2 - v, 0.0) / n_imp
         a, b = _beta_from_moments(m, v_obs)
         tail = (1 - self.interval) / 2
-        low = stats.beta.ppf(tail, a, b)
-        high = stats.beta.ppf(1 - tail, a, b)
-        far = (unseen_share >= 0.5) | (outside > 0)
-        return pd.DataFrame(
-            {
-                "predicted_rate": expit(eta),
-                "rate_low": low,
-                "rate_high": high,
-                "expected_low": expit(eta - z * logit_se),
-                "expected_high": expit(eta + z * logit_se),
-                "logit": eta,
-                "logit_se": logit_se,
-                "impressions_assumed": n_imp,
-                "unseen_term_share": unseen_share,
-                "n_unseen_terms": unseen_n.astype(int),
-                "n_outside_range": outside.astype(int),
-                "far_from_history": far,
-            },
-            index=drafts.index,
-        )
+        outside = np.asarray(outside)
+        unseen_share = np.asarray(unseen_share, dtype=float)
+        return {
+            "predicted_rate": expit(eta),
+            "rate_low": stats.beta.ppf(tail, a, b),
+            "rate_high": stats.beta.ppf(1 - tail, a, b),
+            "expected_low": expit(eta - z * logit_se),
+            "expected_high": expit(eta + z * logit_se),
+            "logit": eta,
+            "logit_se": logit_se,
+            "impressions_assumed": n_imp,
+            "unseen_term_share": unseen_share,
+            "n_unseen_terms": unseen_n.astype(int),
+            "n_outside_range": outside.astype(int),
+            "far_from_history": (unseen_share >= 0.5) | (outside > 0),
+        }
 
     def contributions(self, drafts: pd.DataFrame) -> pd.DataFrame:
         """Log-odds contribution of each feature group, relative to the channel's typical post.

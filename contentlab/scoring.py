@@ -397,47 +397,9 @@ class _Engine:
 
     def _predictions(self, eta, draws, channel, unseen_n, unseen_share, outside, impressions, index) -> pd.DataFrame:
         """predict_frame's numbers from one design pass (same formulas as EngagementModel.predict_frame)."""
-        from scipy import stats
-
-        from .model import _GH_NODES, _GH_WEIGHTS, _beta_from_moments
-
-        m = self.model
         param_var = np.var(draws, axis=1, ddof=1) if draws is not None else np.zeros(len(eta))
-        var_se = param_var + unseen_n * m.term_effect_var_
-        logit_se = np.sqrt(var_se)
-        if impressions is None:
-            fallback = float(np.median(list(m.channel_impressions_.values())))
-            n_imp = np.array([m.channel_impressions_.get(c, fallback) for c in channel], dtype=float)
-        else:
-            n_imp = np.broadcast_to(np.asarray(impressions, dtype=float), eta.shape).astype(float)
-            if np.any(~np.isfinite(n_imp) | (n_imp <= 0)):
-                raise ContentlabError("impressions must be numbers > 0")
-        s2 = var_se + m.overdispersion_
-        z = stats.norm.ppf(0.5 + m.interval / 2)
-        lat = _expit(eta[:, None] + np.sqrt(s2)[:, None] * _GH_NODES[None, :])
-        mean = lat @ _GH_WEIGHTS
-        v = np.maximum((lat ** 2) @ _GH_WEIGHTS - mean ** 2, 1e-18)
-        v_obs = v + np.maximum(mean - mean ** 2 - v, 0.0) / n_imp
-        a, b = _beta_from_moments(mean, v_obs)
-        tail = (1 - m.interval) / 2
-        low = stats.beta.ppf(tail, a, b)
-        high = stats.beta.ppf(1 - tail, a, b)
-        far = (unseen_share >= 0.5) | (outside > 0)
         return _Columns(
-            {
-                "predicted_rate": _expit(eta),
-                "rate_low": low,
-                "rate_high": high,
-                "expected_low": _expit(eta - z * logit_se),
-                "expected_high": _expit(eta + z * logit_se),
-                "logit": eta,
-                "logit_se": logit_se,
-                "impressions_assumed": n_imp,
-                "unseen_term_share": unseen_share,
-                "n_unseen_terms": np.asarray(unseen_n).astype(int),
-                "n_outside_range": np.asarray(outside).astype(int),
-                "far_from_history": far,
-            },
+            self.model.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions),
             index,
         )
 

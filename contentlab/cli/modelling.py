@@ -81,7 +81,9 @@ def cmd_learn(args: argparse.Namespace) -> int:
     with Workspace.open(args.workspace, create=False) as ws:
         posts = ws.posts()
         fingerprint = ws.fingerprint(args.outcome)
-        model = EngagementModel(n_bootstrap=args.bootstrap, progress=not args.quiet and sys.stderr.isatty())
+        # n_jobs=None: large histories spread folds and bootstrap over every core (small ones stay in one process).
+        model = EngagementModel(n_bootstrap=args.bootstrap, n_jobs=None,
+                                progress=not args.quiet and sys.stderr.isatty())
         model.fit(posts, outcome=args.outcome)
         summary = model.summary()
         drivers = model.drivers()
