@@ -9,6 +9,13 @@ import sqlite3
 from pathlib import Path
 
 import pytest
+from hypothesis import settings
+
+# CI replays the same examples every run (a property failure there is reproducible, not luck);
+# local runs keep exploring new examples.
+settings.register_profile("ci", derandomize=True, print_blob=True)
+if os.environ.get("CI"):
+    settings.load_profile("ci")
 
 REPO = Path(__file__).resolve().parents[1]
 CORPUS = REPO / "corpus"
