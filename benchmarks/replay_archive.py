@@ -67,7 +67,7 @@ arm pairs right. Rerun before quoting: the model is refitted each time.
 ``--tune`` instead reruns the search that set ThompsonBandit's defaults on the
 earlier 70%.
 
-The replay calls contentlab.bandit's vectorised core (posterior_summary,
+The replay calls contentlab.bandit.replay_regret_rows (over its vectorised core: posterior_summary,
 allocation_shares, split_impressions) on all experiments of one arm count at
 once; at start-up it checks that one experiment replayed through
 ThompsonBandit gives the identical allocations.
@@ -104,11 +104,9 @@ from contentlab.bandit import (  # noqa: E402
     DEFAULT_MIN_SHARE,
     DEFAULT_TEMPER,
     ThompsonBandit,
-    allocation_shares,
     fit_prior_strength,
-    posterior_summary,
     prior_params,
-    split_impressions,
+    replay_regret_rows,
 )
 
 ARCHIVE = "ab-archive-dev.csv.gz"
@@ -192,32 +190,11 @@ def equal_split_regret(groups: list[dict]) -> float:
 
 def replay_group(g: dict, spec: dict, rng: np.random.Generator, batch: int, n_draws: int, trace=None) -> float:
     """Replay all experiments of one arm count together; returns their total regret."""
-    p, budget = g["p"], g["budget"]
-    gap = p.max(axis=1, keepdims=True) - p
-    impressions = np.zeros_like(p)
-    clicks = np.zeros_like(p)
-    remaining = budget.astype(np.int64).copy()
-    regret = 0.0
-    while True:
-        act = np.flatnonzero(remaining > 0)
-        if act.size == 0:
-            return regret
-        n = np.minimum(batch, remaining[act])
-        # Same arithmetic as ThompsonBandit: a = a0 + clicks, b = b0 + misses.
-        a = g["a0"][act] + clicks[act]
-        b = g["b0"][act] + (impressions[act] - clicks[act])
-        prob, _ = posterior_summary(a, b, n_draws, rng)
-        share = allocation_shares(
-            prob, policy=spec["policy"], temper=spec["temper"], min_share=spec["min_share"]
-        )
-        alloc = split_impressions(share, n, rng)
-        got = rng.binomial(alloc, p[act])
-        if trace is not None:
-            trace.append(alloc[0].tolist())
-        impressions[act] += alloc
-        clicks[act] += got
-        remaining[act] -= n
-        regret += float((alloc * gap[act]).sum())
+    rows = replay_regret_rows(
+        g["p"], g["budget"], g["a0"], g["b0"], rng, batch=batch, n_draws=n_draws,
+        policy=spec["policy"], temper=spec["temper"], min_share=spec["min_share"], trace=trace,
+    )
+    return float(rows.sum())
 
 
 def replay(groups: list[dict], spec: dict, seed: int, batch: int, n_draws: int) -> float:

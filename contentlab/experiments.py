@@ -49,11 +49,9 @@ from .bandit import (
     DEFAULT_TEMPER,
     Decision,
     ThompsonBandit,
-    allocation_shares,
     fit_prior_strength,
-    posterior_summary,
     prior_params,
-    split_impressions,
+    replay_regret_rows,
     wilson_interval,
 )
 from .errors import ContentlabError
@@ -439,29 +437,10 @@ def replay_regret(
 
 
 def _replay_group(p, budget, a0, b0, rng, rounds: int, n_draws: int) -> np.ndarray:
-    """Replay rows of one arm count together; returns each row's regret."""
-    k = p.shape[1]
-    gap = p.max(axis=1, keepdims=True) - p
+    """Replay rows of one arm count together in about ``rounds`` batches; returns each row's regret."""
     batch = np.maximum(1, np.ceil(budget / rounds)).astype(np.int64)
-    remaining = budget.astype(np.int64).copy()
-    impressions = np.zeros_like(p)
-    clicks = np.zeros_like(p)
-    regret = np.zeros(len(p))
-    min_share = min(DEFAULT_MIN_SHARE, 1.0 / k)
-    while True:
-        act = np.flatnonzero(remaining > 0)
-        if act.size == 0:
-            return regret
-        n = np.minimum(batch[act], remaining[act])
-        a = a0[act] + clicks[act]
-        b = b0[act] + impressions[act] - clicks[act]
-        prob, _ = posterior_summary(a, b, n_draws, rng)
-        share = allocation_shares(prob, policy="thompson", temper=DEFAULT_TEMPER, min_share=min_share)
-        alloc = split_impressions(share, n, rng)
-        impressions[act] += alloc
-        clicks[act] += rng.binomial(alloc, p[act])
-        remaining[act] -= n
-        regret[act] += (alloc * gap[act]).sum(axis=1)
+    return replay_regret_rows(p, budget, a0, b0, rng, batch=batch, n_draws=n_draws,
+                              min_share=min(DEFAULT_MIN_SHARE, 1.0 / p.shape[1]))
 
 
 def choose_prior_strength(
