@@ -366,8 +366,9 @@ def _pct(v) -> str:
 
 
 def _clip(v, n: int) -> str:
-    s = "" if v is None else str(v)
-    return s if len(s) <= n else s[: n - 1] + "…"
+    from ..ingest import _short
+
+    return _short("" if v is None else str(v), n)
 
 
 def _wrap(text: str, width: int = 100) -> str:
