@@ -1608,9 +1608,7 @@ def _driver_changes(ws, ctx: _Context, drivers: pd.DataFrame) -> dict:
         return out
     prev = None
     try:
-        import pickle
-
-        prev = _driver_frame(pickle.loads(row[5]).drivers())
+        prev = _driver_frame(_previous_model(ws, ctx.outcome, row).drivers())
     except Exception:
         try:
             summary = json.loads(row[4])
@@ -1645,6 +1643,20 @@ def _driver_changes(ws, ctx: _Context, drivers: pd.DataFrame) -> dict:
     out["change_rows"] = [{"label": r["label"], "before": _pct_or_none(r["effect_pct_prev"]),
                            "now": _pct_or_none(r["effect_pct"])} for _, r in moved.iterrows()]
     return out
+
+
+def _previous_model(ws, outcome: str, row):
+    """The fit before the newest, through the workspace's own loader when it can reach older fits.
+
+    Falls back to reading the stored blob of ``row`` for workspaces whose ``load_model`` takes no
+    ``offset`` (a pickle written by this same installation's ``learn``).
+    """
+    try:
+        return ws.load_model(outcome, offset=1)[0]
+    except TypeError:
+        import pickle
+
+        return pickle.loads(row[5])
 
 
 # ---------------------------------------------------------------- experiments
