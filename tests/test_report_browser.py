@@ -138,6 +138,9 @@ function measure(doc, win) {
     const r = el.getBoundingClientRect();
     if (r.width && r.right > doc.documentElement.clientWidth + 0.5) wide.push(el.tagName);
   }
+  for (const w of doc.querySelectorAll('.table-wrap'))      // a table scrolling sideways inside its box
+    if (w.scrollWidth > w.clientWidth + 1) wide.push('table-wrap: ' + w.textContent.trim().slice(0, 40));
+
   let tallest = 0, emptiest = 0;
   for (const tr of doc.querySelectorAll('tbody tr')) {
     const box = tr.getBoundingClientRect(); if (!box.height) continue;
