@@ -197,3 +197,17 @@ def test_report_fits_the_screen_with_readable_chart_text(demo_html, tmp_path, wi
     assert not m["cutLabels"], m
     # The best-slots table once had ~230 px rows, mostly blank, on a phone.
     assert m["largestBlankInRowPx"] <= 40, m
+
+
+def test_report_prints(demo_html, tmp_path):
+    """The page still prints: Chromium's print to PDF gives a multi-page document (print CSS: desktop charts,
+    plain tables, no navigation)."""
+    html_path, _ = demo_html
+    pdf = tmp_path / "report.pdf"
+    done = _run(["--no-pdf-header-footer", f"--print-to-pdf={pdf}", html_path.resolve().as_uri()],
+                tmp_path / "profile")
+    assert done.returncode == 0, done.stderr[-2000:]
+    data = pdf.read_bytes()
+    assert data[:5] == b"%PDF-" and len(re.findall(rb"/Type\s*/Page[^s]", data)) >= 4
+    css = html_path.read_text(encoding="utf-8").split("@media print", 1)[1].split("</style>", 1)[0]
+    assert "svg.chart-narrow { display: none; }" in css and "svg.chart-wide { display: block; }" in css
