@@ -27,7 +27,9 @@ example-report: install
 	rm -rf $(EXAMPLE_WS)
 	@if command -v $(CHROMIUM) >/dev/null; then for f in reports/contentlab-report-*.html; do \
 	  $(CHROMIUM) --headless --no-sandbox --disable-gpu --hide-scrollbars --user-data-dir=$$(mktemp -d) \
-	    --window-size=1200,3000 --screenshot="$${f%.html}.png" "file://$$PWD/$$f" 2>/dev/null; done; \
+	    --window-size=1200,3000 --screenshot="$${f%.html}.png" "file://$$PWD/$$f" 2>/dev/null; \
+	  $(CHROMIUM) --headless --no-sandbox --disable-gpu --hide-scrollbars --user-data-dir=$$(mktemp -d) \
+	    --window-size=390,2600 --screenshot="$${f%.html}-phone.png" "file://$$PWD/$$f" 2>/dev/null; done; \
 	else echo "$(CHROMIUM) not found: the screenshot in reports/ was not updated"; fi
 
 test: install
