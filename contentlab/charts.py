@@ -148,13 +148,18 @@ def _fit(text: str, width: float, size: float, bold: bool) -> int:
     return n
 
 
+# Characters XML 1.0 does not allow at all (C0 controls other than tab/LF/CR, lone surrogates, U+FFFE/U+FFFF):
+# a headline holding one would make the chart unparseable, so they are dropped from what a chart draws.
+_NOT_XML = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\ud800-\udfff\ufffe\uffff]")
+
+
 def _esc(text: object) -> str:
-    """Text content made safe for XML/HTML: &, < and > escaped (attributes go through :func:`_attr`)."""
-    return escape(str(text))
+    """Text content made safe for XML/HTML: &, < and > escaped, characters XML forbids dropped."""
+    return escape(_NOT_XML.sub("", str(text)))
 
 
 def _attr(value: object) -> str:
-    return quoteattr(str(value))
+    return quoteattr(_NOT_XML.sub("", str(value)))
 
 
 def _num(v: float) -> str:

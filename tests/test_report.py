@@ -672,6 +672,7 @@ HOSTILE_NAMES = [
     "javascript:alert(4) <a href='javascript:alert(5)'>x</a>",
     "]]><foreignObject><iframe src=//x></iframe></foreignObject>",
     "&amp; &lt;b&gt; url(https://x/y) <!-- c -->",
+    "Control\x0bcharacters\x00 and \x1b[31m escapes \ufffe",
 ]
 
 
