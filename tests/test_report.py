@@ -605,6 +605,20 @@ def test_demo_report_next_week_slots_and_drafts(demo_ws, demo_report):
     assert nw["best_draft"]["rank"] == 1
     assert 2 <= len(nw["recommendations"]) <= 3
     assert all(r["evidence"] for r in nw["recommendations"])
+    # A leader's wording follows its probability of being truly better than the next draft, and never
+    # contradicts the section's own rule (overlapping ranges are close calls unless that probability is high).
+    from contentlab.report import LIKELY_AHEAD
+
+    for row, (_, d) in zip(sorted(nw["draft_rows"], key=lambda r: (r["group"], r["headline"])),
+                           drafts.sort_values(["group", "headline"]).iterrows()):
+        assert row["headline"] == d["headline"]
+        assert "clearly" not in row["verdict"]
+        if d["group_rank"] == 1 and np.isfinite(d["p_better_than_next"]):
+            word = "likely better" if d["p_better_than_next"] >= LIKELY_AHEAD else "a close call"
+            assert row["verdict"].startswith(word), (row["verdict"], d["p_better_than_next"])
+        else:
+            assert row["verdict"] == ""
+    assert f"below {LIKELY_AHEAD:.0%} it is a close call" in nw["drafts_meaning"]
 
 
 @settings(max_examples=8, deadline=None)
@@ -746,3 +760,18 @@ def test_chart_text_sizes_and_labels_fit():
                 left = float(x) - (w if anchor and anchor.group(1) == "end" else
                                    w / 2 if anchor and anchor.group(1) == "middle" else 0)
                 assert -0.5 <= left and left + w <= size.width + 0.5, (size.name, text)
+
+
+def test_report_html_returns_the_page_for_a_week_without_writing(tmp_path):
+    """The entry point a server calls: the same page write_report saves, as a string, for any week."""
+    from contentlab.report import report_html
+
+    ws = workspace_with(tmp_path, weekly_history(12, date(2026, 11, 23)))
+    page = report_html(ws, week="2026-W47", today=date(2026, 12, 1))
+    files = write_report(build_report(ws, week="2026-W47", today=date(2026, 12, 1)), tmp_path / "out")
+    saved = files.html.read_text(encoding="utf-8")
+    stamp = re.compile(r"written \d{4}-\d\d-\d\d \d\d:\d\d")
+    assert stamp.sub("", page) == stamp.sub("", saved) and "Week 2026-W47" in page
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out", "ws"]     # nothing else written
+    with pytest.raises(ContentlabError, match="not an ISO week"):
+        report_html(ws, week="W47")
