@@ -88,8 +88,13 @@ def simulate_experiment(ws, name: str, drafts, channel: str, hour: float, *, day
     return truth
 
 
-def run_demo(workspace_dir: str | Path, out_dir: str | Path, *, bootstrap: int = 60) -> dict:
-    """Import, learn, drivers, score, a simulated week of a test, the report. Returns what it made."""
+def run_demo(workspace_dir: str | Path, out_dir: str | Path | None = None, *, bootstrap: int = 60) -> dict:
+    """Import, learn, drivers, score, a simulated week of a test, the report. Returns what it made.
+
+    The report goes to ``out_dir``, by default ``<workspace>/reports``: the demo writes nothing outside
+    its own workspace, so running it in a checkout changes no tracked file (the committed example in
+    ``reports/`` is rewritten only by ``make example-report``).
+    """
     import time
 
     import pandas as pd
@@ -102,6 +107,7 @@ def run_demo(workspace_dir: str | Path, out_dir: str | Path, *, bootstrap: int =
     started = time.perf_counter()
     corpus = corpus_dir()
     path = fresh_workspace(workspace_dir)
+    out_dir = path / "reports" if out_dir is None else Path(out_dir)
     ws_arg = ["--workspace", str(path)]
     say("contentlab demo: Alderbank Libraries, an invented library network with two years of invented posts.")
     say(f"Workspace: {path} (fresh). Corpus: {corpus}")

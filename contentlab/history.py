@@ -73,10 +73,10 @@ def import_history(
     if skip_bad and len(history.rejected):
         # Written before the transaction, so a file we cannot write leaves the workspace as it was.
         out = rejected_path(path)
-        from .safety import neutralise_frame
+        from .safety import write_csv
 
         try:
-            neutralise_frame(history.rejected).to_csv(out, index=False)
+            write_csv(history.rejected, out)
         except OSError as exc:
             raise ContentlabError(f"{out}: cannot write the rejected rows ({exc.strerror}); nothing was imported.") from None
         out_file = str(out)

@@ -510,7 +510,7 @@ def shrink_posts(posts: pd.DataFrame, priors: pd.DataFrame) -> pd.DataFrame:
     first only because newsletters always do better; with one channel this is
     the same order as the shrunken rate itself.
     """
-    from scipy import stats as sps
+    from scipy.special import betaincinv
 
     from .stats import shrunken_rates
 
@@ -528,8 +528,10 @@ def shrink_posts(posts: pd.DataFrame, priors: pd.DataFrame) -> pd.DataFrame:
     b = np.where(np.isinf(s), np.nan, n - k + (1 - m) * np.where(np.isinf(s), 0, s))
     tail = (1 - INTERVAL) / 2
     with np.errstate(invalid="ignore"):
-        low = np.where(np.isinf(s), m, sps.beta.ppf(tail, np.maximum(a, 1e-9), np.maximum(b, 1e-9)))
-        high = np.where(np.isinf(s), m, sps.beta.ppf(1 - tail, np.maximum(a, 1e-9), np.maximum(b, 1e-9)))
+        # Beta quantiles as the inverse regularised incomplete beta function (scipy.special, the function
+        # scipy.stats.beta.ppf evaluates, without importing scipy.stats).
+        low = np.where(np.isinf(s), m, betaincinv(np.maximum(a, 1e-9), np.maximum(b, 1e-9), tail))
+        high = np.where(np.isinf(s), m, betaincinv(np.maximum(a, 1e-9), np.maximum(b, 1e-9), 1 - tail))
     out = pd.DataFrame({
         "post_id": p["post_id"].astype(str).to_numpy(),
         "headline": p["headline"].astype(str).to_numpy(),
@@ -657,9 +659,9 @@ def posts_day(frame: pd.DataFrame) -> list[str]:
 
 def expected_flags(n_items: int) -> float:
     """How many of ``n_items`` would pass |z| >= 2.5 by chance if z were standard normal."""
-    from scipy import stats as sps
+    from scipy.special import ndtr
 
-    return float(n_items * 2 * sps.norm.sf(RESIDUAL_Z))
+    return float(n_items * 2 * ndtr(-RESIDUAL_Z))
 
 
 # ---------------------------------------------------------------- formatting
@@ -1476,8 +1478,10 @@ def works_section(ws, ctx: _Context, model: dict | None, missing: list[str]) -> 
     else:
         out["idea"] = "No driver is clear yet: every interval includes no effect."
         out["meaning"] = "More posts (or an experiment) are needed before any feature can be trusted."
-    strong = list(show["clear"])
     highlight_label = clear.iloc[0]["label"] if len(clear) else None
+    # Shown from the largest rise to the largest fall, so the chart reads as a ranking.
+    show = show.iloc[np.argsort(-show["effect_pct"].to_numpy(), kind="stable")]
+    strong = list(show["clear"])
     colours = []
     for _, r in show.iterrows():
         ch = _channel_of_driver(r, ctx)
@@ -1604,9 +1608,7 @@ def _driver_changes(ws, ctx: _Context, drivers: pd.DataFrame) -> dict:
         return out
     prev = None
     try:
-        import pickle
-
-        prev = _driver_frame(pickle.loads(row[5]).drivers())
+        prev = _driver_frame(_previous_model(ws, ctx.outcome, row).drivers())
     except Exception:
         try:
             summary = json.loads(row[4])
@@ -1641,6 +1643,20 @@ def _driver_changes(ws, ctx: _Context, drivers: pd.DataFrame) -> dict:
     out["change_rows"] = [{"label": r["label"], "before": _pct_or_none(r["effect_pct_prev"]),
                            "now": _pct_or_none(r["effect_pct"])} for _, r in moved.iterrows()]
     return out
+
+
+def _previous_model(ws, outcome: str, row):
+    """The fit before the newest, through the workspace's own loader when it can reach older fits.
+
+    Falls back to reading the stored blob of ``row`` for workspaces whose ``load_model`` takes no
+    ``offset`` (a pickle written by this same installation's ``learn``).
+    """
+    try:
+        return ws.load_model(outcome, offset=1)[0]
+    except TypeError:
+        import pickle
+
+        return pickle.loads(row[5])
 
 
 # ---------------------------------------------------------------- experiments
@@ -1942,7 +1958,7 @@ def _call_scoring(mod, ws, ctx, model, queued) -> dict:
             "interval": f"{pct(r['rate_low'])}–{pct(r['rate_high'])}",
             "percentile": share_text(r.get("percentile", np.nan)),
             "rank": "" if _is_missing(r.get("group_rank")) else int(r["group_rank"]),
-            "verdict": "" if _is_missing(r.get("verdict")) else str(r["verdict"]),
+            "verdict": _lead_verdict(r.get("p_better_than_next")) if r.get("group_rank") == 1 else "",
             "colour": ctx.colours.get(str(ch)), "_perc": float(r.get("percentile", np.nan)),
         })
     order = {g: i for i, g in enumerate(dict.fromkeys(r["group"] for r in rows))}
@@ -1955,10 +1971,27 @@ def _call_scoring(mod, ws, ctx, model, queued) -> dict:
     out["drafts_idea"] = (f"{len(rows)} queued draft(s) in {groups} group(s), scored by the model and ranked within "
                           f"each group. The strongest: “{best['headline']}” ({best['channel']}), predicted "
                           f"{best['predicted']}, above {best['percentile']} of past {best['channel']} posts.")
-    out["drafts_meaning"] = ("The interval is where the post's rate is likely to land; drafts whose intervals "
-                             "overlap a lot are close calls, which is what an experiment is for.")
+    out["drafts_meaning"] = ("The 90% interval is where one post's rate is likely to land, post-to-post luck "
+                             "included, so the intervals of drafts in a group nearly always overlap. Whether the top "
+                             "draft is truly better than the next is read from the probability beside it (from the "
+                             f"difference of the two predictions): below {LIKELY_AHEAD:.0%} it is a close call, "
+                             "which is what an experiment is for; even above it, the ranking is a prediction, "
+                             "not a result.")
     out["drafts_cautions"] = [str(c) for c in scored.attrs.get("cautions", [])]
     return out
+
+
+LIKELY_AHEAD = 0.8   # P(truly better than the next draft) from which the report calls a lead "likely" (our choice)
+
+
+def _lead_verdict(p: float | None) -> str:
+    """How the report words a group leader's lead, from P(truly better than the next draft) alone."""
+    if _is_missing(p):
+        return ""
+    shown = ">99%" if p > 0.995 else f"{100 * p:.0f}%"
+    if p >= LIKELY_AHEAD:
+        return f"likely better than the next draft (P(truly better) {shown}); a test would confirm it"
+    return f"a close call with the next draft (P(truly better) {shown})"
 
 
 def _is_missing(v) -> bool:
@@ -2052,14 +2085,30 @@ def render_html(report: WeeklyReport) -> str:
         trim_blocks=True,
         lstrip_blocks=True,
     )
+    from .charts import check_svg
+
     charts = {}
     for name, svg in report.charts.items():
-        # Only SVG made by contentlab.charts is marked safe; matplotlib escapes the text inside it.
-        if not svg.startswith("<svg") or re.search(r"<\s*(script|foreignObject|iframe)|\son\w+\s*=|javascript:",
-                                                     svg, re.I):
-            raise ContentlabError(f"chart {name!r} is not plain SVG; refusing to embed it")
+        # Only SVG made by contentlab.charts is marked safe: it escapes every user string itself, and the parsed
+        # markup must hold nothing but the elements and attributes the charts draw with.
+        problems = check_svg(svg)
+        if problems:
+            raise ContentlabError(f"chart {name!r} is not plain SVG ({'; '.join(problems[:3])}); this is a bug in "
+                                  "contentlab.charts, please report it")
         charts[name] = Markup(svg)
     return env.get_template(TEMPLATE).render(r=report, charts=charts)
+
+
+def report_html(ws, *, week: str | None = None, start: str | date | None = None, end: str | date | None = None,
+                outcome: str = "clicks", drafts: pd.DataFrame | str | Path | None = None,
+                today: date | None = None) -> str:
+    """The weekly report of workspace ``ws`` as one self-contained HTML page, as a string (nothing written).
+
+    The same page :func:`write_report` saves; for a server that shows the report for any week.
+    Raises :class:`ContentlabError` for a bad week or date range.
+    """
+    return render_html(build_report(ws, week=week, start=start, end=end, outcome=outcome, today=today,
+                                    drafts=drafts))
 
 
 @dataclass(frozen=True)
@@ -2074,7 +2123,7 @@ class ReportFiles:
 
 def write_report(report: WeeklyReport, out_dir: str | Path = "reports") -> ReportFiles:
     """Write ``<out>/contentlab-report-<period>.html`` and the tables behind it as CSV (neutralised)."""
-    from .safety import neutralise_frame
+    from .safety import write_csv
 
     out = Path(out_dir)
     try:
@@ -2091,7 +2140,7 @@ def write_report(report: WeeklyReport, out_dir: str | Path = "reports") -> Repor
         if table is None:
             continue
         target = folder / f"{name}.csv"
-        neutralise_frame(_csv_ready(table)).to_csv(target, index=False)
+        write_csv(_csv_ready(table), target)
         written.append(target)
     for old in folder.glob("*.csv"):  # tables of an earlier run of the same period that this one did not write
         if old not in written:

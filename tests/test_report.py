@@ -564,9 +564,17 @@ def test_demo_report_drivers_come_from_the_model(demo_ws, demo_report):
         assert got["effect_pct"] == pytest.approx(row["relative_change"], rel=1e-12)
         assert (got["low_pct"], got["high_pct"]) == pytest.approx((row["low"], row["high"]), rel=1e-12)
         assert bool(got["clear"]) == (not row["uncertain"])
-    # Whiskers: one interval line (plus two caps) per bar, drawn as paths in the SVG.
+    # One bar per shown driver at each drawing size, largest rise first and largest fall last (sorted by
+    # effect, not by size), with one tick format on the axis.
     svg = demo_report.charts["drivers"]
-    assert svg.count("<path") >= 3 * min(len(drivers), 12)
+    shown_n = min(len(drivers), 12)
+    assert svg.count('class="bar"') == 2 * shown_n
+    effects = [r["effect_value"] for r in works["rows"]]
+    assert effects == sorted(effects, reverse=True)
+    wide = svg.split('data-size="narrow"')[0]
+    ticks = re.findall(r'text-anchor="middle" fill="#23313a">([^<]*%)</text>', wide)
+    assert len(ticks) >= 3 and len({len(t.split(".")[-1]) if "." in t else 0 for t in ticks}) == 1
+    assert all(t[0] in "+\u2212" or t.startswith("0") for t in ticks)
     assert "Against the previous fit" in works["changes_idea"]
     assert "not proof of cause" in " ".join(works["cautions"])
 
@@ -597,6 +605,20 @@ def test_demo_report_next_week_slots_and_drafts(demo_ws, demo_report):
     assert nw["best_draft"]["rank"] == 1
     assert 2 <= len(nw["recommendations"]) <= 3
     assert all(r["evidence"] for r in nw["recommendations"])
+    # A leader's wording follows its probability of being truly better than the next draft, and never
+    # contradicts the section's own rule (overlapping ranges are close calls unless that probability is high).
+    from contentlab.report import LIKELY_AHEAD
+
+    for row, (_, d) in zip(sorted(nw["draft_rows"], key=lambda r: (r["group"], r["headline"])),
+                           drafts.sort_values(["group", "headline"]).iterrows()):
+        assert row["headline"] == d["headline"]
+        assert "clearly" not in row["verdict"]
+        if d["group_rank"] == 1 and np.isfinite(d["p_better_than_next"]):
+            word = "likely better" if d["p_better_than_next"] >= LIKELY_AHEAD else "a close call"
+            assert row["verdict"].startswith(word), (row["verdict"], d["p_better_than_next"])
+        else:
+            assert row["verdict"] == ""
+    assert f"below {LIKELY_AHEAD:.0%} it is a close call" in nw["drafts_meaning"]
 
 
 @settings(max_examples=8, deadline=None)
@@ -653,4 +675,103 @@ def test_charts_are_safe_to_inline_together(demo_report):
     # One colour per channel whatever order the channels arrive in; a missing channel is grey.
     assert channel_colours(["b", "a", "(none)"]) == channel_colours(["(none)", "a", "b"])
     assert len(set(channel_colours(["a", "b", "c", "d"]).values())) == 4
-    assert label("costs $5 and $6") == r"costs \$5 and \$6"     # never parsed as mathtext
+    assert label("costs   $5\nand $6") == "costs $5 and $6"     # one line, text kept as it is (escaped on drawing)
+
+
+# ------------------------------------------------------------ hostile text in charts
+HOSTILE_NAMES = [
+    "Learn JavaScript: first steps at the makerspace",          # ordinary text that once blocked every report
+    '<svg onload="alert(1)"><script>alert(2)</script>',
+    '" onmouseover="alert(3)',
+    "javascript:alert(4) <a href='javascript:alert(5)'>x</a>",
+    "]]><foreignObject><iframe src=//x></iframe></foreignObject>",
+    "&amp; &lt;b&gt; url(https://x/y) <!-- c -->",
+    "Control\x0bcharacters\x00 and \x1b[31m escapes \ufffe",
+]
+
+
+def test_hostile_text_in_every_chart_is_escaped_and_the_report_is_written(tmp_path):
+    """Headlines, channels and experiment arms with markup, event handlers or "JavaScript:" become text."""
+    from contentlab.experiments import create_experiment, record_results, stop_experiment
+
+    specs = weekly_history(12, date(2026, 11, 16), channels=("newsletter", HOSTILE_NAMES[1]))
+    for i, h in enumerate(HOSTILE_NAMES):
+        specs.append({"day": date(2026, 11, 23) + timedelta(days=i % 5), "impressions": 3000, "clicks": 60 + i,
+                      "headline": h, "channel": HOSTILE_NAMES[(i + 2) % len(HOSTILE_NAMES)]})
+    ws = workspace_with(tmp_path, specs)
+    create_experiment(ws, "makerspace", HOSTILE_NAMES[:4], flat_prior=True, channel="newsletter", seed=1)
+    record_results(ws, "makerspace", pd.DataFrame({"arm": ["A", "B", "C", "D"], "impressions": ["900"] * 4,
+                                                   "clicks": ["20", "30", "25", "10"],
+                                                   "at": ["2026-11-25T10:00:00+00:00"] * 4}))
+    for stopped in (False, True):   # before and after the experiment is stopped
+        if stopped:
+            stop_experiment(ws, "makerspace")
+        report = build_report(ws, today=date(2026, 12, 1))
+        assert {"channels", "shift-share", "experiment-1"} <= set(report.charts)
+        from contentlab.charts import check_svg
+
+        for name, svg in report.charts.items():
+            assert check_svg(svg) == [], name
+        files = write_report(report, tmp_path / f"out{int(stopped)}")
+        html = files.html.read_text(encoding="utf-8")
+        tags = _tags(html)
+        assert not {"script", "iframe", "foreignobject"} & {t for t, _ in tags}
+        assert all(v.startswith("#") for t, attrs in tags if t == "a" for k, v in attrs if k == "href")
+        assert not [a for _, attrs in tags for a, _v in attrs if a.startswith("on")]
+        assert "Learn JavaScript: first steps at the makerspace" in html
+        assert "&lt;script&gt;alert(2)&lt;/script&gt;" in html
+
+
+@pytest.mark.parametrize("svg, finding", [
+    ('<svg class="chart"><script>alert(1)</script></svg>', "element <script>"),
+    ('<svg class="chart" onload="alert(1)"></svg>', "attribute 'onload'"),
+    ('<svg class="chart"><text fill="url(https://x/y)">t</text></svg>', "value"),
+    ('<svg class="chart"><foreignObject/></svg>', "element <foreignObject>"),
+    ('<svg class="chart"><text>unclosed</svg>', "not well-formed"),
+    ('<p>not a chart</p>', "element <p>"),
+])
+def test_svg_check_refuses_what_is_not_plain_svg(svg, finding):
+    from contentlab.charts import check_svg
+
+    assert any(finding in p for p in check_svg(svg)), check_svg(svg)
+
+
+def test_chart_text_sizes_and_labels_fit():
+    """Every chart at both sizes: text of 12 px or more in its own units, and every text inside the width.
+
+    Widths are the charts' own estimates (checked against Chromium's measured widths in
+    tests/test_report_browser.py, which also measures the drawn size at 390 px).
+    """
+    from contentlab import charts
+
+    long = "a very long driver label that would never fit in one line of a phone-sized chart at all, really"
+    svgs = [charts.interval_bars([long, "short"], [0.2, -0.1], [0.1, -0.2], [0.3, 0.05], percent=True),
+            charts.channel_bars(["newsletter", long], [0.02, 0.03], [0.025, float("nan")], {}),
+            charts.probability_bars([f"A: {long}", "B: x"], [0.7, 0.3], highlight=0),
+            charts.trend_chart([f"W{i}" for i in range(26)], [0.02 + 0.001 * i for i in range(26)])]
+    for svg in svgs:
+        assert min(float(s) for s in re.findall(r'font-size="([\d.]+)"', svg)) >= 12
+        for size in charts.SIZES:
+            part = svg.split(f'data-size="{size.name}"')[1].split("</svg>")[0]
+            for x, attrs, text in re.findall(r'<text x="([\d.]+)"([^>]*)>([^<]*)</text>', part):
+                fs = float(re.search(r'font-size="([\d.]+)"', attrs).group(1))
+                w = charts.text_width(text, fs, 'font-weight="600"' in attrs)
+                anchor = re.search(r'text-anchor="(\w+)"', attrs)
+                left = float(x) - (w if anchor and anchor.group(1) == "end" else
+                                   w / 2 if anchor and anchor.group(1) == "middle" else 0)
+                assert -0.5 <= left and left + w <= size.width + 0.5, (size.name, text)
+
+
+def test_report_html_returns_the_page_for_a_week_without_writing(tmp_path):
+    """The entry point a server calls: the same page write_report saves, as a string, for any week."""
+    from contentlab.report import report_html
+
+    ws = workspace_with(tmp_path, weekly_history(12, date(2026, 11, 23)))
+    page = report_html(ws, week="2026-W47", today=date(2026, 12, 1))
+    files = write_report(build_report(ws, week="2026-W47", today=date(2026, 12, 1)), tmp_path / "out")
+    saved = files.html.read_text(encoding="utf-8")
+    stamp = re.compile(r"written \d{4}-\d\d-\d\d \d\d:\d\d")
+    assert stamp.sub("", page) == stamp.sub("", saved) and "Week 2026-W47" in page
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out", "ws"]     # nothing else written
+    with pytest.raises(ContentlabError, match="not an ISO week"):
+        report_html(ws, week="W47")

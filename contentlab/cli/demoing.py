@@ -20,7 +20,8 @@ def register(subparsers) -> None:
     )
     p.add_argument("--workspace", metavar="DIR", default="demo-workspace",
                    help="where to build the demo workspace (emptied first; default: %(default)s)")
-    p.add_argument("--out", metavar="DIR", default="reports", help="where the report goes (default: %(default)s)")
+    p.add_argument("--out", metavar="DIR", default=None,
+                   help="where the report goes (default: a reports folder inside the demo workspace)")
     p.set_defaults(handler=cmd_demo)
 
 

@@ -407,6 +407,6 @@ def _print_json(data) -> None:
 
 
 def _print_csv(frame) -> None:
-    from ..safety import neutralise_frame
+    from ..safety import write_csv
 
-    neutralise_frame(frame).to_csv(sys.stdout, index=False)
+    write_csv(frame, sys.stdout)

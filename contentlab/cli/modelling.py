@@ -151,9 +151,9 @@ def cmd_drivers(args: argparse.Namespace) -> int:
         print(json.dumps({"outcome": model.outcome_, "interval": model.interval, "drivers": _records(frame),
                           "cautions": cautions}, indent=2, default=_json_default))
     elif args.format == "csv":
-        from ..safety import neutralise_frame
+        from ..safety import write_csv
 
-        neutralise_frame(frame).to_csv(sys.stdout, index=False)
+        write_csv(frame, sys.stdout)
     else:
         print(format_drivers(frame, model, cautions))
     return 0

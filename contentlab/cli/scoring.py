@@ -76,9 +76,9 @@ def cmd_score(args: argparse.Namespace) -> int:
     result = score_drafts(frame, args.workspace, channel=args.channel, at=args.at, suggest=suggest,
                           slots=args.slots, outcome=args.outcome)
     if args.format == "csv":
-        from ..safety import neutralise_frame
+        from ..safety import write_csv
 
-        neutralise_frame(result).to_csv(sys.stdout, index=False)
+        write_csv(result, sys.stdout)
         for line in result.attrs["cautions"]:
             print(f"note: {line}", file=sys.stderr)
     elif args.format == "json":
