@@ -81,10 +81,6 @@ async def drivers(request: Request) -> JSONResponse:
     return JSONResponse({"drivers": rows, "cautions": cautions})
 
 
-async def not_found(request: Request) -> JSONResponse:
-    raise ApiError(f"No API endpoint {request.url.path}; see the README's API section.", 404)
-
-
 routes = [
     Route("/api/score", score, methods=["POST"]),
     Route("/api/experiments", experiments, methods=["GET"]),
@@ -92,5 +88,4 @@ routes = [
     Route("/api/experiments/{name}/next", next_split, methods=["POST"]),
     Route("/api/experiments/{name}/results", results, methods=["POST"]),
     Route("/api/drivers", drivers, methods=["GET"]),
-    Route("/api/{rest:path}", not_found, methods=["GET", "POST", "PUT", "DELETE", "PATCH"]),
 ]

@@ -89,7 +89,11 @@ async def _too_large(request: Request, exc: BodyTooLarge) -> Response:
 
 
 async def _http_error(request: Request, exc: HTTPException) -> Response:
-    messages = {404: "There is no page at this address.", 405: "This address does not take that method."}
+    if _is_api(request):
+        messages = {404: f"No API endpoint {request.url.path[:200]}; see the README's API section.",
+                    405: f"{request.url.path[:200]} does not take {request.method}; see the README's API section."}
+    else:
+        messages = {404: "There is no page at this address.", 405: "This address does not take that method."}
     return _answer(request, messages.get(exc.status_code, str(exc.detail)), exc.status_code)
 
 

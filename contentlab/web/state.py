@@ -2,9 +2,9 @@
 
 Every ``contentlab`` command loads the model and the history afresh, which
 costs seconds. The app loads them once and keeps them until the workspace
-changes: each request reads two small numbers (the newest model's id and the
-newest import's id, both indexed primary keys), and only when one of them
-moved is anything reloaded. A ``learn`` run in a terminal, or an import from
+changes: each request reads four indexed maxima (newest model, import,
+observation and post rows), and only what moved is reloaded (the model only
+when a newer one was saved). A ``learn`` run in a terminal, or an import from
 the app or the CLI, is therefore picked up by the next request.
 
 Database connections are opened per call (SQLite connections belong to one
@@ -23,6 +23,10 @@ from typing import Any, Iterator
 
 from ..errors import ContentlabError
 from ..workspace import Workspace
+
+
+# Derived state that depends on the model alone, kept when only the history changed.
+MODEL_ONLY = {"drivers"}
 
 
 @dataclass
@@ -60,13 +64,20 @@ class WorkspaceState:
 
     @staticmethod
     def version(ws: Workspace) -> tuple:
-        """The cheap key of what the warm state depends on: newest model id and newest import id."""
-        model_id = ws.conn.execute("SELECT MAX(id) FROM models").fetchone()[0]
-        import_id = ws.conn.execute("SELECT MAX(id) FROM imports").fetchone()[0]
-        return (model_id, import_id, ws.timezone)
+        """The cheap key of what the warm state depends on (each an indexed maximum: O(1) reads).
+
+        The newest model id; the newest import id, observation and post rows (recording results
+        adds or updates the arms' posts, importing adds or updates posts); the time zone.
+        """
+        row = ws.conn.execute(
+            "SELECT (SELECT MAX(id) FROM models), (SELECT MAX(id) FROM imports), "
+            "(SELECT MAX(rowid) FROM observations), (SELECT MAX(rowid) FROM posts)"
+        ).fetchone()
+        return (*row, ws.timezone)
 
     def warm(self, ws: Workspace | None = None) -> Warm:
-        """The current model and history, loaded now only when the workspace changed since last time."""
+        """The current model and history; the model is loaded again only when a newer one was saved,
+        the history only when posts or results changed."""
         if ws is None:
             with self.open() as own:
                 return self.warm(own)
@@ -83,11 +94,16 @@ class WorkspaceState:
                     f"No model in the workspace at {self.path} yet. Run: contentlab learn "
                     f"--workspace {self.path} (then reload this page)."
                 )
-            model, summary = ws.load_model()
-            row = ws.latest_model_row()
-            stale = bool(row is not None and row[3] != ws.fingerprint(row[2]))
+            if current is not None and current.key[0] == key[0]:
+                model, summary = current.model, current.summary  # same model, newer history
+            else:
+                model, summary = ws.load_model()
+            row = ws.conn.execute("SELECT outcome, fingerprint FROM models WHERE id=?", (key[0],)).fetchone()
+            stale = bool(row is not None and row[1] != ws.fingerprint(row[0]))
             history = ws.posts()
-            self._warm = Warm(key, model, summary, history, ws.timezone, stale)
+            kept = {k: v for k, v in current.cache.items() if k in MODEL_ONLY} \
+                if current is not None and current.model is model else {}
+            self._warm = Warm(key, model, summary, history, ws.timezone, stale, kept)
             return self._warm
 
     def has_model(self, ws: Workspace) -> bool:
