@@ -53,8 +53,10 @@ def cmd_serve(args: argparse.Namespace) -> int:
         token = new_token()
     path = resolve_dir(args.workspace)
     app = create_app(path, token)
-    try:  # load the model before the first request, so the first page is quick too
-        app.state.workspace.warm()
+    try:  # load the model and score once before the first request, so the first one is quick too
+        from ..web.services import prewarm
+
+        prewarm(app.state.workspace)
     except ContentlabError as exc:
         print(f"note: {exc}")
     shown = f"[{args.host}]" if ":" in args.host else args.host
