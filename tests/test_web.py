@@ -471,3 +471,18 @@ def test_serve_help_and_refusals(tmp_path, capsys):
     assert not (tmp_path / "none").exists()
     assert cli(["serve", "--port", "70000", "--no-browser", "--workspace", str(tmp_path)]) == 2
     assert cli(["serve", "--token", "short", "--no-browser", "--workspace", str(tmp_path)]) == 2
+
+
+def test_workspace_without_a_model_says_what_to_do(tmp_path, write_csv):
+    ws_path = tmp_path / "fresh"
+    with Workspace.open(ws_path) as ws:
+        import_history(ws, write_csv())
+    with TestClient(create_app(ws_path), base_url="http://127.0.0.1") as c:
+        page = c.get("/drafts")
+        assert page.status_code == 200 and "contentlab learn" in page.text
+        r = c.post("/api/score", json={"drafts": [{"headline": "A draft"}]})
+        assert r.status_code == 400 and "contentlab learn" in r.json()["error"]
+        assert c.get("/experiments").status_code == 200
+        assert c.get("/api/experiments").json() == {"experiments": []}
+        assert c.get("/import").status_code == 200
+        assert c.get("/history").status_code == 400
