@@ -41,9 +41,12 @@ def line_chart(series: dict[str, list[tuple[float, float]]], *, y_label: str, x_
         parts.append(f'<line x1="{left}" x2="{width - right}" y1="{y:.1f}" y2="{y:.1f}" stroke="#ddd"/>')
         parts.append(f'<text x="{left - 6}" y="{y + 4:.1f}" text-anchor="end" font-size="12" fill="#333">'
                      f'{escape(y_format(v))}</text>')
-    for x, label in (x_ticks or [(x0, f"{x0:g}"), (x1, f"{x1:g}")]):
-        parts.append(f'<text x="{sx(x):.1f}" y="{top + h + 16}" text-anchor="middle" font-size="12" fill="#333">'
-                     f'{escape(label)}</text>')
+    ticks = x_ticks or [(x0, f"{x0:,.0f}"), (x1, f"{x1:,.0f}")]
+    for i, (x, label) in enumerate(ticks):
+        # The outermost labels are aligned inwards, so that none is cut off at the chart's edge.
+        anchor = "start" if x == x0 else "end" if x == x1 else "middle"
+        parts.append(f'<text x="{sx(x):.1f}" y="{top + h + 16}" text-anchor="{anchor}" font-size="12" '
+                     f'fill="#333">{escape(label)}</text>')
     parts.append(f'<text x="{left + w / 2:.1f}" y="{top + h + 32}" text-anchor="middle" font-size="12" '
                  f'fill="#333">{escape(x_label)}</text>')
     for i, (name, pts) in enumerate(series.items()):

@@ -18,7 +18,8 @@ def _overview(state, channel: str | None, start: str | None, end: str | None) ->
         raise ApiError(f"'{channel[:60]}' is not a channel of this history; the channels are: {', '.join(channels)}.")
     weeks = insight.trend(warm, channel or None, start, end)
     series = {(channel or "all channels"): [(i, float(r)) for i, r in enumerate(weeks["rate"])]}
-    ticks = [(i, w) for i, w in enumerate(weeks["week"]) if len(weeks) <= 8 or i % max(1, len(weeks) // 6) == 0]
+    step = max(1, -(-len(weeks) // 6))  # at most six labels, evenly spaced
+    ticks = [(i, w) for i, w in enumerate(weeks["week"]) if i % step == 0]
     chart = line_chart(series, y_label="rate per week", x_label="ISO week", y_format=lambda v: f"{v:.1%}",
                        x_ticks=ticks)
     rows, cautions = services.drivers(state)
