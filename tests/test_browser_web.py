@@ -104,6 +104,19 @@ def test_type_a_draft_and_see_its_score(server, browser):
     assert not logs, logs  # no CSP violation or script error
 
 
+def test_a_refused_request_says_so_in_place(server, browser):
+    """An expired form (CSRF cookie gone) is refused, and the page shows why instead of staying silent."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import Select
+
+    browser.get(server["url"] + "/drafts")
+    browser.delete_cookie("contentlab_csrf")
+    Select(browser.find_element(By.ID, "channel")).select_by_value("newsletter")
+    browser.find_element(By.ID, "headlines").send_keys("Opening hours this week")
+    error = _wait(browser, lambda d: d.find_elements(By.CSS_SELECTOR, "#scores .error"))[0]
+    assert "CSRF" in error.text and "Reload the page" in error.text
+
+
 def test_record_a_result_and_see_the_status_change(server, browser):
     from selenium.webdriver.common.by import By
 
