@@ -502,3 +502,57 @@ def test_prob_best_timeline_ends_at_the_status(client, ws_dir):
     assert last["impressions"] == st.impressions
     for arm, p in zip(st.arms["arm"], st.arms["prob_best"]):
         assert last["prob_best"][arm] == pytest.approx(p, abs=0.04)
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def test_serve_command_on_another_address_prints_and_requires_a_token(ws_dir):
+    """``contentlab serve --host 127.0.0.2`` (a loopback address, but not the default) must generate a
+    token, print the one-time link and refuse calls without it."""
+    import subprocess
+    import sys
+    import time
+    import urllib.error
+    import urllib.request
+
+    port = _free_port()
+    proc = subprocess.Popen(
+        [sys.executable, "-c", "from contentlab.cli import run; run()", "serve", "--workspace", str(ws_dir),
+         "--host", "127.0.0.2", "--port", str(port), "--no-browser"],
+        stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    try:
+        lines = []
+        deadline = time.monotonic() + 120
+        while time.monotonic() < deadline and not any("?token=" in x for x in lines):
+            line = proc.stdout.readline()
+            if not line:
+                break
+            lines.append(line)
+        link = next(x for x in lines if "?token=" in x).split()[1]
+        assert link.startswith(f"http://127.0.0.2:{port}/?token=")
+        token = link.split("?token=")[1]
+        url = f"http://127.0.0.2:{port}/api/experiments"
+        status = None
+        for _ in range(600):  # until the server answers
+            try:
+                with urllib.request.urlopen(url, timeout=5) as r:
+                    status = r.status
+                break
+            except urllib.error.HTTPError as exc:
+                status = exc.code
+                break
+            except OSError:
+                time.sleep(0.1)
+        assert status == 401
+        req = urllib.request.Request(url, headers={"X-Contentlab-Token": token})
+        with urllib.request.urlopen(req, timeout=30) as r:
+            assert r.status == 200 and "experiments" in json.loads(r.read())
+    finally:
+        proc.terminate()
+        proc.wait(timeout=20)
