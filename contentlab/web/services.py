@@ -190,7 +190,7 @@ def check_results_payload(payload: Any) -> tuple[list[dict], bool]:
         if extra:
             raise ApiError(f"result {i}: unknown field(s) {', '.join(extra)}; use {', '.join(RESULT_FIELDS)}.")
         for k, v in r.items():
-            if v is not None and not isinstance(v, (str, int)) or isinstance(v, bool):
+            if isinstance(v, bool) or not (v is None or isinstance(v, (str, int))):
                 raise ApiError(f'result {i}, field "{k}": must be text or a whole number.')
     cumulative = payload.get("cumulative", False)
     if not isinstance(cumulative, bool):
