@@ -161,4 +161,5 @@ def run_demo(workspace_dir: str | Path, out_dir: str | Path | None = None, *, bo
         f" Estimated clicks gained against an equal split so far: {status.clicks_gained:+.0f}.")
     say()
     say(f"Demo finished in {elapsed:.0f} s. Try: contentlab score \"Your headline\" --channel newsletter --workspace {path}")
+    say(f"Open it in the browser: contentlab serve --workspace {path}   (then http://127.0.0.1:8765/)")
     return {"report": files.html, "seconds": elapsed, "workspace": path}

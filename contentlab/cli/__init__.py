@@ -16,7 +16,7 @@ import sys
 from ..errors import ContentlabError
 
 # Modules that add subcommands, in the order they appear in --help.
-AREAS = ["importing", "modelling", "scoring", "experimenting", "reporting", "demoing"]
+AREAS = ["importing", "modelling", "scoring", "experimenting", "reporting", "serving", "demoing"]
 
 EPILOG = """\
 a week with contentlab:

@@ -1,0 +1,95 @@
+"""Shared by the page and API modules: templates, thread-pool calls, JSON answers, number formats."""
+
+from __future__ import annotations
+
+import math
+from functools import lru_cache
+from pathlib import Path
+from typing import Any, Callable
+
+from starlette.concurrency import run_in_threadpool
+from starlette.requests import Request
+from starlette.responses import HTMLResponse, JSONResponse
+
+from .security import CSRF_COOKIE, CSRF_FIELD
+
+HERE = Path(__file__).resolve().parent
+
+
+class ApiError(Exception):
+    """A problem the caller can fix, answered as ``{"error": message}`` with ``status``."""
+
+    def __init__(self, message: str, status: int = 400):
+        super().__init__(message)
+        self.message = message
+        self.status = status
+
+
+@lru_cache(maxsize=1)
+def environment():
+    import jinja2
+
+    env = jinja2.Environment(
+        loader=jinja2.FileSystemLoader(str(HERE / "templates")),
+        autoescape=True,  # every user string is escaped unless a template says otherwise (none does)
+        trim_blocks=True,
+        lstrip_blocks=True,
+    )
+    env.filters["pct"] = pct
+    env.filters["signed_pct"] = signed_pct
+    env.filters["prob"] = prob
+    env.filters["count"] = count
+    return env
+
+
+def render(request: Request, template: str, status: int = 200, **context: Any) -> HTMLResponse:
+    """A template as HTML, with the CSRF value for its forms and the current page for the menu."""
+    context.setdefault("csrf", request.cookies.get(CSRF_COOKIE, ""))
+    context.setdefault("csrf_field", CSRF_FIELD)
+    context.setdefault("page", request.url.path.split("/")[1] or "drafts")
+    html = environment().get_template(template).render(**context)
+    return HTMLResponse(html, status_code=status)
+
+
+async def blocking(func: Callable, *args, **kwargs):
+    """Run a blocking library call in the thread pool, so other requests go on meanwhile."""
+    return await run_in_threadpool(func, *args, **kwargs)
+
+
+def json_error(message: str, status: int) -> JSONResponse:
+    return JSONResponse({"error": message}, status_code=status)
+
+
+def finite(value: Any) -> float | None:
+    """A float for JSON, or None for NaN/inf/missing (JSON has no NaN)."""
+    try:
+        x = float(value)
+    except (TypeError, ValueError):
+        return None
+    return x if math.isfinite(x) else None
+
+
+def pct(value: Any, digits: int = 2) -> str:
+    x = finite(value)
+    return "n/a" if x is None else f"{x * 100:.{digits}f}%"
+
+
+def signed_pct(value: Any, digits: int = 0) -> str:
+    x = finite(value)
+    return "n/a" if x is None else f"{x * 100:+.{digits}f}%"
+
+
+def prob(value: Any) -> str:
+    x = finite(value)
+    if x is None:
+        return "n/a"
+    if x > 0.995:
+        return "> 0.99"
+    if x < 0.005:
+        return "< 0.01"
+    return f"{x:.2f}"
+
+
+def count(value: Any) -> str:
+    x = finite(value)
+    return "n/a" if x is None else f"{x:,.0f}"

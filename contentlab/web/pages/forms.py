@@ -1,0 +1,29 @@
+"""Reading a posted form with its CSRF check (shared by every page that takes a post)."""
+
+from __future__ import annotations
+
+from starlette.requests import Request
+
+from ..common import ApiError
+from ..security import csrf_ok
+
+MAX_FIELD_BYTES = 200_000  # a textarea of drafts, not a file
+
+
+async def checked_form(request: Request, *, files: int = 0):
+    """The form of a POST whose CSRF value matches its cookie, else 403 (nothing read further)."""
+    form = await request.form(max_files=files, max_fields=50, max_part_size=MAX_FIELD_BYTES)
+    if not csrf_ok(request, form):
+        raise ApiError("This form has expired or came from another site (CSRF check failed); reload the page and "
+                       "send it again.", 403)
+    return form
+
+
+def text(form, name: str, limit: int = 100_000) -> str:
+    """A text field (files and missing fields count as empty), cut at ``limit`` characters."""
+    value = form.get(name)
+    return value[:limit] if isinstance(value, str) else ""
+
+
+def is_htmx(request: Request) -> bool:
+    return request.headers.get("hx-request") == "true"

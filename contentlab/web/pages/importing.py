@@ -1,0 +1,103 @@
+"""Import: upload an export (and an optional column map); every row problem in a table; all or nothing.
+
+The upload is written to a private temporary folder under fixed names (never
+a name the user sent), validated with the importer's own reader, and stored
+only when no row has a problem, through :func:`contentlab.history.import_history`
+(one transaction). File names in messages are the uploaded name, not the
+temporary path.
+"""
+
+from __future__ import annotations
+
+import shutil
+import tempfile
+from pathlib import Path
+
+from starlette.datastructures import UploadFile
+from starlette.requests import Request
+from starlette.routing import Route
+
+from ...errors import ContentlabError
+from ..common import blocking, render
+from .forms import checked_form
+
+MAX_PROBLEMS_SHOWN = 500
+
+
+def _display_name(upload: UploadFile | None, default: str) -> str:
+    name = (upload.filename if upload is not None else None) or default
+    return Path(name.replace("\\", "/")).name[:120] or default
+
+
+def _copy(upload: UploadFile, target: Path) -> int:
+    upload.file.seek(0)
+    with open(target, "wb") as out:
+        shutil.copyfileobj(upload.file, out)
+    return target.stat().st_size
+
+
+def _import(state, data: UploadFile, mapping: UploadFile | None, shown: str, shown_map: str) -> dict:
+    from ...history import import_history
+    from ...ingest import read_history
+
+    with tempfile.TemporaryDirectory(prefix="contentlab-upload-") as tmp:
+        folder = Path(tmp)
+        path = folder / "export.csv"
+        if _copy(data, path) == 0:
+            raise ContentlabError(f"{shown}: the file is empty; nothing was imported.")
+        with open(path, "rb") as fh:
+            if fh.read(2) == b"\x1f\x8b":
+                path = path.rename(folder / "export.csv.gz")
+        map_path = None
+        if mapping is not None:
+            map_path = folder / "columns.toml"
+            _copy(mapping, map_path)
+
+        def named(text: str) -> str:
+            text = text.replace(str(path), shown)
+            return text.replace(str(map_path), shown_map) if map_path is not None else text
+
+        try:
+            with state.open() as ws:
+                history = read_history(path, map_path, timezone=ws.timezone)
+                if history.problems:
+                    problems = [{"row": p.row, "column": p.column, "reason": named(p.reason)}
+                                for p in history.problems[:MAX_PROBLEMS_SHOWN]]
+                    return {"rejected": True, "rows_read": history.rows_read, "problems": problems,
+                            "n_problems": len(history.problems), "n_bad_rows": int(history.rejected.shape[0])}
+                summary = import_history(ws, path, map_path)
+        except ContentlabError as exc:
+            raise ContentlabError(named(str(exc))) from None
+    return {"rejected": False, "summary": named(summary.line())}
+
+
+async def page(request: Request):
+    return render(request, "import.html", outcome=None, error=None)
+
+
+async def upload(request: Request):
+    form = await checked_form(request, files=2)
+    data = form.get("export")
+    mapping = form.get("column_map")
+    if not isinstance(data, UploadFile) or not data.filename:
+        return render(request, "import.html", status=400, outcome=None, error="Choose an export file to upload.")
+    if not isinstance(mapping, UploadFile) or not mapping.filename:
+        mapping = None
+    shown = _display_name(data, "export.csv")
+    shown_map = _display_name(mapping, "columns.toml")
+    try:
+        outcome = await blocking(_import, request.app.state.workspace, data, mapping, shown, shown_map)
+    except ContentlabError as exc:
+        return render(request, "import.html", status=400, outcome=None, error=str(exc), file=shown)
+    finally:
+        await data.close()
+        if mapping is not None:
+            await mapping.close()
+    return render(request, "import.html", status=400 if outcome["rejected"] else 200, outcome=outcome, error=None,
+                  file=shown)
+
+
+routes = [
+    Route("/import", page, methods=["GET"]),
+    Route("/import", upload, methods=["POST"]),
+]
