@@ -165,11 +165,6 @@ def test_report_page_fits_a_phone(server, browser):
         browser.execute_cdp_cmd("Emulation.clearDeviceMetricsOverride", {})
 
 
-# MARKED: the report's own phone layout (#11 item 3) is the report branch's work. Until it is merged
-# these two checks of the report's content fail (tables wider than 390 px, chart text ~4.5 px);
-# remove this xfail mark once it is merged, so that they count.
-@pytest.mark.xfail(reason="needs the report branch's phone layout (#11 item 3); remove this mark after merging it",
-                   strict=False)
 def test_report_content_readable_on_a_phone(server, browser):
     week = _week(server, browser)
     _phone(browser)
