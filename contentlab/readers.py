@@ -376,7 +376,7 @@ def prepare_drafts(
             raise ContentlabError(f"{_draft_where(out, source, i, 'headline')}: the draft is empty; write a headline")
         if len(text) > MAX_DRAFT_CHARS:
             raise ContentlabError(
-                f"{_draft_where(out, source, i, 'headline')}: the draft has {len(text):,} characters; a headline "
+                f"{_draft_where(out, source, i, 'headline')}: the draft has {len(text)} characters; a headline "
                 f"may have at most {MAX_DRAFT_CHARS}. Is this body text? Score the headline alone."
             )
     if channel is not None:
