@@ -297,3 +297,27 @@ def test_readme_defines_impressions_and_names_the_vader_lexicon():
     assert "reach" in readme and "stand-in" in readme
     assert "emotional words" not in readme
     assert "positive and negative words of the VADER lexicon" in readme
+
+
+def _concurrent_writer(args):
+    root, proc, shared = args
+    own = Path(root).parent / f"own-{proc}.csv"
+    own.write_text(f"arm,impressions,clicks\nA,{100 + proc},1\nB,{200 + proc},2\n", encoding="utf-8")
+    with Workspace.open(root, create=False) as ws:  # each process has its own connection
+        for path in (shared, own, shared):
+            record_results(ws, "laser", read_results(path), source_file=str(path))
+    return proc
+
+
+def test_eight_concurrent_writers_lose_nothing_and_replay_nothing(exp, tmp_path):
+    """8 processes each record one shared file (twice) and their own file: the shared one lands once, all own ones land."""
+    import multiprocessing as mp
+
+    shared = tmp_path / "shared.csv"
+    shared.write_text("arm,impressions,clicks\nA,1000,10\nB,1000,20\n", encoding="utf-8")
+    method = "fork" if "fork" in mp.get_all_start_methods() else "spawn"
+    with mp.get_context(method).Pool(8) as pool:
+        assert sorted(pool.map(_concurrent_writer, [(str(exp), p, str(shared)) for p in range(8)])) == list(range(8))
+    n, k = totals(exp)
+    assert n == 2000 + sum(300 + 2 * p for p in range(8))
+    assert k == 30 + 8 * 3
