@@ -164,7 +164,7 @@ def sniff_delimiter(text: str) -> str:
 
 
 def read_cells(path: str | Path, what: str = "file") -> pd.DataFrame:
-    """Every cell of a CSV as stripped text; the index is each row's first physical line (the header is line 1).
+    """Every cell of a CSV as text (leading spaces dropped; callers strip what they compare); the index is each row's first physical line (the header is line 1).
 
     ``frame.attrs`` holds ``source`` (the path as given) and ``digest`` (of the
     whole content). Blank rows are dropped (their line numbers stay skipped).
@@ -199,8 +199,6 @@ def read_cells(path: str | Path, what: str = "file") -> pd.DataFrame:
     frame.columns = header
     frame.index = pd.Index(_row_lines(raw, encoding, delimiter, len(cells)), dtype=np.int64)[1:]
     frame = frame.fillna("")
-    for column in frame.columns:
-        frame[column] = frame[column].str.strip()
     if len(frame.columns):
         blank = (frame == "").all(axis=1)
         if blank.any():

@@ -113,67 +113,75 @@ def parse_datetimes(values, timezone: str) -> ParsedTimes:
     """
     import pandas as pd
 
-    series = pd.Series(values, dtype=object) if not isinstance(values, pd.Series) else values
+    series = values if isinstance(values, pd.Series) else pd.Series(list(values), dtype=object)
     n = len(series)
-    text = series.astype(object).where(series.notna(), "").astype(str).str.strip()
-    text = text.reset_index(drop=True)
+    text = series.astype(object).where(series.notna(), "").astype(str).str.strip().reset_index(drop=True)
     stored = np.full(n, "", dtype=object)
     has_time = np.zeros(n, dtype=bool)
     empty = (text == "").to_numpy()
     errors = np.full(n, None, dtype=object)
-    parts = text.str.extract(_ISO)
-    matched = parts["year"].notna().to_numpy() & ~empty
-    year = pd.to_numeric(parts["year"], errors="coerce").to_numpy()
-    in_window = matched & (year >= YEAR_MIN) & (year <= YEAR_MAX)
-    offset = parts["offset"].fillna("")
-    bad_offset = np.zeros(n, dtype=bool)
-    long_off = (offset.str.len() > 3).to_numpy()
-    if long_off.any():
-        minutes = pd.to_numeric(offset.str[-2:].where(long_off, "0"), errors="coerce").fillna(0).to_numpy()
-        bad_offset = long_off & (minutes >= 60)
-    ok = in_window & ~bad_offset
-    date_only = ok & parts["hour"].isna().to_numpy()
-    timed = ok & ~date_only
+    shaped = text.str.fullmatch(_ISO.pattern[1:-1]).to_numpy(dtype=bool) & ~empty
+    year = pd.to_numeric(text.str.slice(0, 4), errors="coerce").to_numpy()
+    ok = shaped & (year >= YEAR_MIN) & (year <= YEAR_MAX)
+    lengths = text.str.len().to_numpy()
+    date_only = ok & (lengths == 10)
     if date_only.any():
         idx = np.flatnonzero(date_only)
-        day = parts.loc[idx, "year"] + "-" + parts.loc[idx, "month"] + "-" + parts.loc[idx, "day"]
-        parsed = pd.to_datetime(day, format="%Y-%m-%d", errors="coerce")
+        parsed = pd.to_datetime(text.iloc[idx], format="%Y-%m-%d", errors="coerce")
         good = parsed.notna().to_numpy()
-        stored[idx[good]] = day[good].to_numpy(dtype=object)
+        stored[idx[good]] = text.iloc[idx[good]].to_numpy(dtype=object)
         ok[idx[~good]] = False
-    if timed.any():
-        idx = np.flatnonzero(timed)
-        p = parts.loc[idx]
-        clock = (p["year"] + "-" + p["month"] + "-" + p["day"] + "T" + p["hour"].str.zfill(2) + ":" + p["minute"]
-                 + ":" + p["second"].fillna("00"))
-        frac = p["frac"].fillna("")
-        clock = clock + np.where(frac != "", "." + frac, "")
-        off = offset.loc[idx]
-        with_off = (off != "").to_numpy()
-        out = np.full(len(idx), "", dtype=object)
-        good = np.zeros(len(idx), dtype=bool)
-        if with_off.any():
-            full = clock[with_off] + off[with_off].map(_norm_offset)
-            stamps = pd.to_datetime(full, format="ISO8601", utc=True, errors="coerce")
-            g = stamps.notna().to_numpy()
-            vals = np.full(with_off.sum(), "", dtype=object)
-            vals[g] = stamps[g].dt.strftime(STORED_FORMAT).to_numpy(dtype=object)
-            out[with_off] = vals
-            good[with_off] = g
-        if (~with_off).any():
-            naive = pd.to_datetime(clock[~with_off], format="ISO8601", errors="coerce")
-            g = naive.notna().to_numpy()
-            vals = np.full((~with_off).sum(), "", dtype=object)
-            if g.any():
-                vals[g] = _localise(naive[g], timezone).dt.strftime(STORED_FORMAT).to_numpy(dtype=object)
-            out[~with_off] = vals
-            good[~with_off] = g
-        stored[idx[good]] = out[good]
-        has_time[idx[good]] = True
-        ok[idx[~good]] = False
+    timed = np.flatnonzero(ok & ~date_only)
+    if len(timed):
+        sub = text.iloc[timed]
+        # The common forms go to pandas as they are; the rest (one-digit hours, '+01', 'z', a decimal
+        # comma) are first rewritten into the form pandas reads, from the parts the pattern found.
+        out, good = _to_utc(sub, timezone)
+        if (~good).any():
+            retry = sub[~good].str.extract(_ISO)
+            out2, good2 = _to_utc(_canonical(retry), timezone)
+            out[~good], good[~good] = out2, good2
+        stored[timed[good]] = out[good]
+        has_time[timed[good]] = True
+        ok[timed[~good]] = False
     for i in np.flatnonzero(~ok & ~empty):
         errors[i] = why_not_iso(text.iat[i])
     return ParsedTimes(stored=stored, has_time=has_time, empty=empty, errors=errors)
+
+
+_HAS_OFFSET = r"(?:[zZ]|[+-]\d{2}(?::?\d{2})?)$"
+
+
+def _to_utc(text, timezone: str) -> tuple[np.ndarray, np.ndarray]:
+    """Date-time text -> (stored UTC text, parsed); with an offset as given, without one in ``timezone``."""
+    import pandas as pd
+
+    out = np.full(len(text), "", dtype=object)
+    good = np.zeros(len(text), dtype=bool)
+    with_off = text.str.contains(_HAS_OFFSET, regex=True).to_numpy(dtype=bool)
+    if with_off.any():
+        stamps = pd.to_datetime(text[with_off], format="ISO8601", utc=True, errors="coerce")
+        g = stamps.notna().to_numpy()
+        vals = np.full(with_off.sum(), "", dtype=object)
+        vals[g] = stamps[g].dt.strftime(STORED_FORMAT).to_numpy(dtype=object)
+        out[with_off], good[with_off] = vals, g
+    if (~with_off).any():
+        naive = pd.to_datetime(text[~with_off], format="ISO8601", errors="coerce")
+        g = naive.notna().to_numpy()
+        vals = np.full((~with_off).sum(), "", dtype=object)
+        if g.any():
+            vals[g] = _localise(naive[g], timezone).dt.strftime(STORED_FORMAT).to_numpy(dtype=object)
+        out[~with_off], good[~with_off] = vals, g
+    return out, good
+
+
+def _canonical(p) -> "pd.Series":
+    """Parts found by :data:`_ISO` -> ``YYYY-MM-DDTHH:MM:SS[.f][+hh:mm]``, the form pandas reads."""
+    clock = (p["year"] + "-" + p["month"] + "-" + p["day"] + "T" + p["hour"].str.zfill(2) + ":" + p["minute"]
+             + ":" + p["second"].fillna("00"))
+    frac = p["frac"].fillna("")
+    clock = clock.where(frac == "", clock + "." + frac)
+    return clock + p["offset"].fillna("").map(_norm_offset)
 
 
 def _localise(naive, timezone: str):
