@@ -296,3 +296,51 @@ def test_unexpected_error_is_one_line_unless_debugging(ws, capsys, monkeypatch):
     monkeypatch.setenv("CONTENTLAB_DEBUG", "1")
     with pytest.raises(TypeError):
         main(["settings", "--workspace", str(ws)])
+
+
+# ------------------------------------------------------------------ built for the kind, not the case
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+CELL = st.one_of(
+    st.text(max_size=12),
+    st.sampled_from(["", " ", '"', '""', "\x00", "\r", "\n", ";", ",", "\t", "2026-03-14", "03/12/2026",
+                     "2026-03-14T09:30+1", "2300-01-01", "1e400", "-0", "9007199254740993", "NaN", "ｐ1"]),
+)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(rows=st.lists(st.lists(CELL, min_size=0, max_size=8), min_size=0, max_size=5),
+       encoding=st.sampled_from(["utf-8", "cp1252", "utf-16", "latin-1"]))
+def test_any_export_is_read_or_refused_with_a_message(tmp_path_factory, rows, encoding):
+    """Whatever bytes a file holds, reading it gives posts or a ContentlabError: never another exception."""
+    from contentlab.errors import ContentlabError
+    from contentlab.ingest import read_history
+
+    lines = [HEAD.strip()] + [",".join(r) for r in rows]
+    path = tmp_path_factory.mktemp("fuzz") / "f.csv"
+    path.write_bytes("\n".join(lines).encode(encoding, errors="replace"))
+    try:
+        history = read_history(path, timezone="Europe/London")
+    except ContentlabError as exc:
+        assert str(exc)
+        return
+    assert history.posts["published_at"].map(lambda t: 1970 <= int(t[:4]) <= 2200).all()
+    assert (history.posts["impressions"] <= 2**53).all()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.text(max_size=40))
+def test_any_time_text_is_read_or_refused_with_a_reason(text):
+    from contentlab.timeparse import parse_datetimes
+
+    parsed = parse_datetimes([text], "America/New_York")
+    if parsed.empty[0]:
+        return
+    if parsed.errors[0] is None:
+        import pandas as pd
+
+        assert pd.Timestamp(parsed.stored[0]).year in range(1969, 2202)  # a local time near a year's edge may cross it in UTC
+    else:
+        assert text.strip()[:20] in parsed.errors[0] or len(text.strip()) > 40
