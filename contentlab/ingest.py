@@ -16,9 +16,9 @@ import pandas as pd
 
 from .errors import ContentlabError
 from .features import clean_headline
-from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, long_cells, read_bytes, read_cells
+from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, long_cells, read_cells
+from .readers import read_bytes, sniff_delimiter  # noqa: F401  (their home is readers; kept importable here)
 from .readers import short as _short
-from .readers import sniff_delimiter  # noqa: F401  (re-exported: one delimiter rule for every reader)
 from .timeparse import parse_datetimes
 
 REQUIRED = ["post_id", "published_at", "headline", "impressions"]
@@ -69,15 +69,6 @@ class History:
 
 
 # ------------------------------------------------------------------ reading
-
-def read_text(path: Path) -> str:
-    """File text: UTF-8 (with or without BOM) or, failing that, cp1252.
-
-    The five bytes cp1252 leaves undefined become U+FFFD rather than an error.
-    """
-    raw, encoding = read_bytes(path)
-    return raw.decode(encoding, errors="replace")
-
 
 def load_mapping(path: Path | None) -> dict[str, str]:
     """Read a TOML column map: ``[columns]`` with ``our_name = "Their Column"``."""

@@ -58,6 +58,7 @@ __all__ = [
     "check_results",
     "count_cells",
     "file_digest",
+    "long_cells",
     "prepare_drafts",
     "read_bytes",
     "read_cells",

@@ -175,7 +175,7 @@ def _to_utc(text, timezone: str) -> tuple[np.ndarray, np.ndarray]:
     return out, good
 
 
-def _canonical(p) -> "pd.Series":
+def _canonical(p):
     """Parts found by :data:`_ISO` -> ``YYYY-MM-DDTHH:MM:SS[.f][+hh:mm]``, the form pandas reads."""
     clock = (p["year"] + "-" + p["month"] + "-" + p["day"] + "T" + p["hour"].str.zfill(2) + ":" + p["minute"]
              + ":" + p["second"].fillna("00"))

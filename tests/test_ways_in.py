@@ -4,7 +4,6 @@ workspace rule, one reader per kind of input, one date-time parser, and words th
 from __future__ import annotations
 
 import io
-import os
 import re
 import subprocess
 import sys
