@@ -330,9 +330,11 @@ def normalise_drafts(
 
         times = parse_datetimes(frame["publish_at"], "UTC")
         problems += [f"{here(int(i), 'publish_at')}: {times.errors[i]}" for i in np.flatnonzero(times.failed)]
-    if "channel" in frame.columns and channel is None:
-        from .readers import MAX_NAME_CHARS
+    from .readers import MAX_NAME_CHARS
 
+    if channel is not None and len(channel.strip()) > MAX_NAME_CHARS:
+        problems.append(f"--channel: longer than {MAX_NAME_CHARS} characters")
+    if "channel" in frame.columns and channel is None:
         problems += [f"{here(int(i), 'channel')}: longer than {MAX_NAME_CHARS} characters"
                      for i in np.flatnonzero(frame["channel"].str.len().to_numpy() > MAX_NAME_CHARS)]
     n = len(frame)
