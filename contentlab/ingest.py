@@ -75,7 +75,7 @@ def load_mapping(path: Path | None) -> dict[str, str]:
     if path is None:
         return {}
     try:
-        data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+        data = tomllib.loads(Path(path).read_text(encoding="utf-8-sig"))  # a BOM some editors add is fine
     except FileNotFoundError:
         raise ContentlabError(f"{path}: no such mapping file.") from None
     except IsADirectoryError:

@@ -104,6 +104,8 @@ CASES = [
      ["import", str(CORPUS / "posts.csv"), "--map", "{tmp}/map.toml"], "the column map is not UTF-8 text"),
     ("negative experiment seed", {}, ["experiment", "new", "seeded", "Draft one here", "Draft two here", "--seed", "-5"],
      "--seed must be a whole number from 0 to 2147483647; got -5"),
+    ("impressions to split beyond any count", {}, ["experiment", "next", "laser", "--impressions", "99999999999999999999"],
+     "--impressions must be at most 2^53"),
     ("report on a week in the future", {}, ["report", "--week", "2199-W02", "--out", "{tmp}/out"],
      "nothing to report: week 2199-W02 has not begun yet"),
     ("record: non-numeric clicks", {"r.csv": b"arm,impressions,clicks\nA,10,x\n"},

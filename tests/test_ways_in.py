@@ -166,6 +166,14 @@ def test_common_options_before_the_command(tmp_path, capsys):
     assert code == 0 and f"workspace: {target}" in out
 
 
+def test_workspace_between_experiment_and_its_action(tmp_path, capsys):
+    target = tmp_path / "mid"
+    assert run(capsys, "experiment", "--workspace", target, "new", "t1", "Draft one here", "Draft two here",
+               "--flat-prior")[0] == 0
+    code, out, _ = run(capsys, "--workspace", target, "experiment", "list")
+    assert code == 0 and "t1" in out
+
+
 def test_top_level_help_shows_the_common_options(capsys):
     with pytest.raises(SystemExit):
         main(["--help"])

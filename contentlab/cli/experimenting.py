@@ -39,6 +39,7 @@ def register(subparsers) -> None:
         ),
         example="contentlab experiment new makerspace --drafts corpus/drafts.csv --group makerspace-launch",
     )
+    add_workspace_option(exp)  # also accepted between 'experiment' and its action
     sub = exp.add_subparsers(dest="action", metavar="ACTION")
     exp.set_defaults(handler=lambda args: (exp.print_help(), 0)[1])
 
@@ -218,8 +219,13 @@ def cmd_new(args: argparse.Namespace) -> int:
 
 
 def cmd_next(args: argparse.Namespace) -> int:
+    from ..errors import ContentlabError
     from ..experiments import next_allocation
+    from ..readers import MAX_COUNT
     from ..workspace import Workspace
+
+    if args.impressions > MAX_COUNT:
+        raise ContentlabError(f"--impressions must be at most 2^53 ({MAX_COUNT:,}); got {args.impressions:,}.")
 
     with Workspace.open(args.workspace, create=False) as ws:
         alloc = next_allocation(ws, args.name, args.impressions, args.policy, single=args.single)
