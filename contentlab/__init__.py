@@ -12,6 +12,8 @@ _LAZY = {
     "Workspace": ("contentlab.workspace", "Workspace"),
     "import_history": ("contentlab.history", "import_history"),
     "read_history": ("contentlab.ingest", "read_history"),
+    "read_drafts": ("contentlab.readers", "read_drafts"),
+    "read_results": ("contentlab.readers", "read_results"),
     "HeadlineFeaturizer": ("contentlab.features", "HeadlineFeaturizer"),
     "ContentlabError": ("contentlab.errors", "ContentlabError"),
     "ThompsonBandit": ("contentlab.bandit", "ThompsonBandit"),

@@ -24,13 +24,31 @@ def corpus_dir() -> Path:
 
 
 def fresh_workspace(directory: str | Path) -> Path:
+    """A place for the demo's workspace; an old one is replaced only if the demo made it (its marker says so).
+
+    A user's own workspace, or a folder holding anything else, is refused: the
+    demo never deletes anyone's work.
+    """
+    from .workspace import DB_NAME, DEMO_MARK, Workspace
+
     path = Path(directory)
-    if path.exists():
-        if not (path / "workspace.sqlite").exists() and any(path.iterdir()):
+    if not path.exists():
+        return path
+    if not path.is_dir():
+        raise ContentlabError(f"{path} is a file; choose another --workspace for the demo.")
+    if (path / DB_NAME).exists():
+        with Workspace.open(path, create=False) as ws:
+            made_by_demo = ws.setting(DEMO_MARK[0]) == DEMO_MARK[1]
+        if not made_by_demo:
             raise ContentlabError(
-                f"{path} exists and is not a contentlab workspace; choose another --workspace for the demo."
+                f"{path} holds a contentlab workspace that the demo did not create; the demo replaces only its own. "
+                "Choose another --workspace for the demo, e.g. --workspace demo-workspace."
             )
         shutil.rmtree(path)
+    elif any(path.iterdir()):
+        raise ContentlabError(
+            f"{path} exists and is not a contentlab workspace; choose another --workspace for the demo."
+        )
     return path
 
 
@@ -112,6 +130,10 @@ def run_demo(workspace_dir: str | Path, out_dir: str | Path | None = None, *, bo
     say("contentlab demo: Alderbank Libraries, an invented library network with two years of invented posts.")
     say(f"Workspace: {path} (fresh). Corpus: {corpus}")
 
+    from .workspace import DEMO_MARK
+
+    with Workspace.open(path) as ws:  # marked, so that the next demo may replace it (and nothing else)
+        ws.set_setting(*DEMO_MARK)
     _step(1, "Import the post history")
     _cli(["import", str(corpus / "posts.csv"), "--timezone", TIMEZONE, "--quiet", *ws_arg])
 

@@ -29,7 +29,6 @@ and the pure :func:`choose_prior_strength` / :func:`replay_regret`.
 from __future__ import annotations
 
 import hashlib
-import io
 import json
 import math
 import re
@@ -235,19 +234,10 @@ class ExperimentStatus:
 
 
 def read_drafts(path: str | Path) -> pd.DataFrame:
-    """A drafts CSV (``headline``; optional ``arm``, ``channel``, ``publish_at``, ``group``) as text cells.
+    """A drafts CSV, read by the one drafts reader (:func:`contentlab.readers.read_drafts`)."""
+    from .readers import read_drafts as read
 
-    Adds ``row``, the line number in the file (the header is line 1), so
-    problems can name it.
-    """
-    path = Path(path)
-    frame = _read_csv_text(path)
-    if "headline" not in frame.columns:
-        raise ContentlabError(
-            f"{path}: row 1 (header) has no 'headline' column; it has: {', '.join(frame.columns) or 'nothing'}. "
-            "A drafts file needs headline and may have arm, channel, publish_at and group."
-        )
-    return frame
+    return read(path)
 
 
 def normalise_drafts(
@@ -277,6 +267,11 @@ def normalise_drafts(
     if "row" not in frame.columns:
         frame["row"] = np.arange(len(frame)) + (2 if source else 1)
     frame = frame.reset_index(drop=True)
+    from .readers import PUBLISH_ALIASES
+
+    alias = next((c for c in PUBLISH_ALIASES if c in frame.columns), None)
+    if alias and alias != "publish_at":  # the same publish-time columns as score reads
+        frame = frame.rename(columns={alias: "publish_at"})
     for column in ("arm", "channel", "publish_at", "group"):
         if column in frame.columns:
             frame[column] = frame[column].map(lambda v: "" if _missing(v) else str(v).strip())
@@ -305,8 +300,10 @@ def normalise_drafts(
     headline = frame["headline"].map(clean_headline)
     for i in np.flatnonzero((headline == "").to_numpy()):
         problems.append(f"{here(i, 'headline')}: is empty after removing markup")
-    for i in np.flatnonzero(headline.str.len().to_numpy() > MAX_HEADLINE_CHARS):
-        problems.append(f"{here(i, 'headline')}: longer than {MAX_HEADLINE_CHARS} characters")
+    from .readers import MAX_DRAFT_CHARS
+
+    for i in np.flatnonzero(headline.str.len().to_numpy() > MAX_DRAFT_CHARS):
+        problems.append(f"{here(i, 'headline')}: longer than {MAX_DRAFT_CHARS} characters")
     seen: dict[str, int] = {}
     for i, text in enumerate(headline):
         if text and text in seen:
@@ -328,6 +325,18 @@ def normalise_drafts(
     else:
         arms = pd.Series([arm_label(i) for i in range(len(frame))])
 
+    if "publish_at" in frame.columns:
+        from .timeparse import parse_datetimes
+
+        times = parse_datetimes(frame["publish_at"], "UTC")
+        problems += [f"{here(int(i), 'publish_at')}: {times.errors[i]}" for i in np.flatnonzero(times.failed)]
+    from .readers import MAX_NAME_CHARS
+
+    if channel is not None and len(channel.strip()) > MAX_NAME_CHARS:
+        problems.append(f"--channel: longer than {MAX_NAME_CHARS} characters")
+    if "channel" in frame.columns and channel is None:
+        problems += [f"{here(int(i), 'channel')}: longer than {MAX_NAME_CHARS} characters"
+                     for i in np.flatnonzero(frame["channel"].str.len().to_numpy() > MAX_NAME_CHARS)]
     n = len(frame)
     if n < MIN_ARMS:
         problems.append(f"{where}: an experiment needs at least {MIN_ARMS} drafts; got {n}")
@@ -636,6 +645,8 @@ def create_experiment(
     """
     _check_name(name)
     policy = _policy(policy)
+    if seed is not None and (isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed < 2**31):
+        raise ContentlabError(f"--seed must be a whole number from 0 to {2**31 - 1}; got {seed!r}.")
     if prior_strength is not None and (not _is_real(prior_strength) or prior_strength < 0):
         raise ContentlabError(f"prior strength must be a number of at least 0; got {prior_strength!r}.")
     arms = normalise_drafts(drafts, channel=channel, group=group, source=source)
@@ -829,16 +840,10 @@ def next_allocation(
 
 
 def read_results(path: str | Path) -> pd.DataFrame:
-    """A results CSV (``arm, impressions, clicks``; optional ``at``, ``event_id``) as text cells with ``row``."""
-    path = Path(path)
-    frame = _read_csv_text(path)
-    missing = [c for c in ("arm", "impressions", "clicks") if c not in frame.columns]
-    if missing:
-        raise ContentlabError(
-            f"{path}: row 1 (header), missing column(s): {', '.join(missing)}. A results file has arm, impressions, "
-            f"clicks and optionally at and event_id; it has: {', '.join(frame.columns)}."
-        )
-    return frame
+    """A results CSV, read by the one results reader (:func:`contentlab.readers.read_results`)."""
+    from .readers import read_results as read
+
+    return read(path)
 
 
 def record_results(
@@ -852,29 +857,40 @@ def record_results(
 
     ``frame`` has ``arm, impressions, clicks`` and optionally ``at`` (ISO
     8601; without an offset it is local time in the workspace's time zone;
-    missing means now) and ``event_id``. Rows without an event id get a
-    deterministic one: from the file name, the row's cells and its row number
-    for a file; from the arm, time and values otherwise. An event id already
-    stored with the same values is skipped, so replaying a file changes
-    nothing; with different values it is an error.
+    missing means now) and ``event_id``; every row is checked by
+    :func:`contentlab.readers.check_results`. Replays are recognised by event id:
+
+    * a given ``event_id`` already stored with the same values is skipped, and
+      with other values refused;
+    * rows of a file (a frame from :func:`read_results`, or ``source_file``
+      given) without one are identified by a digest of the file's whole
+      content plus the row, never by the file's name: the identical file again
+      changes nothing, a new batch saved under the same name is recorded in full;
+    * other rows with ``at`` are identified by arm, time and figures;
+    * a row with neither ``event_id``, ``at`` nor a file cannot be told from a
+      repeat: it is always recorded, and the summary says so.
 
     ``cumulative``: the figures are totals so far per arm, turned into
     increments against what is stored (in time order, then row order); a
     total that goes down is an error.
     """
-    frame = frame.reset_index(drop=True)
-    label = Path(source_file).name if source_file else None
+    from .readers import check_results
+
     exp = _load(ws, name)
-    clean, derived = _validate_results(frame, exp, ws, source_file, label, cumulative)
+    frame = frame.reset_index(drop=True)
+    single = source_file is None and len(frame) == 1 and "digest" not in frame.attrs
+    clean = check_results(frame, exp["arms"]["arm"].tolist(), ws.timezone, source=source_file,
+                          options=single, experiment=name)
+    kinds = _event_ids(clean, frame, cumulative, source_file)
     conn = ws.conn
     if conn.in_transaction:
         conn.commit()
     # Take the write lock before reading anything, so concurrent calls queue
     # here and every one sees the totals the previous one committed. The
     # locked part is plain Python on lists: it runs once per call, in series.
-    conn.execute("BEGIN IMMEDIATE")
+    conn.begin_immediate()
     try:
-        summary = _record_locked(ws, exp, clean, cumulative, source_file, derived)
+        summary = _record_locked(ws, exp, clean, cumulative, source_file, kinds, single)
         conn.commit()
     except BaseException:
         conn.rollback()
@@ -882,125 +898,54 @@ def record_results(
     return summary
 
 
-def _validate_results(frame, exp, ws, source_file, label, cumulative):
-    """Parse and check every row (no database writes); derive missing event ids."""
-    name = exp["name"]
-    known = exp["arms"]["arm"].tolist()
-    for column in ("arm", "impressions", "clicks"):
-        if column not in frame.columns:
-            raise ContentlabError(f"{source_file or 'results'}: needs a column '{column}'.")
-    n = len(frame)
-    if n == 0:
-        raise ContentlabError(f"{source_file or 'results'}: has no rows; nothing was recorded.")
-    rows = frame["row"].to_numpy() if "row" in frame.columns else np.arange(n) + (2 if source_file else 1)
-    single = source_file is None and n == 1
-    problems: list[str] = []
-
-    def here(i: int, column: str) -> str:
-        if single:
-            return f"--{column.replace('_', '-')}"
-        prefix = f"{source_file}: " if source_file else ""
-        return f"{prefix}row {int(rows[i])}, column '{column}'"
-
-    text = {c: _text_cells(frame[c]) for c in frame.columns if c in RESULT_COLUMNS}
-    arm = text["arm"]
-    known_set = set(known)
-    for i in np.flatnonzero(~arm.isin(known_set).to_numpy()):
-        shown = f"'{_short(arm.iat[i])}'" if arm.iat[i] else "(empty)"
-        problems.append(f"{here(i, 'arm')}: {shown} is not an arm of {name}; its arms are {', '.join(known)}")
-    # The import's own count parser, so results and post histories are held to the same rules.
-    from .ingest import _count_column
-
-    cells = pd.DataFrame({c: text[c] for c in ("impressions", "clicks")})
-    found: list[tuple[int, str, str]] = []
-    counts = {c: _count_column(cells, c, rows, found, source_file or "")[0] for c in ("impressions", "clicks")}
-    problems += [f"{here(i, column)}: {reason}" for i, column, reason in found]
-    over = counts["clicks"] > counts["impressions"]
-    for i in np.flatnonzero(over):
-        problems.append(
-            f"{here(i, 'clicks')}: {counts['clicks'][i]} clicks is more than its {counts['impressions'][i]} impressions"
-        )
-    default_at = None
-    if "at" in text and (text["at"] != "").any():
-        at_text = text["at"]
-        from .ingest import parse_times
-
-        given = (at_text != "").to_numpy()
-        stored, _has_time, failed = parse_times(at_text, ws.timezone)
-        for i in np.flatnonzero(failed & given):
-            problems.append(
-                f"{here(i, 'at')}: '{_short(at_text.iat[i])}' is not an ISO 8601 date or date-time "
-                "(e.g. 2026-03-14T09:30 or 2026-03-14T09:30:00+01:00)"
-            )
-        default_at = _now_precise()
-        at = np.where(given, stored.to_numpy(dtype=object), default_at)
-    else:
-        default_at = _now_precise()
-        at = np.full(n, default_at, dtype=object)
+def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool, source_file: str | None) -> list[str]:
+    """Fill ``clean['event_id']`` and ``clean['at']``; return how each id was made: given, file, values or new."""
+    now = _now_precise()
+    given_at = clean["at"].to_numpy(dtype=object) != ""
+    clean["at"] = np.where(given_at, clean["at"].to_numpy(dtype=object), now)
+    ids = clean["event_id"].to_numpy(dtype=object).copy()
+    kinds = ["given" if e != "" else "" for e in ids]
+    digest = frame.attrs.get("digest")
+    if digest is None and source_file is not None:
+        # A frame said to come from a file but not read by read_results: its cells stand for its content.
+        cols = [c for c in frame.columns if c != "row"]
+        digest = _digest(frame[cols].astype(str).to_csv(index=False))
+    kind = "total" if cumulative else "increment"
+    rows = clean["row"].tolist()
+    for i in np.flatnonzero(ids == ""):
+        if digest is not None:
+            ids[i], kinds[i] = "c-" + _digest(f"{digest}\x1e{int(rows[i])}"), "file"
+        elif given_at[i]:
+            ids[i], kinds[i] = "v-" + _digest(
+                f"{clean['arm'].iat[i]}\x1e{clean['at'].iat[i]}\x1e{clean['impressions'].iat[i]}"
+                f"\x1e{clean['clicks'].iat[i]}\x1e{kind}"), "values"
+        else:
+            ids[i], kinds[i] = "u-" + _digest(f"{now}\x1e{i}\x1e{secrets.token_hex(8)}"), "new"
+    clean["event_id"] = ids
+    # The same id twice in one input: fine when identical, an error otherwise.
+    values = list(zip(clean["arm"], clean["impressions"], clean["clicks"]))
+    first: dict[str, int] = {}
+    problems = []
+    where = f"{source_file}: " if source_file else ""
+    for i, e in enumerate(ids):
+        j = first.setdefault(e, i)
+        if j != i and values[i] != values[j]:
+            problems.append(f"{where}row {int(rows[i])}, column 'event_id': '{_short(e)}' is also used by "
+                            f"row {int(rows[j])} with different values")
     if problems:
         raise ContentlabError(_problem_line(problems, "nothing was recorded"))
-
-    ids = text["event_id"] if "event_id" in text else pd.Series([""] * n)
-    long_ids = np.flatnonzero(ids.str.len().to_numpy() > MAX_EVENT_ID_CHARS)
-    if long_ids.size:
-        raise ContentlabError(_problem_line(
-            [f"{here(i, 'event_id')}: longer than {MAX_EVENT_ID_CHARS} characters" for i in long_ids],
-            "nothing was recorded",
-        ))
-    missing_id = (ids == "").to_numpy()
-    event_id = ids.to_numpy(dtype=object).copy()
-    if missing_id.any():
-        if source_file:
-            cols = [c for c in frame.columns if c != "row"]
-            cells = ["\x1f".join(t) for t in zip(*(_text_cells(frame[c]).tolist() for c in cols))]
-            for i in np.flatnonzero(missing_id):
-                event_id[i] = "f-" + _digest(f"{label}\x1e{int(rows[i])}\x1e{cells[i]}")
-        else:
-            kind = "total" if cumulative else "increment"
-            for i in np.flatnonzero(missing_id):
-                event_id[i] = "v-" + _digest(
-                    f"{arm.iat[i]}\x1e{at[i]}\x1e{counts['impressions'][i]}\x1e{counts['clicks'][i]}\x1e{kind}"
-                )
-    clean = pd.DataFrame(
-        {
-            "event_id": event_id,
-            "arm": arm.to_numpy(dtype=object),
-            "at": at,
-            "impressions": counts["impressions"],
-            "clicks": counts["clicks"],
-            "row": rows,
-        }
-    )
-    # The same id twice in one input: fine when identical, an error otherwise.
-    dup = clean["event_id"].duplicated(keep=False).to_numpy()
-    if dup.any():
-        sub = clean[dup]
-        first = sub.drop_duplicates("event_id")
-        merged = sub.merge(first, on="event_id", suffixes=("", "_first"))
-        differ = (
-            (merged["arm"] != merged["arm_first"])
-            | (merged["impressions"] != merged["impressions_first"])
-            | (merged["clicks"] != merged["clicks_first"])
-        ).to_numpy()
-        if differ.any():
-            bad = merged[differ]
-            msgs = [
-                f"{here(int(np.flatnonzero(rows == r)[0]), 'event_id')}: '{_short(e)}' is also used by row {int(r0)} with different values"
-                for e, r, r0 in zip(bad["event_id"], bad["row"], bad["row_first"])
-            ]
-            raise ContentlabError(_problem_line(msgs, "nothing was recorded"))
-    return clean, int(missing_id.sum())
+    return kinds
 
 
-def _record_locked(ws, exp, clean, cumulative, source_file, derived) -> RecordSummary:
+def _record_locked(ws, exp, clean, cumulative, source_file, kinds, single) -> RecordSummary:
     conn = ws.conn
     name = exp["name"]
     ids = clean["event_id"].tolist()
     arms = clean["arm"].tolist()
     ats = clean["at"].tolist()
-    ns = clean["impressions"].tolist()
-    ks = clean["clicks"].tolist()
-    rows = clean["row"].tolist()
+    ns = [int(v) for v in clean["impressions"]]
+    ks = [int(v) for v in clean["clicks"]]
+    rows = [int(v) for v in clean["row"]]
     first: dict[str, int] = {}
     for i, e in enumerate(ids):
         first.setdefault(e, i)
@@ -1008,15 +953,20 @@ def _record_locked(ws, exp, clean, cumulative, source_file, derived) -> RecordSu
     stored = _stored_events(conn, name, list(first))
     where = f"{source_file}: " if source_file else ""
     fresh, conflicts = [], []
+    skipped: dict[str, list[int]] = {}
     for i in order:
         old = stored.get(ids[i])
         if old is None:
             fresh.append(i)
         elif not cumulative and old != (arms[i], ns[i], ks[i]):
+            shown = "--event-id" if single else f"{where}row {rows[i]}, column 'event_id'"
             conflicts.append(
-                f"{where}row {rows[i]}: event id '{_short(ids[i])}' is already recorded with different values "
+                f"{shown}: event id '{_short(ids[i])}' is already recorded with different values "
                 f"({old[0]}: {old[1]:,} impressions, {old[2]:,} clicks)"
             )
+        else:
+            skipped.setdefault(kinds[i], []).append(rows[i])
+    in_input = [rows[i] for i in range(len(ids)) if first[ids[i]] != i]
     if conflicts:
         raise ContentlabError(_problem_line(conflicts, "nothing was recorded") + " Give corrected results a new event id.")
     items = [(ids[i], arms[i], ats[i], ns[i], ks[i], rows[i]) for i in fresh]
@@ -1029,17 +979,6 @@ def _record_locked(ws, exp, clean, cumulative, source_file, derived) -> RecordSu
             [(name, e, a, t, n, k) for e, a, t, n, k, _ in items],
         )
         _sync_posts(ws, exp, sorted({it[1] for it in items}))
-    notes = []
-    if derived and source_file is None and len(ids) == 1:
-        notes.append(
-            f"No --event-id given: the event id {ids[0]} was derived from the arm, time and values, "
-            "so repeating this exact call (same --at) changes nothing."
-        )
-    elif derived:
-        notes.append(
-            f"{derived} row(s) had no event_id: ids were derived from the file name, row number and cells, so "
-            "replaying the same file changes nothing."
-        )
     return RecordSummary(
         name=name,
         rows_read=len(ids),
@@ -1048,11 +987,55 @@ def _record_locked(ws, exp, clean, cumulative, source_file, derived) -> RecordSu
         unchanged=unchanged,
         impressions_added=int(sum(it[3] for it in items)),
         clicks_added=int(sum(it[4] for it in items)),
-        derived_ids=derived,
+        derived_ids=int(sum(k != "given" for k in kinds)),
         event_ids=tuple(it[0] for it in items) if len(items) <= 20 else (),
         cumulative=cumulative,
-        notes=tuple(notes),
+        notes=tuple(_record_notes(kinds, skipped, in_input, single)),
     )
+
+
+def _rows_text(rows: list[int], limit: int = 8) -> str:
+    shown = ", ".join(str(r) for r in rows[:limit])
+    return ("row " if len(rows) == 1 else "rows ") + shown + (f" and {len(rows) - limit} more" if len(rows) > limit else "")
+
+
+def _record_notes(kinds: list[str], skipped: dict[str, list[int]], in_input: list[int], single: bool) -> list[str]:
+    """What was skipped and why, and how far a repeat of this call is protected."""
+    notes = []
+    if single:
+        kind = kinds[0]
+        if skipped:
+            why = {"given": "its --event-id is already recorded with the same figures",
+                   "values": "a result with the same arm, --at and figures is already recorded"}[kind]
+            notes.append(f"Skipped: {why}; nothing new was recorded.")
+        elif kind == "new":
+            notes.append("No --event-id or --at was given, so this result cannot be told from a repeat: running this "
+                         "same command again would count it twice. Give --event-id NAME (any name for this batch) to "
+                         "make a repeat harmless.")
+        elif kind == "values":
+            notes.append("No --event-id: the result is identified by its arm, --at and figures, so repeating this "
+                         "exact call changes nothing (a second real batch with the same time and figures needs an "
+                         "--event-id).")
+        return notes
+    reasons = {
+        "given": "their event_id is already recorded with the same values",
+        "file": "an identical file (same content, whatever its name) was already recorded",
+        "values": "a result with the same arm, at and figures is already recorded",
+    }
+    for kind, rows in skipped.items():
+        notes.append(f"Skipped {_rows_text(rows)}: {reasons[kind]}.")
+    if in_input:
+        notes.append(f"Skipped {_rows_text(in_input)}: the same event_id with the same values appears earlier in the input.")
+    n_file = sum(k == "file" for k in kinds)
+    if n_file:
+        notes.append(f"{n_file} row(s) had no event_id: each is identified by this file's whole content and its row, "
+                     "so recording the identical file again changes nothing, and a new batch is recorded in full "
+                     "even under the same file name.")
+    n_new = sum(k == "new" for k in kinds)
+    if n_new:
+        notes.append(f"{n_new} row(s) had neither event_id nor at: they were recorded as new, and recording them "
+                     "again would count them twice.")
+    return notes
 
 
 def _stored_events(conn, name: str, ids: list[str]) -> dict[str, tuple[str, int, int]]:
@@ -1403,33 +1386,6 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
 # --------------------------------------------------------------------------
 # Small helpers.
 # --------------------------------------------------------------------------
-
-
-def _read_csv_text(path: Path) -> pd.DataFrame:
-    from .ingest import read_text, sniff_delimiter
-
-    text = read_text(path)
-    if not text.strip():
-        raise ContentlabError(f"{path}: the file is empty; it needs a header row and at least one row.")
-    try:
-        frame = pd.read_csv(
-            io.StringIO(text), sep=sniff_delimiter(text), dtype=str, keep_default_na=False,
-            skipinitialspace=True, engine="c",
-        )
-    except (pd.errors.ParserError, ValueError) as exc:
-        raise ContentlabError(f"{path}: cannot be read as CSV ({exc}).") from None
-    frame.columns = [str(c).strip().lower() for c in frame.columns]
-    frame["row"] = np.arange(len(frame)) + 2
-    return frame
-
-
-def _text_cells(column: pd.Series) -> pd.Series:
-    """Cells as stripped text, missing ones as ''."""
-    missing = column.isna().to_numpy()
-    text = column.astype(str).str.strip()
-    if missing.any():
-        text = text.where(~missing, "")
-    return text.astype(object)
 
 
 def _problem_line(problems: list[str], outcome: str, limit: int = 3) -> str:

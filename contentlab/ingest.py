@@ -7,12 +7,6 @@ the caller decides whether to write anything.
 
 from __future__ import annotations
 
-import codecs
-import csv
-import gzip
-import io
-import math
-import re
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
@@ -22,6 +16,10 @@ import pandas as pd
 
 from .errors import ContentlabError
 from .features import clean_headline
+from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, long_cells, read_cells
+from .readers import read_bytes, sniff_delimiter  # noqa: F401  (their home is readers; kept importable here)
+from .readers import short as _short
+from .timeparse import parse_datetimes
 
 REQUIRED = ["post_id", "published_at", "headline", "impressions"]
 OUTCOMES = ["clicks", "engagements"]
@@ -29,7 +27,6 @@ ENGAGEMENT_PARTS = ["likes", "comments", "shares", "saves"]
 OPTIONAL_TEXT = ["channel", "body", "experiment_id", "image_id"]
 OPTIONAL_NUMBER = ["cost"]
 KNOWN = REQUIRED + OUTCOMES + ENGAGEMENT_PARTS + OPTIONAL_TEXT + OPTIONAL_NUMBER
-MAX_HEADLINE_CHARS = 1000
 # Columns stored per post, in this order (see workspace.posts).
 STORED = [
     "post_id",
@@ -73,78 +70,20 @@ class History:
 
 # ------------------------------------------------------------------ reading
 
-def read_bytes(path: Path) -> tuple[bytes, str]:
-    """File bytes (gunzipped, BOM removed) and their encoding: UTF-8 if they are valid UTF-8, else cp1252.
-
-    The bytes go to pandas as they are, which needs far less memory on a large
-    export than decoding the whole file into one string first.
-    """
-    try:
-        raw = path.read_bytes()
-    except FileNotFoundError:
-        raise ContentlabError(f"{path}: no such file. Check the path and try again.") from None
-    except IsADirectoryError:
-        raise ContentlabError(f"{path}: is a folder; give the CSV file inside it.") from None
-    if raw[:2] == b"\x1f\x8b":
-        try:
-            raw = gzip.decompress(raw)
-        except (OSError, EOFError) as exc:
-            raise ContentlabError(f"{path}: looks gzip-compressed but cannot be read ({exc}).") from None
-    if raw.startswith(b"\xef\xbb\xbf"):
-        return raw[3:], "utf-8"
-    return raw, "utf-8" if _is_utf8(raw) else "cp1252"
-
-
-def _is_utf8(raw: bytes, block: int = 1 << 20) -> bool:
-    """Whether ``raw`` decodes as UTF-8, checked a megabyte at a time (no full-size copy)."""
-    decoder = codecs.getincrementaldecoder("utf-8")()
-    view = memoryview(raw)
-    try:
-        for start in range(0, len(raw), block):
-            decoder.decode(view[start:start + block], final=False)
-        decoder.decode(b"", final=True)
-    except UnicodeDecodeError:
-        return False
-    return True
-
-
-def read_text(path: Path) -> str:
-    """File text: UTF-8 (with or without BOM) or, failing that, cp1252.
-
-    The five bytes cp1252 leaves undefined become U+FFFD rather than an error.
-    """
-    raw, encoding = read_bytes(path)
-    return raw.decode(encoding, errors="replace")
-
-
-def sniff_delimiter(text: str) -> str:
-    """Comma, semicolon or tab: the one the header row uses most (outside quotes).
-
-    The header decides because headlines in the rows below are free text full
-    of commas and semicolons; csv.Sniffer breaks a tie.
-    """
-    header = text.split("\n", 1)[0]
-    outside = re.sub(r'"[^"]*"', "", header)
-    counts = {d: outside.count(d) for d in (",", ";", "\t")}
-    best = max(counts.values())
-    winners = [d for d, c in counts.items() if c == best]
-    if best > 0 and len(winners) == 1:
-        return winners[0]
-    sample = "\n".join(text.splitlines()[:20])
-    try:
-        return csv.Sniffer().sniff(sample, delimiters=",;\t").delimiter
-    except csv.Error:
-        return winners[0] if best > 0 else ","
-
-
 def load_mapping(path: Path | None) -> dict[str, str]:
     """Read a TOML column map: ``[columns]`` with ``our_name = "Their Column"``."""
     if path is None:
         return {}
     try:
-        data = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+        data = tomllib.loads(Path(path).read_text(encoding="utf-8-sig"))  # a BOM some editors add is fine
     except FileNotFoundError:
         raise ContentlabError(f"{path}: no such mapping file.") from None
+    except IsADirectoryError:
+        raise ContentlabError(f"{path}: is a folder; give the column map's .toml file.") from None
+    except PermissionError:
+        raise ContentlabError(f"{path}: the column map cannot be read (permission denied).") from None
+    except UnicodeDecodeError:
+        raise ContentlabError(f"{path}: the column map is not UTF-8 text; save it as UTF-8.") from None
     except tomllib.TOMLDecodeError as exc:
         raise ContentlabError(f"{path}: not valid TOML ({exc}). See the README for an example map.") from None
     columns = data.get("columns")
@@ -163,36 +102,8 @@ def load_mapping(path: Path | None) -> dict[str, str]:
 
 
 def read_table(path: Path, mapping: dict[str, str]) -> tuple[pd.DataFrame, list[str]]:
-    """All cells as text, columns renamed to contentlab's names."""
-    raw, encoding = read_bytes(path)
-    if not raw.strip():
-        raise ContentlabError(f"{path}: the file is empty. Export the post history with a header row.")
-    delimiter = sniff_delimiter(raw[:65536].decode(encoding, errors="replace"))
-    try:
-        frame = pd.read_csv(
-            io.BytesIO(raw),
-            encoding=encoding,
-            encoding_errors="replace",
-            sep=delimiter,
-            dtype=str,
-            keep_default_na=False,
-            skipinitialspace=True,
-            skip_blank_lines=False,  # so that row numbers stay line numbers
-            engine="c",
-        )
-    except (pd.errors.ParserError, ValueError) as exc:
-        detail = " ".join(str(exc).split())
-        raise ContentlabError(
-            f"{path}: cannot be read as CSV ({detail}). A row with more cells than the header usually "
-            "means a cell holds the delimiter without quotes around it."
-        ) from None
-    frame.columns = [str(c).strip() for c in frame.columns]
-    frame.index = pd.RangeIndex(2, len(frame) + 2)  # file row numbers; the header is row 1
-    frame = frame.fillna("")
-    if len(frame.columns):
-        blank = (frame == "").all(axis=1)
-        if blank.any():
-            frame = frame.loc[~blank]
+    """All cells as text (index: file line numbers), columns renamed to contentlab's names."""
+    frame = read_cells(path, "post-history export")
     rename = {}
     for ours, theirs in mapping.items():
         if theirs not in frame.columns:
@@ -216,96 +127,22 @@ def read_table(path: Path, mapping: dict[str, str]) -> tuple[pd.DataFrame, list[
 
 # --------------------------------------------------------------- validation
 
-def _count_column(frame: pd.DataFrame, column: str, rows: np.ndarray, problems: list, file: str):
-    """Parse whole non-negative counts; report every cell that is not one."""
-    raw = frame[column].str.strip()
-    values = pd.to_numeric(raw, errors="coerce")
-    bad = np.zeros(len(frame), dtype=bool)
-    empty = (raw == "").to_numpy()
-    nonnum = values.isna().to_numpy() & ~empty
-    lower = raw.str.lower()
-    named_nan = lower.isin(["nan", "-nan", "+nan"]).to_numpy()
-    infinite = np.isinf(values.to_numpy(dtype=float, na_value=np.nan))
-    finite_vals = values.to_numpy(dtype=float, na_value=np.nan)
-    negative = np.nan_to_num(finite_vals, nan=0.0, posinf=0.0, neginf=0.0) < 0
-    fractional = np.isfinite(finite_vals) & (np.floor(finite_vals) != finite_vals)
-    # Above 2**53 a float no longer holds every whole number; no post has that many.
-    too_large = np.isfinite(finite_vals) & (finite_vals > 2.0**53)
-    for i in np.flatnonzero(too_large):
-        problems.append((i, column, f"{_short(raw.iat[i])} is too large to be a count"))
-    for i in np.flatnonzero(empty):
-        problems.append((i, column, "is empty; write 0 if there were none"))
-    for i in np.flatnonzero(named_nan | (nonnum & ~named_nan)):
-        cell = raw.iat[i]
-        reason = "is NaN; write the real count" if named_nan[i] else f"'{_short(cell)}' is not a number"
-        problems.append((i, column, reason))
-    for i in np.flatnonzero(infinite):
-        problems.append((i, column, f"'{_short(raw.iat[i])}' is infinite"))
-    for i in np.flatnonzero(negative & ~infinite):
-        problems.append((i, column, f"{raw.iat[i]} is negative; counts cannot be below 0"))
-    for i in np.flatnonzero(fractional & ~negative):
-        problems.append((i, column, f"{raw.iat[i]} is fractional; counts must be whole numbers"))
-    bad = empty | nonnum | named_nan | infinite | negative | fractional | too_large
-    clean = np.where(bad, 0, np.nan_to_num(finite_vals, nan=0, posinf=0, neginf=0)).astype(np.int64)
+def _count_column(frame: pd.DataFrame, column: str, problems: list):
+    """Parse whole non-negative counts (:func:`contentlab.readers.count_cells`); add a problem per bad cell."""
+    clean, bad, found = count_cells(frame[column], column)
+    problems.extend(found)
     return clean, bad
 
 
-def _short(text: str, limit: int = 40) -> str:
-    return text if len(text) <= limit else text[: limit - 1] + "…"
-
-
 def parse_times(raw: pd.Series, timezone: str) -> tuple[pd.Series, np.ndarray, np.ndarray]:
-    """ISO 8601 dates or date-times -> (stored text, has_time, parse failed).
+    """ISO 8601 dates or date-times -> (stored text, has_time, parse failed); see :mod:`contentlab.timeparse`.
 
     Date-times are stored in UTC; those without an offset are read as the
     workspace's local time. Dates alone are kept as dates: their hour is unknown.
     """
-    text = raw.str.strip()
-    date_only = text.str.fullmatch(r"\d{4}-\d{2}-\d{2}").to_numpy()
-    stored = pd.Series([""] * len(text), index=text.index, dtype=object)
-    failed = np.zeros(len(text), dtype=bool)
-    if date_only.any():
-        parsed = pd.to_datetime(text[date_only], format="%Y-%m-%d", errors="coerce")
-        ok = parsed.notna().to_numpy()
-        idx = np.flatnonzero(date_only)
-        failed[idx[~ok]] = True
-        stored.iloc[idx[ok]] = parsed[ok].dt.strftime("%Y-%m-%d").to_numpy()
-    rest = np.flatnonzero(~date_only)
-    if len(rest):
-        sub = text.iloc[rest]
-        has_offset = sub.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2})$", regex=True).to_numpy()
-        iso_like = sub.str.match(r"^\d{4}-\d{2}-\d{2}[T ]\d{1,2}:\d{2}").to_numpy()
-        out = np.full(len(sub), "", dtype=object)
-        bad = ~iso_like
-        if (iso_like & has_offset).any():
-            sel = iso_like & has_offset
-            p = pd.to_datetime(sub[sel], format="ISO8601", utc=True, errors="coerce")
-            okm = p.notna().to_numpy()
-            vals = np.full(sel.sum(), "", dtype=object)
-            vals[okm] = p[okm].dt.strftime("%Y-%m-%dT%H:%M:%S+00:00").to_numpy()
-            out[sel] = vals
-            bad[np.flatnonzero(sel)[~okm]] = True
-        if (iso_like & ~has_offset).any():
-            sel = iso_like & ~has_offset
-            p = pd.to_datetime(sub[sel], format="ISO8601", errors="coerce")
-            okm = p.notna().to_numpy()
-            vals = np.full(sel.sum(), "", dtype=object)
-            if okm.any():
-                local = p[okm].dt.tz_localize(timezone, ambiguous="NaT", nonexistent="shift_forward")
-                okl = local.notna().to_numpy()
-                v = np.full(okm.sum(), "", dtype=object)
-                v[okl] = local[okl].dt.tz_convert("UTC").dt.strftime("%Y-%m-%dT%H:%M:%S+00:00").to_numpy()
-                # An hour that happens twice at the DST change is read as its first occurrence.
-                if (~okl).any():
-                    again = p[okm][~okl].dt.tz_localize(timezone, ambiguous=True, nonexistent="shift_forward")
-                    v[~okl] = again.dt.tz_convert("UTC").dt.strftime("%Y-%m-%dT%H:%M:%S+00:00").to_numpy()
-                vals[okm] = v
-            out[sel] = vals
-            bad[np.flatnonzero(sel)[~okm]] = True
-        stored.iloc[rest] = out
-        failed[rest] = bad
-    has_time = (~date_only) & ~failed
-    return stored, has_time, failed
+    parsed = parse_datetimes(raw, timezone)
+    stored = pd.Series(parsed.stored, index=raw.index, dtype=object)
+    return stored, parsed.has_time, parsed.failed | parsed.empty
 
 
 READ_STEPS = 5
@@ -346,10 +183,14 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
     for i in np.flatnonzero((post_id == "").to_numpy()):
         found.append((i, "post_id", "is empty; every post needs its own id"))
 
-    published, has_time, failed = parse_times(frame["published_at"], timezone)
-    for i in np.flatnonzero(failed):
-        cell = frame["published_at"].iat[i]
-        found.append((i, "published_at", f"'{_short(cell)}' is not an ISO 8601 date or date-time (e.g. 2026-03-14 or 2026-03-14T09:30:00+01:00)"))
+    found += long_cells(post_id, "post_id", MAX_ID_CHARS, "an id")
+    times = parse_datetimes(frame["published_at"], timezone)
+    published = pd.Series(times.stored, index=frame.index, dtype=object)
+    has_time = times.has_time
+    for i in np.flatnonzero(times.empty):
+        found.append((i, "published_at", "is empty; every post needs its date"))
+    for i in np.flatnonzero(times.failed):
+        found.append((i, "published_at", times.errors[i]))
 
     step("dates")
     headline_raw = frame["headline"]
@@ -361,12 +202,12 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
         found.append((i, "headline", f"has {lengths[i]} characters; the limit is {MAX_HEADLINE_CHARS}"))
 
     step("headlines")
-    impressions, bad_impressions = _count_column(frame, "impressions", rows, found, file)
+    impressions, bad_impressions = _count_column(frame, "impressions", found)
     out = {"impressions": impressions}
     invalid = {"impressions": bad_impressions}
     for column in ["clicks", "engagements"] + [c for c in ENGAGEMENT_PARTS if c in frame.columns]:
         if column in frame.columns:
-            out[column], invalid[column] = _count_column(frame, column, rows, found, file)
+            out[column], invalid[column] = _count_column(frame, column, found)
     engagements = None
     parts = [c for c in ENGAGEMENT_PARTS if c in frame.columns]
     if "engagements" in frame.columns:
@@ -408,6 +249,10 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
             "engagements": engagements if engagements is not None else None,
         }
     )
+    for column, limit, noun in (("channel", MAX_NAME_CHARS, "a channel"), ("experiment_id", MAX_ID_CHARS, "an id"),
+                                ("image_id", MAX_ID_CHARS, "an id")):
+        if column in frame.columns:
+            found += long_cells(frame[column].str.strip(), column, limit, noun)
     for column in OPTIONAL_TEXT:
         clean[column] = frame[column].str.strip().replace("", None) if column in frame.columns else None
     clean["cost"] = cost

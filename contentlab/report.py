@@ -108,29 +108,20 @@ class Period:
         return "week" if self.kind == "week" and self.days == 7 else "period"
 
 
-_WEEK = re.compile(r"^(\d{4})-?W(\d{1,2})$", re.IGNORECASE)
 
 
 def parse_iso_week(text: str) -> tuple[date, date]:
-    """Monday and Sunday of an ISO week written like 2026-W48."""
-    m = _WEEK.match(str(text).strip())
-    if not m:
-        raise ContentlabError(f"--week {text!r} is not an ISO week. Write it like 2026-W48.")
-    year, week = int(m.group(1)), int(m.group(2))
-    try:
-        monday = date.fromisocalendar(year, week, 1)
-    except ValueError:
-        raise ContentlabError(
-            f"--week {text!r}: {year} has no ISO week {week} (weeks run 1 to {_iso_weeks_in(year)})."
-        ) from None
-    return monday, monday + timedelta(days=6)
+    """Monday and Sunday of an ISO week written like 2026-W48 (the one parser: :mod:`contentlab.timeparse`)."""
+    from .timeparse import parse_iso_week as parse
+
+    return parse(text, "--week")
 
 
 def parse_day(text: str, option: str) -> date:
-    try:
-        return date.fromisoformat(str(text).strip())
-    except ValueError:
-        raise ContentlabError(f"{option} {text!r} is not a date. Write it like 2026-11-23.") from None
+    """A date like 2026-11-23 (the one parser: :mod:`contentlab.timeparse`)."""
+    from .timeparse import parse_date
+
+    return parse_date(text, option)
 
 
 def iso_label(day: date) -> str:

@@ -33,7 +33,7 @@ import re
 import weakref
 from dataclasses import dataclass
 from functools import lru_cache
-from typing import Iterable, Sequence
+from typing import Iterable
 
 import numpy as np
 import pandas as pd
@@ -53,7 +53,7 @@ __all__ = [
 
 # A headline, not body text: longer drafts are refused (our limit; the longest headlines
 # in the demo and in the Upworthy archive are far below it).
-MAX_DRAFT_CHARS = 300
+from .readers import MAX_DRAFT_CHARS  # noqa: E402  (one limit for every drafts reader)
 # "Clearly ahead": the model's probability that the top draft is truly better than the next
 # is at least this (the same 90% the intervals use; our choice).
 CLEARLY_AHEAD = 0.9
@@ -76,37 +76,11 @@ CAUTIONS = [
 
 # ------------------------------------------------------------------ drafts in
 
-_PUBLISH_COLUMNS = ("publish_at", "published_at", "at", "time")
-
-
 def read_drafts(path) -> pd.DataFrame:
-    """A drafts CSV (headline, optional channel, publish_at, group) as text columns."""
-    from pathlib import Path
+    """A drafts CSV, read by the one drafts reader (:func:`contentlab.readers.read_drafts`)."""
+    from .readers import read_drafts as read
 
-    from .ingest import read_text, sniff_delimiter
-    import io
-
-    path = Path(path)
-    text = read_text(path)
-    if not text.strip():
-        raise ContentlabError(f"{path}: the file is empty. Give a CSV with a 'headline' column.")
-    try:
-        frame = pd.read_csv(io.StringIO(text), sep=sniff_delimiter(text), dtype=str, keep_default_na=False,
-                            skipinitialspace=True)
-    except (pd.errors.ParserError, ValueError) as exc:
-        raise ContentlabError(f"{path}: cannot be read as CSV ({exc}).") from None
-    frame.columns = [str(c).strip() for c in frame.columns]
-    lower = {c: c.lower() for c in frame.columns if c.lower() in {"headline", "channel", "group", *_PUBLISH_COLUMNS}
-             and c.lower() not in frame.columns}
-    frame = frame.rename(columns=lower)
-    if "headline" not in frame.columns:
-        raise ContentlabError(
-            f"{path}: row 1 (header) has no 'headline' column; its columns are: {', '.join(frame.columns)}."
-        )
-    if frame.empty:
-        raise ContentlabError(f"{path}: has a header but no drafts.")
-    frame.attrs["source"] = str(path)
-    return frame
+    return read(path)
 
 
 def _where(source: str | None, i: int) -> str:
@@ -114,117 +88,11 @@ def _where(source: str | None, i: int) -> str:
     return f"{source}: row {i + 2}" if source else f"draft {i + 1}"
 
 
-def parse_time(value: object, timezone: str, where: str = "") -> tuple[pd.Timestamp | None, bool]:
-    """Local timestamp of a planned publish time and whether it has a clock time.
+def prepare_drafts(frame: pd.DataFrame, timezone: str = "UTC", **kwargs) -> pd.DataFrame:
+    """Check drafts and add their local publish hour and weekday: :func:`contentlab.readers.prepare_drafts`."""
+    from .readers import prepare_drafts as prepare
 
-    Naive times ("2026-12-03 09:00") are in the workspace time zone; times with an
-    offset are converted to it; a date alone gives the weekday but no hour.
-    """
-    if value is None or (isinstance(value, float) and math.isnan(value)):
-        return None, False
-    if isinstance(value, pd.Timestamp):
-        text = value.isoformat()
-    else:
-        text = str(value).strip()
-    if not text:
-        return None, False
-    has_time = bool(re.search(r"\d[T ]\d{1,2}(:\d{2})?", text)) or bool(re.search(r"\d{1,2}:\d{2}", text))
-    try:
-        stamp = pd.Timestamp(text)
-    except (ValueError, TypeError, OverflowError):
-        stamp = pd.NaT
-    if stamp is pd.NaT or pd.isna(stamp):
-        raise ContentlabError(
-            f"{where + ', ' if where else ''}publish time '{text[:40]}' cannot be read; "
-            "use YYYY-MM-DD HH:MM (local time in the workspace time zone), e.g. 2026-12-03 09:00"
-        )
-    if stamp.tzinfo is None:
-        try:
-            stamp = stamp.tz_localize(timezone, nonexistent="shift_forward", ambiguous=True)
-        except Exception as exc:  # pragma: no cover - zoneinfo edge cases
-            raise ContentlabError(f"{where}: publish time '{text}' does not exist in {timezone} ({exc})") from None
-    else:
-        stamp = stamp.tz_convert(timezone)
-    return stamp, has_time
-
-
-def prepare_drafts(
-    frame: pd.DataFrame,
-    timezone: str = "UTC",
-    *,
-    channel: str | None = None,
-    at: str | None = None,
-    known_channels: Sequence[str] | None = None,
-    source: str | None = None,
-) -> pd.DataFrame:
-    """Validate drafts and add ``local_hour``/``local_weekday`` from ``publish_at`` in ``timezone``.
-
-    ``channel`` and ``at`` fill drafts that give none. Raises ContentlabError naming the
-    row and column for an empty or over-long headline, an unreadable time, or a channel
-    not in ``known_channels`` (when given). ``source`` names the file in messages
-    (a CSV's rows are then counted as in the file). Input columns are kept unchanged.
-    """
-    if not isinstance(frame, pd.DataFrame):
-        raise ContentlabError("drafts must be a DataFrame with a 'headline' column, or a list of headlines")
-    if "headline" not in frame:
-        raise ContentlabError("drafts need a 'headline' column")
-    from .features import clean_headline
-
-    source = source if source not in (None, "arguments") else frame.attrs.get("source")
-    out = frame.copy()
-    if len(out) == 0:
-        raise ContentlabError("no drafts to score: give at least one headline")
-    texts = [clean_headline(h) for h in out["headline"].tolist()]
-    for i, text in enumerate(texts):
-        if not text:
-            raise ContentlabError(f"{_where(source, i)}, column 'headline': the draft is empty; write a headline")
-        if len(text) > MAX_DRAFT_CHARS:
-            raise ContentlabError(
-                f"{_where(source, i)}, column 'headline': the draft has {len(text)} characters; a headline may "
-                f"have at most {MAX_DRAFT_CHARS}. Is this body text? Score the headline alone."
-            )
-    if channel is not None:
-        if "channel" not in out:
-            out["channel"] = channel
-        else:
-            blank = out["channel"].isna() | (out["channel"].astype(str).str.strip() == "")
-            out.loc[blank, "channel"] = channel
-    if "channel" in out:
-        channels = [None if c is None or (isinstance(c, float) and math.isnan(c)) or str(c).strip() == ""
-                    else str(c).strip() for c in out["channel"].tolist()]
-        out["channel"] = pd.Series(channels, index=out.index, dtype=object)
-        if known_channels is not None:
-            known = set(known_channels)
-            for i, c in enumerate(channels):
-                if c is not None and c not in known:
-                    raise ContentlabError(
-                        f"{_where(source, i)}, column 'channel': '{c}' is not a channel in your history; "
-                        f"use one of: {', '.join(sorted(known))}"
-                    )
-    column = next((c for c in _PUBLISH_COLUMNS if c in out), None)
-    values = out[column].tolist() if column else [None] * len(out)
-    if at is not None:
-        values = [at if (v is None or (isinstance(v, float) and math.isnan(v)) or str(v).strip() == "") else v
-                  for v in values]
-    hours = np.full(len(out), np.nan)
-    weekdays = np.full(len(out), np.nan)
-    dates: list[str | None] = [None] * len(out)
-    cache: dict[str, tuple] = {}
-    for i, v in enumerate(values):
-        key = str(v)
-        if key not in cache:
-            cache[key] = parse_time(v, timezone, f"{_where(source, i)}, column '{column or 'publish_at'}'")
-        stamp, has_time = cache[key]
-        if stamp is None:
-            continue
-        weekdays[i] = stamp.weekday()
-        dates[i] = stamp.date().isoformat()
-        if has_time:
-            hours[i] = stamp.hour + stamp.minute / 60.0
-    out["local_hour"] = hours
-    out["local_weekday"] = weekdays
-    out["local_date"] = dates
-    return out
+    return prepare(frame, timezone, **kwargs)
 
 
 # ------------------------------------------------------------ probabilities

@@ -15,10 +15,13 @@ import json
 import os
 import pickle
 import sqlite3
+import sys
+import time
 import zoneinfo
+from contextlib import contextmanager
 from datetime import datetime, timezone as dt_timezone
 from pathlib import Path
-from typing import Iterable
+from typing import Iterable, Iterator
 
 import numpy as np
 import pandas as pd
@@ -27,6 +30,8 @@ from .errors import ContentlabError
 
 DEFAULT_DIR = "contentlab-workspace"
 DB_NAME = "workspace.sqlite"
+# The setting that marks a workspace the demo made: only such a workspace may the demo replace.
+DEMO_MARK = ("created_by", "contentlab demo")
 
 MIGRATIONS: list[str] = [
     # 1: posts and what imported them
@@ -109,6 +114,67 @@ POST_COLUMNS = [
 ]
 
 
+# How long a command waits for another one writing to the same workspace, in seconds
+# (CONTENTLAB_LOCK_WAIT overrides it), and after how long it says that it is waiting.
+LOCK_WAIT_SECONDS = 60.0
+LOCK_NOTICE_SECONDS = 1.0
+
+
+def lock_wait_seconds() -> float:
+    try:
+        return max(0.0, float(os.environ.get("CONTENTLAB_LOCK_WAIT", LOCK_WAIT_SECONDS)))
+    except ValueError:
+        return LOCK_WAIT_SECONDS
+
+
+class WaitingConnection(sqlite3.Connection):
+    """A connection whose write transactions wait visibly for another writer, then give up clearly.
+
+    ``with conn:`` (every write in contentlab) starts with ``BEGIN IMMEDIATE``:
+    the write lock is taken before anything is read or written. If another
+    process holds it, a line on stderr says so after a second; after
+    :func:`lock_wait_seconds` a :class:`ContentlabError` says the workspace is
+    busy, and nothing was written.
+    """
+
+    workspace_path: str = "the workspace"
+    read_only: bool = False
+
+    def __enter__(self):
+        if not self.in_transaction:
+            self.begin_immediate()
+        return super().__enter__()
+
+    def begin_immediate(self) -> None:
+        if self.read_only:
+            raise ContentlabError(read_only_message(self.workspace_path))
+        limit = lock_wait_seconds()
+        start = time.monotonic()
+        told = False
+        while True:
+            waited = time.monotonic() - start
+            step = min(LOCK_NOTICE_SECONDS if not told else limit - waited, max(limit - waited, 0.0))
+            self.execute(f"PRAGMA busy_timeout={int(step * 1000)}")
+            try:
+                self.execute("BEGIN IMMEDIATE")
+                return
+            except sqlite3.OperationalError as exc:
+                if "locked" not in str(exc) and "busy" not in str(exc):
+                    raise
+            finally:
+                self.execute(f"PRAGMA busy_timeout={int(LOCK_NOTICE_SECONDS * 1000)}")
+            waited = time.monotonic() - start
+            if waited >= limit:
+                raise ContentlabError(
+                    f"the workspace at {self.workspace_path} is busy: another contentlab command has been writing to "
+                    f"it for over {limit:.0f} s. Nothing was written; try again when it has finished."
+                )
+            if not told:
+                print(f"waiting: another contentlab command is writing to {self.workspace_path} "
+                      f"(up to {limit:.0f} s)...", file=sys.stderr, flush=True)
+                told = True
+
+
 def resolve_dir(directory: str | os.PathLike | None) -> Path:
     """``--workspace`` if given, else ``$CONTENTLAB_WORKSPACE``, else ./contentlab-workspace."""
     if directory:
@@ -155,6 +221,8 @@ class Workspace:
     def __init__(self, path: Path, conn: sqlite3.Connection):
         self.path = path
         self.conn = conn
+        self.read_only = False
+        self.created = False  # this call made the database (see :func:`opened`)
 
     # ---------------------------------------------------------- lifecycle
     @classmethod
@@ -162,22 +230,48 @@ class Workspace:
              timezone: str | None = None) -> "Workspace":
         path = resolve_dir(directory)
         db = path / DB_NAME
+        if path.exists() and not path.is_dir():
+            raise ContentlabError(
+                f"{path} is a file, not a workspace folder; give --workspace a folder (new or existing)."
+            )
+        if db.exists() and not db.is_file():
+            raise ContentlabError(f"{db} is not a file, so {path} is not a usable workspace.")
+        created = False
         if not db.exists():
             if not create:
                 raise ContentlabError(
                     f"No workspace at {path}. Import a post history first: contentlab import FILE "
                     f"(or point --workspace / CONTENTLAB_WORKSPACE at your workspace)."
                 )
-            path.mkdir(parents=True, exist_ok=True)
-        conn = sqlite3.connect(db, timeout=30.0)
-        conn.execute("PRAGMA journal_mode=WAL")
-        # In WAL mode NORMAL is still safe from corruption; a power cut can lose
-        # only the last commits, and it makes a large import several times faster.
-        conn.execute("PRAGMA synchronous=NORMAL")
-        conn.execute("PRAGMA foreign_keys=ON")
-        conn.execute("PRAGMA busy_timeout=30000")
-        ws = cls(path, conn)
-        ws._migrate()
+            try:
+                path.mkdir(parents=True, exist_ok=True)
+            except OSError as exc:
+                raise ContentlabError(f"cannot create the workspace folder {path} ({exc.strerror}).") from None
+            created = True
+        read_only = not created and not _writable(path, db)
+        try:
+            if read_only:
+                # Nobody can write here, so nothing changes under us: open without the WAL's side files.
+                conn = sqlite3.connect(f"{db.resolve().as_uri()}?immutable=1", uri=True, timeout=LOCK_NOTICE_SECONDS,
+                                       factory=WaitingConnection)
+                conn.execute("PRAGMA query_only=ON")
+            else:
+                conn = sqlite3.connect(db, timeout=LOCK_NOTICE_SECONDS, factory=WaitingConnection)
+                conn.execute("PRAGMA journal_mode=WAL")
+                # In WAL mode NORMAL is still safe from corruption; a power cut can lose
+                # only the last commits, and it makes a large import several times faster.
+                conn.execute("PRAGMA synchronous=NORMAL")
+            conn.execute("PRAGMA foreign_keys=ON")
+            conn.workspace_path = str(path)
+            conn.read_only = read_only
+            ws = cls(path, conn)
+            ws.read_only = read_only
+            ws.created = created
+            ws._migrate()
+        except sqlite3.DatabaseError as exc:
+            if isinstance(exc, sqlite3.OperationalError) and not _is_corrupt(exc):
+                raise
+            raise ContentlabError(not_usable(path, exc)) from None
         if timezone is not None:
             ws.set_setting("timezone", check_timezone(timezone))
         return ws
@@ -207,10 +301,15 @@ class Workspace:
                 f"{self.path} was written by a newer contentlab (schema {version}, this one knows "
                 f"{SCHEMA_VERSION}). Upgrade contentlab to use it."
             )
+        if version < SCHEMA_VERSION and self.read_only:
+            raise ContentlabError(
+                f"{self.path} is read-only and was written by an older contentlab; it needs an upgrade that can "
+                "only be written to a folder you may change. Copy it somewhere writable first."
+            )
         for step in range(version, SCHEMA_VERSION):
             # executescript commits implicitly, so run the DDL inside an explicit
             # BEGIN IMMEDIATE ... COMMIT that we control.
-            self.conn.execute("BEGIN IMMEDIATE")
+            self.conn.begin_immediate()
             try:
                 if self._version() != step:  # another process migrated meanwhile
                     self.conn.execute("ROLLBACK")
@@ -359,6 +458,60 @@ class Workspace:
             )
         model = pickle.loads(row[5])
         return model, json.loads(row[4])
+
+
+@contextmanager
+def opened(directory: str | os.PathLike | None = None, *, create: bool = True) -> Iterator[Workspace]:
+    """A workspace for one command; if this call created it and the command fails, it is removed again.
+
+    So a command refused for bad input (``settings --timezone Nope/Zone``,
+    ``experiment new ../x``) never leaves a new, empty workspace behind.
+    """
+    path = resolve_dir(directory)
+    folder_existed = path.exists()
+    ws = Workspace.open(directory, create=create)
+    try:
+        yield ws
+    except BaseException:
+        ws.close()
+        if ws.created:
+            remove_new_workspace(path, remove_folder=not folder_existed)
+        raise
+    else:
+        ws.close()
+
+
+def remove_new_workspace(folder: Path, remove_folder: bool) -> None:
+    """Delete the database files a failed first command made (and the folder, only if it made it and it is empty)."""
+    for suffix in ("", "-wal", "-shm", "-journal"):
+        (folder / f"{DB_NAME}{suffix}").unlink(missing_ok=True)
+    if remove_folder:
+        try:
+            folder.rmdir()  # only if empty: never removes anything we did not create
+        except OSError:
+            pass
+
+
+def read_only_message(path) -> str:
+    """The one message for a write to a workspace the user may not change."""
+    return (f"the workspace at {path} is read-only (its folder or database file cannot be written), and this "
+            "command needs to write to it; nothing was written. Reading commands still work; to change it, "
+            "copy it to a folder you may write to, or ask for write access.")
+
+
+def not_usable(path: Path, exc: BaseException) -> str:
+    """The one message for a workspace database that SQLite cannot read."""
+    return (f"{path} is not a usable workspace: {path / DB_NAME} cannot be read as a contentlab database "
+            f"({exc}). Restore it from a backup, or use another --workspace.")
+
+
+def _is_corrupt(exc: sqlite3.DatabaseError) -> bool:
+    text = str(exc).lower()
+    return any(k in text for k in ("not a database", "malformed", "corrupt", "no such table", "file is encrypted"))
+
+
+def _writable(path: Path, db: Path) -> bool:
+    return os.access(path, os.W_OK) and os.access(db, os.W_OK)
 
 
 def add_local_time(frame: pd.DataFrame, timezone: str) -> pd.DataFrame:

@@ -84,7 +84,7 @@ def test_demo_drafts_end_to_end(capsys, wsdir, tmp_path):
     assert code == 0 and "0 recorded" in out and "8 already recorded" in out
     code, out, _ = run(capsys, "record", "mk", "--arm", "D", "--impressions", "500", "--clicks", "31",
                        "--at", "2026-12-04T09:00", "--workspace", wsdir)
-    assert code == 0 and "derived from the arm, time and values" in " ".join(out.split())
+    assert code == 0 and "identified by its arm, --at and figures" in " ".join(out.split())
     code, out, _ = run(capsys, "experiment", "status", "mk", "--format", "json", "--workspace", wsdir)
     status = json.loads(out)
     by_arm = {a["arm"]: a for a in status["arms"]}

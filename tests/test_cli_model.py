@@ -85,7 +85,7 @@ def test_score_arguments(workspace, capsys):
 
 @pytest.mark.parametrize("argv, message", [
     (["score", "A draft", "--channel", "tiktok"], "tiktok"),
-    (["score", "A draft", "--channel", "blog", "--at", "next tuesday"], "publish_at"),
+    (["score", "A draft", "--channel", "blog", "--at", "next tuesday"], "--at: 'next tuesday' is not an ISO 8601"),
     (["score"], "at least one headline"),
     (["drivers", "--top", "-1"], "--top"),
 ])

@@ -92,7 +92,7 @@ def test_slots_table(workspace, capsys):
         (["   ", "--channel", "blog"], "empty"),
         (["x" * 2000, "--channel", "blog"], "2000 characters"),
         (["Inside the makerspace", "--channel", "podcast"], "'podcast' is not a channel"),
-        (["Inside the makerspace", "--channel", "blog", "--at", "31/31/2026 25:99"], "cannot be read"),
+        (["Inside the makerspace", "--channel", "blog", "--at", "31/31/2026 25:99"], "is a day/month form"),
         ([], "give at least one headline"),
     ],
 )

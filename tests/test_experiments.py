@@ -220,7 +220,7 @@ def test_given_event_ids_and_conflicts(exp):
 
 def test_single_call_derives_id_from_values(exp):
     one = record_results(exp, "laser", results([("C", 300, 7)], at="2026-12-04T10:00"))
-    assert one.derived_ids == 1 and "derived from the arm, time and values" in one.notes[0]
+    assert one.derived_ids == 1 and "identified by its arm, --at and figures" in one.notes[0]
     again = record_results(exp, "laser", results([("C", 300, 7)], at="2026-12-04T10:00"))
     assert again.added == 0
     other_time = record_results(exp, "laser", results([("C", 300, 7)], at="2026-12-04T11:00"))

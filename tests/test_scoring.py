@@ -337,7 +337,7 @@ def test_prepare_drafts_reads_local_times():
         (["   "], {"channel": "blog"}, "empty"),
         (["x" * 2000], {"channel": "blog"}, "2000 characters"),
         (["Inside the makerspace"], {"channel": "podcast"}, "'podcast' is not a channel"),
-        (["Inside the makerspace"], {"channel": "blog", "at": "next Thursday-ish"}, "cannot be read"),
+        (["Inside the makerspace"], {"channel": "blog", "at": "next Thursday-ish"}, "is not an ISO 8601 date or date-time"),
         (["Inside the makerspace"], {}, "give the draft a channel"),
     ],
 )

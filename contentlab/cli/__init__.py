@@ -3,14 +3,19 @@
 Each area of the tool registers its subcommands from its own module
 (``register(subparsers)``); a subcommand parses arguments, calls the library
 and formats the result. Library errors (:class:`ContentlabError`) become one
-line on stderr and exit code 2. Heavy libraries are imported inside the
-command functions, so ``contentlab --help`` starts fast.
+line on stderr and exit code 2. So do the failures of the machine around it
+(a full disk, a read-only or locked workspace, a damaged database): one line,
+no traceback. Anything else is a bug: one line that says so, and the traceback
+with ``CONTENTLAB_DEBUG=1``. Heavy libraries are imported inside the command
+functions, so ``contentlab --help`` starts fast.
 """
 
 from __future__ import annotations
 
 import argparse
+import errno
 import importlib
+import os
 import sys
 
 from ..errors import ContentlabError
@@ -27,6 +32,10 @@ a week with contentlab:
   contentlab record spring-launch --input results.csv
   contentlab report                           # this week's report, in reports/
 
+common options go before or after the command:
+  contentlab --workspace ~/team-workspace import posts.csv
+  (the workspace is --workspace DIR, else $CONTENTLAB_WORKSPACE, else ./contentlab-workspace)
+
 new here?  contentlab demo   runs all of it on an invented demo organisation.
 """
 
@@ -42,6 +51,7 @@ def build_parser() -> argparse.ArgumentParser:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     parser.add_argument("--version", action="store_true", help="print the version and exit")
+    parser.add_argument("--workspace", metavar="DIR", default=None, help=WORKSPACE_HELP)
     subparsers = parser.add_subparsers(dest="command", metavar="COMMAND")
     for area in AREAS:
         try:
@@ -54,12 +64,12 @@ def build_parser() -> argparse.ArgumentParser:
     return parser
 
 
+WORKSPACE_HELP = "workspace folder (default: $CONTENTLAB_WORKSPACE, else ./contentlab-workspace)"
+
+
 def add_workspace_option(parser: argparse.ArgumentParser) -> None:
-    parser.add_argument(
-        "--workspace",
-        metavar="DIR",
-        help="workspace folder (default: $CONTENTLAB_WORKSPACE, else ./contentlab-workspace)",
-    )
+    """``--workspace`` after the command; the same option before it (top level) is kept when this one is absent."""
+    parser.add_argument("--workspace", metavar="DIR", default=argparse.SUPPRESS, help=WORKSPACE_HELP)
 
 
 def add_format_option(parser: argparse.ArgumentParser, choices=("table", "json", "csv")) -> None:
@@ -88,17 +98,66 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "handler", None):
         parser.print_help()
         return 0
+    name = " ".join(str(p) for p in (args.command, getattr(args, "action", None)) if p)
     try:
         result = args.handler(args)
     except ContentlabError as exc:
-        print(f"contentlab {args.command}: {exc}", file=sys.stderr)
+        print(f"contentlab {name}: {exc}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print("interrupted; nothing more was written", file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0
+    except Exception as exc:  # the safety net: one line, never a traceback (unless CONTENTLAB_DEBUG=1)
+        if os.environ.get("CONTENTLAB_DEBUG") == "1":
+            raise
+        message, code = explain_failure(exc, getattr(args, "workspace", None))
+        print(f"contentlab {name}: {message}", file=sys.stderr)
+        return code
     return int(result or 0)
+
+
+def explain_failure(exc: Exception, workspace=None) -> tuple[str, int]:
+    """One line and an exit code for an error that is not a :class:`ContentlabError`.
+
+    Failures of the machine around the tool (disk full, read-only, locked or
+    damaged workspace, a file that cannot be written) get exit code 2 and what
+    to do; anything else is a bug (exit code 1) and says how to see where.
+    """
+    import sqlite3
+
+    from ..workspace import not_usable, read_only_message, resolve_dir
+
+    where = resolve_dir(workspace)
+    text = str(exc)
+    if isinstance(exc, sqlite3.OperationalError):
+        low = text.lower()
+        if "disk is full" in low:
+            return (f"the disk holding the workspace at {where} is full; nothing was written (the change was rolled "
+                    "back). Free some space and run the command again."), 2
+        if "readonly" in low or "read-only" in low:
+            return read_only_message(where), 2
+        if "locked" in low or "busy" in low:
+            return (f"the workspace at {where} is busy: another contentlab command is writing to it. Nothing was "
+                    "written; try again when it has finished."), 2
+        if "unable to open" in low:
+            return f"cannot open the workspace database in {where} ({text}); check that you may read that folder.", 2
+        if "disk i/o" in low:
+            return f"a disk error stopped the command ({text}); nothing was written. Check the disk holding {where}.", 2
+    if isinstance(exc, sqlite3.DatabaseError):
+        return not_usable(where, exc), 2
+    if isinstance(exc, OSError):
+        target = f"{exc.filename}: " if exc.filename else ""
+        if exc.errno == errno.ENOSPC:
+            return f"{target}the disk is full; nothing more was written. Free some space and run the command again.", 2
+        if exc.errno in (errno.EACCES, errno.EPERM, errno.EROFS):
+            return f"{target}cannot write or read here ({exc.strerror}); check the permissions or choose another place.", 2
+        return f"{target}{exc.strerror or text}", 2
+    if isinstance(exc, MemoryError):
+        return "ran out of memory; try a smaller file or close other programs.", 2
+    return (f"unexpected error ({type(exc).__name__}: {' '.join(text.split())[:200]}). This is a bug in contentlab; "
+            "run the command again with CONTENTLAB_DEBUG=1 to see where it happened, and report it."), 1
 
 
 def run() -> None:  # console-script entry point

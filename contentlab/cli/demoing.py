@@ -18,8 +18,9 @@ def register(subparsers) -> None:
         ),
         example="contentlab demo --workspace /tmp/demo-workspace",
     )
-    p.add_argument("--workspace", metavar="DIR", default="demo-workspace",
-                   help="where to build the demo workspace (emptied first; default: %(default)s)")
+    p.add_argument("--workspace", metavar="DIR", default=argparse.SUPPRESS,
+                   help="where to build the demo workspace (default: demo-workspace); an earlier demo workspace "
+                        "there is replaced, anything else is refused")
     p.add_argument("--out", metavar="DIR", default=None,
                    help="where the report goes (default: a reports folder inside the demo workspace)")
     p.set_defaults(handler=cmd_demo)
@@ -28,5 +29,5 @@ def register(subparsers) -> None:
 def cmd_demo(args: argparse.Namespace) -> int:
     from ..demo import run_demo
 
-    run_demo(args.workspace, args.out)
+    run_demo(args.workspace or "demo-workspace", args.out)
     return 0

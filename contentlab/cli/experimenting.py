@@ -39,6 +39,7 @@ def register(subparsers) -> None:
         ),
         example="contentlab experiment new makerspace --drafts corpus/drafts.csv --group makerspace-launch",
     )
+    add_workspace_option(exp)  # also accepted between 'experiment' and its action
     sub = exp.add_subparsers(dest="action", metavar="ACTION")
     exp.set_defaults(handler=lambda args: (exp.print_help(), 0)[1])
 
@@ -66,7 +67,7 @@ def register(subparsers) -> None:
     p.add_argument("--prior-strength", type=float, metavar="S",
                    help="use the model's predictions with this strength (pseudo-impressions) instead of the chosen one")
     p.add_argument("--policy", default="thompson", choices=["thompson", "top-two"], help=POLICY_HELP)
-    p.add_argument("--seed", type=int, help="random seed for the allocations (default: a fresh one, stored)")
+    p.add_argument("--seed", type=int, help="random seed for the allocations, 0 to 2147483647 (default: a fresh one, stored)")
     add_format_option(p)
     add_workspace_option(p)
     p.set_defaults(handler=cmd_new)
@@ -150,8 +151,11 @@ def register(subparsers) -> None:
             "Add results to an experiment: one arm with --arm/--impressions/--clicks, or a CSV with columns arm, "
             "impressions, clicks and optional at (ISO 8601; local time of the workspace without an offset) and "
             "event_id. Figures are increments since the last report unless --cumulative says they are totals so "
-            "far. Every result has an event id (given, or derived from the file name, row number and cells, or "
-            "from the arm, time and values), so replaying the same file changes nothing. One call is one "
+            "far. Replays are recognised by event id: a result without one is identified by its file's whole "
+            "content and its row (never the file's name), so recording the identical file again changes nothing "
+            "while a new batch under the same name counts in full; a single result by its arm, --at and figures. "
+            "A single result with neither --event-id nor --at cannot be told from a repeat: running the same "
+            "command twice counts it twice (the output says so). One call is one "
             "transaction: a bad row (clicks above impressions, a negative or fractional count, an unknown arm, "
             "a cumulative total that goes down) records nothing. The arms' totals also join the post history, "
             "so the next learn learns from them."
@@ -177,14 +181,16 @@ def register(subparsers) -> None:
 def cmd_new(args: argparse.Namespace) -> int:
     from ..errors import ContentlabError
     from ..experiments import create_experiment, read_drafts
-    from ..workspace import Workspace
+    from ..workspace import opened
 
     if args.drafts and args.headlines:
         raise ContentlabError("give drafts either as --drafts FILE or as headlines on the command line, not both.")
     if not args.drafts and not args.headlines:
         raise ContentlabError('give the drafts: --drafts drafts.csv, or headlines as arguments ("Draft one" "Draft two").')
+    if args.seed is not None and not 0 <= args.seed < 2**31:
+        raise ContentlabError(f"--seed must be a whole number from 0 to {2**31 - 1}; got {args.seed}.")
     drafts = read_drafts(args.drafts) if args.drafts else list(args.headlines)
-    with Workspace.open(args.workspace) as ws:  # a test can start before any history is imported
+    with opened(args.workspace) as ws:  # a test can start before any history is imported; a refused one leaves none
         created = create_experiment(
             ws, args.name, drafts, flat_prior=args.flat_prior, channel=args.channel, group=args.group,
             prior_strength=args.prior_strength, policy=args.policy, source=args.drafts, seed=args.seed,
@@ -213,8 +219,13 @@ def cmd_new(args: argparse.Namespace) -> int:
 
 
 def cmd_next(args: argparse.Namespace) -> int:
+    from ..errors import ContentlabError
     from ..experiments import next_allocation
+    from ..readers import MAX_COUNT
     from ..workspace import Workspace
+
+    if args.impressions > MAX_COUNT:
+        raise ContentlabError(f"--impressions must be at most 2^53 ({MAX_COUNT:,}); got {args.impressions:,}.")
 
     with Workspace.open(args.workspace, create=False) as ws:
         alloc = next_allocation(ws, args.name, args.impressions, args.policy, single=args.single)
@@ -300,9 +311,9 @@ def cmd_list(args: argparse.Namespace) -> int:
         return 0
     print(_table(frame, [
         ("experiment", "experiment", str), ("created", "created_at", lambda v: str(v)[:10]),
-        ("channel", "channel", lambda v: v or "-"), ("status", "status", str), ("arms", "arms", str),
+        ("channel", "channel", _text_or_dash), ("status", "status", str), ("arms", "arms", str),
         ("impressions", "impressions", lambda v: f"{int(v):,}"), ("clicks", "clicks", lambda v: f"{int(v):,}"),
-        ("leader", "leader", lambda v: v or "-"),
+        ("leader", "leader", _text_or_dash),
     ]))
     return 0
 
@@ -365,10 +376,15 @@ def _pct(v) -> str:
     return "-" if not math.isfinite(f) else f"{100 * f:.2f}%"
 
 
-def _clip(v, n: int) -> str:
-    from ..ingest import _short
+def _text_or_dash(v) -> str:
+    """A text cell, or '-' when it is missing (None, or NaN where pandas mixed missing and text)."""
+    return "-" if v is None or (isinstance(v, float) and math.isnan(v)) or v == "" else str(v)
 
-    return _short("" if v is None else str(v), n)
+
+def _clip(v, n: int) -> str:
+    from ..readers import short
+
+    return short("" if v is None else str(v), n)
 
 
 def _wrap(text: str, width: int = 100) -> str:
@@ -385,7 +401,7 @@ def _table(frame, columns, extra=None) -> str:
         if title in extra:
             cells.append([str(c) for c in extra[title]])
         else:
-            cells.append([fmt(v) for v in frame[col]])
+            cells.append([str(fmt(v)) for v in frame[col]])
     widths = [max([len(t)] + [len(c) for c in cs]) for (t, _, _), cs in zip(columns, cells)]
     numeric = [title not in ("arm", "headline", "experiment", "channel", "status", "leader") for title, _, _ in columns]
     lines = ["  ".join(t.ljust(w) if not num else t.rjust(w) for (t, _, _), w, num in zip(columns, widths, numeric))]

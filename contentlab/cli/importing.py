@@ -52,41 +52,23 @@ def register(subparsers) -> None:
 
 
 def cmd_import(args: argparse.Namespace) -> int:
-    from ..errors import ContentlabError
     from ..history import import_history
-    from ..workspace import DB_NAME, Workspace, check_timezone, resolve_dir
+    from ..workspace import check_timezone, opened
 
     if args.timezone:
         check_timezone(args.timezone)
-    folder = resolve_dir(args.workspace)
-    folder_existed, db_existed = folder.exists(), (folder / DB_NAME).exists()
-    try:
-        with Workspace.open(args.workspace) as ws:
-            previous = ws.timezone
-            if args.timezone:
-                ws.set_setting("timezone", args.timezone)
-            try:
-                summary = import_history(ws, args.file, args.map, skip_bad=args.skip_bad, progress=not args.quiet)
-            except ContentlabError:
-                if db_existed and args.timezone:
-                    ws.set_setting("timezone", previous)  # a failed import changes nothing
-                raise
-    except ContentlabError:
-        if not db_existed:  # a first import that failed leaves no empty workspace behind
-            _remove_new_workspace(folder, DB_NAME, remove_folder=not folder_existed)
-        raise
+    with opened(args.workspace) as ws:  # a first import that fails leaves no empty workspace behind
+        previous = ws.timezone
+        if args.timezone:
+            ws.set_setting("timezone", args.timezone)
+        try:
+            summary = import_history(ws, args.file, args.map, skip_bad=args.skip_bad, progress=not args.quiet)
+        except BaseException:
+            if args.timezone and not ws.created and ws.timezone != previous:
+                ws.set_setting("timezone", previous)  # a failed import changes nothing
+            raise
     print(summary.line())
     return 0
-
-
-def _remove_new_workspace(folder, db_name: str, remove_folder: bool) -> None:
-    for suffix in ("", "-wal", "-shm", "-journal"):
-        (folder / f"{db_name}{suffix}").unlink(missing_ok=True)
-    if remove_folder:
-        try:
-            folder.rmdir()  # only if empty: never removes anything we did not create
-        except OSError:
-            pass
 
 
 def cmd_features(args: argparse.Namespace) -> int:
@@ -99,11 +81,13 @@ def cmd_features(args: argparse.Namespace) -> int:
 
 
 def cmd_settings(args: argparse.Namespace) -> int:
-    from ..workspace import Workspace, check_timezone
+    from ..workspace import check_timezone, opened
 
-    with Workspace.open(args.workspace, create=args.timezone is not None) as ws:
+    if args.timezone:
+        check_timezone(args.timezone)  # before anything is created
+    with opened(args.workspace, create=args.timezone is not None) as ws:
         if args.timezone:
-            ws.set_setting("timezone", check_timezone(args.timezone))
+            ws.set_setting("timezone", args.timezone)
         print(f"workspace: {ws.path}")
         print(f"timezone:  {ws.timezone}")
         print(f"posts:     {ws.count_posts()}")

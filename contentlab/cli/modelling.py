@@ -79,6 +79,8 @@ def cmd_learn(args: argparse.Namespace) -> int:
     if args.bootstrap < 0:
         raise ContentlabError(f"--bootstrap must be 0 or more; got {args.bootstrap}")
     with Workspace.open(args.workspace, create=False) as ws:
+        if ws.count_posts() == 0:
+            raise ContentlabError(f"no posts in the workspace at {ws.path}; import first: contentlab import FILE")
         posts = ws.posts()
         fingerprint = ws.fingerprint(args.outcome)
         # n_jobs=None: large histories spread folds and bootstrap over every core (small ones stay in one process).

@@ -42,6 +42,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     if args.date_to and not args.date_from:
         raise ContentlabError("--to needs --from: give both dates of the range.")
     with Workspace.open(args.workspace, create=False) as ws:
+        _check_something_to_report(ws, args)
         report = build_report(ws, week=args.week, start=args.date_from, end=args.date_to, outcome=args.outcome,
                               drafts=args.drafts)
     files = write_report(report, args.out)
@@ -52,3 +53,28 @@ def cmd_report(args: argparse.Namespace) -> int:
     for item in report.missing:
         print(f"  not included: {item}", file=sys.stderr)
     return 0
+
+
+def _check_something_to_report(ws, args: argparse.Namespace) -> None:
+    """An empty workspace, or a period that has not begun, has nothing to report: say so instead of an empty page."""
+    import zoneinfo
+    from datetime import datetime
+
+    from ..errors import ContentlabError
+    from ..timeparse import parse_date, parse_iso_week
+
+    if ws.count_posts() == 0:
+        raise ContentlabError(f"nothing to report: no posts in the workspace at {ws.path}; import first: "
+                              "contentlab import FILE")
+    today = datetime.now(zoneinfo.ZoneInfo(ws.timezone)).date()
+    if args.week:
+        start, label = parse_iso_week(args.week)[0], f"week {args.week}"
+    elif args.date_from:
+        start, label = parse_date(args.date_from, "--from"), f"the period from {args.date_from}"
+        if args.date_to:
+            parse_date(args.date_to, "--to")
+    else:
+        return
+    if start > today:
+        raise ContentlabError(f"nothing to report: {label} has not begun yet (today is {today} in {ws.timezone}). "
+                              "Choose a week that has posts, or leave out --week for the last complete one.")

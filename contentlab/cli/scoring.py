@@ -38,7 +38,7 @@ def register(subparsers) -> None:
     )
     p.add_argument("headlines", nargs="*", metavar="HEADLINE", help="draft headlines (or use --input)")
     p.add_argument("--input", metavar="DRAFTS.csv",
-                   help="CSV of drafts: headline, optional channel, publish_at (local time), group")
+                   help="CSV of drafts: headline, optional channel, publish_at or time (local time), group")
     p.add_argument("--channel", help="channel for drafts that name none (e.g. newsletter)")
     p.add_argument("--at", metavar="'YYYY-MM-DD HH:MM'",
                    help="planned publish time (workspace time zone) for drafts that give none")
@@ -57,7 +57,7 @@ def read_drafts(args: argparse.Namespace):
     import pandas as pd
 
     from ..errors import ContentlabError
-    from ..scoring import read_drafts as read_drafts_csv
+    from ..readers import read_drafts as read_drafts_csv
 
     if args.input and args.headlines:
         raise ContentlabError("give headlines as arguments or with --input, not both")
@@ -70,10 +70,11 @@ def read_drafts(args: argparse.Namespace):
 
 def cmd_score(args: argparse.Namespace) -> int:
     from ..scoring import score_drafts
+    from ..workspace import resolve_dir
 
     frame = read_drafts(args)
     suggest = args.suggest if args.suggest is not None else len(frame) <= SUGGEST_AUTO_MAX
-    result = score_drafts(frame, args.workspace, channel=args.channel, at=args.at, suggest=suggest,
+    result = score_drafts(frame, resolve_dir(args.workspace), channel=args.channel, at=args.at, suggest=suggest,
                           slots=args.slots, outcome=args.outcome)
     if args.format == "csv":
         from ..safety import write_csv

@@ -1,0 +1,524 @@
+"""One reader per kind of input file, and the checks every way in shares.
+
+* :func:`read_cells` reads any CSV the user gives (post history, drafts,
+  results) into text cells, refusing what would otherwise be read wrongly: a
+  UTF-16 file, NUL bytes, a header that names a column twice, a row with more
+  cells than the header, a quote that never closes. Row numbers are physical
+  lines as a text editor shows them (a quoted headline over two lines moves
+  the rows below it down).
+* :func:`read_drafts` / :func:`prepare_drafts`: the drafts format (``headline``;
+  optional ``channel``, ``publish_at`` or ``time``, ``group``, ``arm``), used by
+  ``score``, ``experiment new``, ``report --drafts`` and the Python API alike.
+* :func:`read_results` / :func:`check_results`: the results format (``arm``,
+  ``impressions``, ``clicks``; optional ``at``, ``event_id``), used by
+  ``record`` and :func:`contentlab.experiments.record_results`.
+* :func:`count_cells`: whole non-negative counts, the same rules for an export
+  and for results.
+
+Limits (also in the README): ids (post, experiment, image, event) up to
+:data:`MAX_ID_CHARS` characters, channel and group names up to
+:data:`MAX_NAME_CHARS`, headlines up to :data:`MAX_HEADLINE_CHARS` in a history and
+:data:`MAX_DRAFT_CHARS` in drafts, counts up to
+2^53 (the largest whole number a float holds exactly).
+"""
+
+from __future__ import annotations
+
+import codecs
+import csv
+import gzip
+import hashlib
+import io
+import math
+import re
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import ContentlabError
+from .timeparse import parse_datetime, parse_datetimes
+
+MAX_ID_CHARS = 200
+MAX_NAME_CHARS = 100
+MAX_HEADLINE_CHARS = 1000  # a post in a history
+MAX_DRAFT_CHARS = 300  # a draft to score or test: a headline, not body text
+MAX_COUNT = 2**53
+PUBLISH_ALIASES = ("publish_at", "published_at", "at", "time")
+DRAFT_COLUMNS = ("headline", "channel", "publish_at", "group", "arm")
+RESULT_COLUMNS = ("arm", "impressions", "clicks", "at", "event_id")
+
+__all__ = [
+    "MAX_COUNT",
+    "MAX_DRAFT_CHARS",
+    "MAX_HEADLINE_CHARS",
+    "MAX_ID_CHARS",
+    "MAX_NAME_CHARS",
+    "check_results",
+    "count_cells",
+    "file_digest",
+    "long_cells",
+    "prepare_drafts",
+    "read_bytes",
+    "read_cells",
+    "read_drafts",
+    "read_results",
+    "short",
+    "sniff_delimiter",
+]
+
+
+def short(text: str, limit: int = 40) -> str:
+    """``text`` cut to ``limit`` characters for a message."""
+    text = str(text)
+    return text if len(text) <= limit else text[: limit - 1] + "…"
+
+
+# ------------------------------------------------------------------ bytes and structure
+
+def read_bytes(path: str | Path) -> tuple[bytes, str]:
+    """File bytes (gunzipped, BOM removed) and their encoding: UTF-8 if they are valid UTF-8, else cp1252.
+
+    A UTF-16 or UTF-32 file is recognised (by its byte-order mark, or by the
+    NUL byte beside every ASCII letter) and refused with a way to fix it.
+    """
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise ContentlabError(f"{path}: no such file. Check the path and try again.") from None
+    except IsADirectoryError:
+        raise ContentlabError(f"{path}: is a folder; give the CSV file inside it.") from None
+    except PermissionError:
+        raise ContentlabError(f"{path}: cannot be read (permission denied).") from None
+    if raw[:2] == b"\x1f\x8b":
+        try:
+            raw = gzip.decompress(raw)
+        except (OSError, EOFError) as exc:
+            raise ContentlabError(f"{path}: looks gzip-compressed but cannot be read ({exc}).") from None
+    if raw.startswith(b"\xef\xbb\xbf"):
+        return raw[3:], "utf-8"
+    wide = _wide_encoding(raw)
+    if wide:
+        raise ContentlabError(
+            f"{path}: is encoded as {wide}, which contentlab does not read; save it as CSV UTF-8 "
+            "(in a spreadsheet: Save As, 'CSV UTF-8') and try again."
+        )
+    nul = raw.find(b"\x00")
+    if nul >= 0:
+        line = raw.count(b"\n", 0, nul) + 1
+        raise ContentlabError(
+            f"{path}: row {line} holds a NUL byte (\\0), which no CSV export contains; the file may be damaged "
+            "or not a CSV file. Export it again as CSV."
+        )
+    return raw, "utf-8" if _is_utf8(raw) else "cp1252"
+
+
+def _wide_encoding(raw: bytes) -> str | None:
+    if raw[:4] in (b"\xff\xfe\x00\x00", b"\x00\x00\xfe\xff"):
+        return "UTF-32"
+    if raw[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        return "UTF-16"
+    head = raw[:200]
+    if len(head) >= 4 and head.count(b"\x00") * 3 >= len(head):
+        return "UTF-16 (no byte-order mark)"
+    return None
+
+
+def _is_utf8(raw: bytes, block: int = 1 << 20) -> bool:
+    """Whether ``raw`` decodes as UTF-8, checked a megabyte at a time (no full-size copy)."""
+    decoder = codecs.getincrementaldecoder("utf-8")()
+    view = memoryview(raw)
+    try:
+        for start in range(0, len(raw), block):
+            decoder.decode(view[start:start + block], final=False)
+        decoder.decode(b"", final=True)
+    except UnicodeDecodeError:
+        return False
+    return True
+
+
+def file_digest(raw: bytes) -> str:
+    """Digest of a file's whole content: two files with the same bytes are the same batch."""
+    return hashlib.blake2b(raw, digest_size=16).hexdigest()
+
+
+def sniff_delimiter(text: str) -> str:
+    """Comma, semicolon or tab: the one the header row uses most (outside quotes).
+
+    The header decides because headlines in the rows below are free text full
+    of commas and semicolons; csv.Sniffer breaks a tie.
+    """
+    header = text.split("\n", 1)[0]
+    outside = re.sub(r'"[^"]*"', "", header)
+    counts = {d: outside.count(d) for d in (",", ";", "\t")}
+    best = max(counts.values())
+    winners = [d for d, c in counts.items() if c == best]
+    if best > 0 and len(winners) == 1:
+        return winners[0]
+    sample = "\n".join(text.splitlines()[:20])
+    try:
+        return csv.Sniffer().sniff(sample, delimiters=",;\t").delimiter
+    except csv.Error:
+        return winners[0] if best > 0 else ","
+
+
+def read_cells(path: str | Path, what: str = "file") -> pd.DataFrame:
+    """Every cell of a CSV as text (leading spaces dropped; callers strip what they compare); the index is each row's first physical line (the header is line 1).
+
+    ``frame.attrs`` holds ``source`` (the path as given) and ``digest`` (of the
+    whole content). Blank rows are dropped (their line numbers stay skipped).
+    Raises :class:`ContentlabError` naming the line for anything the file's
+    structure gets wrong; ``what`` names the kind of file in the message.
+    """
+    raw, encoding = read_bytes(path)
+    if not raw.strip():
+        raise ContentlabError(f"{path}: the file is empty; a {what} needs a header row and at least one row.")
+    delimiter = sniff_delimiter(raw[:65536].decode(encoding, errors="replace"))
+    try:
+        cells = pd.read_csv(
+            io.BytesIO(raw), encoding=encoding, encoding_errors="replace", sep=delimiter, header=None,
+            dtype=str, keep_default_na=False, skipinitialspace=True, skip_blank_lines=False, engine="c",
+        )
+    except pd.errors.ParserError as exc:
+        raise ContentlabError(_structure_problem(path, raw, encoding, delimiter, str(exc))) from None
+    except (ValueError, UnicodeError) as exc:
+        raise ContentlabError(f"{path}: cannot be read as CSV ({' '.join(str(exc).split())}).") from None
+    header = [str(c).strip() for c in cells.iloc[0].tolist()]
+    header = [h if h else f"(unnamed column {j + 1})" for j, h in enumerate(header)]
+    seen: dict[str, int] = {}
+    for j, name in enumerate(header):
+        key = name.casefold()
+        if key in seen:
+            raise ContentlabError(
+                f"{path}: row 1 (header), column '{name}' appears twice (columns {seen[key] + 1} and {j + 1}); "
+                "rename or remove one of them."
+            )
+        seen[key] = j
+    frame = cells.iloc[1:].reset_index(drop=True)
+    frame.columns = header
+    frame.index = pd.Index(_row_lines(raw, encoding, delimiter, len(cells)), dtype=np.int64)[1:]
+    frame = frame.fillna("")
+    if len(frame.columns):
+        blank = (frame == "").all(axis=1)
+        if blank.any():
+            frame = frame.loc[~blank.to_numpy()]
+    frame.attrs["source"] = str(path)
+    frame.attrs["digest"] = file_digest(raw)
+    return frame
+
+
+def _row_lines(raw: bytes, encoding: str, delimiter: str, n_records: int) -> list[int]:
+    """First physical line of each record. One line per record unless a quoted cell spans lines."""
+    newlines = raw.count(b"\n")
+    if newlines == n_records - (0 if raw.endswith(b"\n") else 1) and b"\r" not in raw.replace(b"\r\n", b""):
+        return list(range(1, n_records + 1))
+    starts, line = [], 1
+    reader = csv.reader(io.StringIO(raw.decode(encoding, errors="replace"), newline=""), delimiter=delimiter,
+                        skipinitialspace=True)
+    for _ in reader:
+        starts.append(line)
+        line = reader.line_num + 1
+    if len(starts) != n_records:  # a shape pandas and csv disagree on: record numbers are the best we have
+        return list(range(1, n_records + 1))
+    return starts
+
+
+def _structure_problem(path, raw: bytes, encoding: str, delimiter: str, detail: str) -> str:
+    """The line a CSV breaks on and why, found with the csv module (slower, exact)."""
+    shown = {",": "comma", ";": "semicolon", "\t": "tab"}[delimiter]
+    reader = csv.reader(io.StringIO(raw.decode(encoding, errors="replace"), newline=""), delimiter=delimiter,
+                        skipinitialspace=True, strict=True)
+    width, line = None, 1
+    try:
+        for record in reader:
+            if width is None:
+                width = len(record)
+            elif len(record) > width:
+                return (f"{path}: row {line} has {len(record)} cells but the header has {width}; a cell that holds "
+                        f"the delimiter ({shown}) needs quotes around it, or the row has one cell too many.")
+            line = reader.line_num + 1
+    except csv.Error:
+        return (f"{path}: row {line}: a quote (\") opens a cell that never closes, so the rest of the file would "
+                "be read as one cell; close the quote or remove it.")
+    return f"{path}: cannot be read as CSV ({' '.join(detail.split())})."
+
+
+# ------------------------------------------------------------------ counts
+
+def count_cells(cells: pd.Series, column: str) -> tuple[np.ndarray, np.ndarray, list[tuple[int, str, str]]]:
+    """Whole non-negative counts from text cells -> (values, bad, problems).
+
+    ``problems`` are ``(position, column, reason)``, one per bad cell: empty,
+    NaN, not a number, infinite, negative, fractional, or above 2^53 (beyond
+    which a float no longer holds every whole number, so it would be stored
+    rounded).
+    """
+    raw = cells.astype(str).str.strip()
+    values = pd.to_numeric(raw, errors="coerce").to_numpy(dtype=float, na_value=np.nan)
+    empty = (raw == "").to_numpy()
+    named_nan = raw.str.lower().isin(["nan", "-nan", "+nan"]).to_numpy()
+    nonnum = np.isnan(values) & ~empty & ~named_nan
+    infinite = np.isinf(values)
+    finite = np.isfinite(values)
+    negative = finite & (values < 0)
+    fractional = finite & ~negative & (np.floor(values) != values)
+    too_large = finite & ~negative & ~fractional & (values >= MAX_COUNT - 1)
+    for i in np.flatnonzero(too_large):  # exact check on the text: a float cannot tell 2**53 from 2**53 + 1
+        try:
+            too_large[i] = int(float(raw.iat[i])) > MAX_COUNT or int(raw.iat[i]) > MAX_COUNT
+        except ValueError:
+            too_large[i] = float(raw.iat[i]) > MAX_COUNT
+    problems: list[tuple[int, str, str]] = []
+    for i in np.flatnonzero(empty):
+        problems.append((i, column, "is empty; write 0 if there were none"))
+    for i in np.flatnonzero(named_nan):
+        problems.append((i, column, "is NaN; write the real count"))
+    for i in np.flatnonzero(nonnum):
+        problems.append((i, column, f"'{short(raw.iat[i])}' is not a number"))
+    for i in np.flatnonzero(infinite):
+        problems.append((i, column, f"'{short(raw.iat[i])}' is infinite"))
+    for i in np.flatnonzero(negative):
+        problems.append((i, column, f"{short(raw.iat[i])} is negative; counts cannot be below 0"))
+    for i in np.flatnonzero(fractional):
+        problems.append((i, column, f"{short(raw.iat[i])} is fractional; counts must be whole numbers"))
+    for i in np.flatnonzero(too_large):
+        problems.append((i, column, f"{short(raw.iat[i])} is too large to be a count (the limit is 2^53)"))
+    bad = empty | named_nan | nonnum | infinite | negative | fractional | too_large
+    clean = np.where(bad, 0, np.nan_to_num(values, nan=0, posinf=0, neginf=0)).astype(np.int64)
+    return clean, bad, problems
+
+
+def long_cells(cells: pd.Series, column: str, limit: int, noun: str) -> list[tuple[int, str, str]]:
+    """Problems for cells longer than ``limit`` characters."""
+    lengths = cells.astype(str).str.len().to_numpy()
+    return [(int(i), column, f"has {lengths[i]:,} characters; {noun} may have at most {limit}")
+            for i in np.flatnonzero(lengths > limit)]
+
+
+# ------------------------------------------------------------------ drafts
+
+def _canonical_columns(frame: pd.DataFrame, path, known: Sequence[str], aliases: dict[str, Sequence[str]]) -> pd.DataFrame:
+    """Lower-case known column names and map aliases; refuse two columns that mean the same."""
+    rename = {c: c.lower() for c in frame.columns if c.lower() in known or any(c.lower() in a for a in aliases.values())}
+    frame = frame.rename(columns=rename)
+    for target, names in aliases.items():
+        present = [c for c in names if c in frame.columns]
+        if len(present) > 1:
+            raise ContentlabError(
+                f"{path}: row 1 (header), columns {', '.join(repr(c) for c in present)} all give {target}; keep one."
+            )
+        if present and present[0] != target:
+            frame = frame.rename(columns={present[0]: target})
+    return frame
+
+
+def read_drafts(path: str | Path) -> pd.DataFrame:
+    """A drafts CSV as text cells: ``headline``; optional ``channel``, ``publish_at``, ``group``, ``arm``.
+
+    ``published_at``, ``at`` and ``time`` are read as ``publish_at`` (one of
+    them at most). Adds ``row``, each draft's line in the file.
+    """
+    frame = _canonical_columns(read_cells(path, "drafts file"), path, DRAFT_COLUMNS, {"publish_at": PUBLISH_ALIASES})
+    if "headline" not in frame.columns:
+        raise ContentlabError(
+            f"{path}: row 1 (header) has no 'headline' column; it has: {', '.join(frame.columns) or 'nothing'}. "
+            "A drafts file needs headline and may have channel, publish_at (or time), group and arm."
+        )
+    if frame.empty:
+        raise ContentlabError(f"{path}: has a header but no drafts.")
+    frame["row"] = frame.index.to_numpy()
+    frame = frame.reset_index(drop=True)
+    frame.attrs["source"] = str(path)
+    return frame
+
+
+def _draft_where(frame: pd.DataFrame, source: str | None, i: int, column: str) -> str:
+    if source and "row" in frame.columns:
+        return f"{source}: row {int(frame['row'].iat[i])}, column '{column}'"
+    if source:
+        return f"{source}: row {i + 2}, column '{column}'"
+    return f"draft {i + 1}, {column}"
+
+
+def prepare_drafts(
+    frame: pd.DataFrame,
+    timezone: str = "UTC",
+    *,
+    channel: str | None = None,
+    at: str | None = None,
+    known_channels: Sequence[str] | None = None,
+    source: str | None = None,
+) -> pd.DataFrame:
+    """Check drafts and add ``local_hour``, ``local_weekday`` and ``local_date`` from their publish time.
+
+    The publish time is ``publish_at`` (or ``published_at``, ``at``, ``time``),
+    else ``at``; it is read by :func:`contentlab.timeparse.parse_datetime` in
+    ``timezone``. ``channel`` fills drafts that name none. Raises
+    :class:`ContentlabError` naming the row and column for an empty or
+    over-long headline, a time that is not ISO 8601, an over-long channel, or a
+    channel not in ``known_channels`` (when given). Input columns are kept.
+    """
+    if not isinstance(frame, pd.DataFrame):
+        raise ContentlabError("drafts must be a DataFrame with a 'headline' column, or a list of headlines")
+    if "headline" not in frame:
+        raise ContentlabError("drafts need a 'headline' column")
+    from .features import clean_headline
+
+    source = source if source not in (None, "arguments") else frame.attrs.get("source")
+    out = frame.copy()
+    if len(out) == 0:
+        raise ContentlabError("no drafts to score: give at least one headline")
+    for i, text in enumerate(clean_headline(h) for h in out["headline"].tolist()):
+        if not text:
+            raise ContentlabError(f"{_draft_where(out, source, i, 'headline')}: the draft is empty; write a headline")
+        if len(text) > MAX_DRAFT_CHARS:
+            raise ContentlabError(
+                f"{_draft_where(out, source, i, 'headline')}: the draft has {len(text)} characters; a headline "
+                f"may have at most {MAX_DRAFT_CHARS}. Is this body text? Score the headline alone."
+            )
+    if channel is not None:
+        if len(channel.strip()) > MAX_NAME_CHARS:
+            raise ContentlabError(f"--channel: has {len(channel.strip())} characters; a channel may have at most {MAX_NAME_CHARS}")
+        if "channel" not in out:
+            out["channel"] = channel
+        else:
+            blank = out["channel"].isna() | (out["channel"].astype(str).str.strip() == "")
+            out.loc[blank, "channel"] = channel
+    if "channel" in out:
+        channels = [None if _blank(c) else str(c).strip() for c in out["channel"].tolist()]
+        out["channel"] = pd.Series(channels, index=out.index, dtype=object)
+        known = set(known_channels) if known_channels is not None else None
+        for i, c in enumerate(channels):
+            if c is not None and len(c) > MAX_NAME_CHARS:
+                raise ContentlabError(f"{_draft_where(out, source, i, 'channel')}: has {len(c):,} characters; "
+                                      f"a channel may have at most {MAX_NAME_CHARS}")
+            if known is not None and c is not None and c not in known:
+                raise ContentlabError(
+                    f"{_draft_where(out, source, i, 'channel')}: '{short(c)}' is not a channel in your history; "
+                    f"use one of: {', '.join(sorted(known))}"
+                )
+    column = next((c for c in PUBLISH_ALIASES if c in out), None)
+    own = out[column].tolist() if column else [None] * len(out)
+    if at is not None:
+        parse_datetime(at, timezone, "--at")  # a bad --at is refused even when every draft has its own time
+    hours = np.full(len(out), np.nan)
+    weekdays = np.full(len(out), np.nan)
+    dates: list[str | None] = [None] * len(out)
+    cache: dict[str, tuple] = {}
+    for i, v in enumerate(own):
+        key = (at or "") if _blank(v) else str(v)
+        if key not in cache:
+            where = _draft_where(out, source, i, column) if column and not _blank(v) else "--at"
+            cache[key] = parse_datetime(key or None, timezone, where)
+        stamp, has_time = cache[key]
+        if stamp is None:
+            continue
+        weekdays[i] = stamp.weekday()
+        dates[i] = stamp.date().isoformat()
+        if has_time:
+            hours[i] = stamp.hour + stamp.minute / 60.0
+    out["local_hour"] = hours
+    out["local_weekday"] = weekdays
+    out["local_date"] = dates
+    return out
+
+
+def _blank(v) -> bool:
+    return v is None or (isinstance(v, float) and math.isnan(v)) or v is pd.NA or (isinstance(v, str) and not v.strip())
+
+
+# ------------------------------------------------------------------ results
+
+def read_results(path: str | Path) -> pd.DataFrame:
+    """A results CSV as text cells: ``arm, impressions, clicks``; optional ``at``, ``event_id``.
+
+    Adds ``row`` (each result's line); ``attrs['digest']`` identifies the
+    whole content, so that replaying the identical file is recognised and a new
+    batch saved under the same name is not.
+    """
+    frame = _canonical_columns(read_cells(path, "results file"), path, RESULT_COLUMNS, {})
+    missing = [c for c in ("arm", "impressions", "clicks") if c not in frame.columns]
+    if missing:
+        raise ContentlabError(
+            f"{path}: row 1 (header), missing column(s): {', '.join(missing)}. A results file has arm, impressions, "
+            f"clicks and optionally at and event_id; it has: {', '.join(frame.columns)}."
+        )
+    if frame.empty:
+        raise ContentlabError(f"{path}: has a header but no results; nothing was recorded.")
+    frame["row"] = frame.index.to_numpy()
+    frame = frame.reset_index(drop=True)
+    return frame
+
+
+def check_results(
+    frame: pd.DataFrame,
+    arms: Sequence[str],
+    timezone: str,
+    *,
+    source: str | None = None,
+    options: bool = False,
+    experiment: str = "the experiment",
+) -> pd.DataFrame:
+    """Every result row checked once -> ``arm, impressions, clicks, at, event_id, row`` (``at`` stored UTC or '').
+
+    Each real problem is reported once, naming only columns the input has (or
+    the option, ``--clicks``, when ``options``): a count that is not a whole
+    number is not also compared with impressions. Raises
+    :class:`ContentlabError` with the first problems when any row is bad.
+    """
+    for column in ("arm", "impressions", "clicks"):
+        if column not in frame.columns:
+            raise ContentlabError(f"{source or 'results'}: needs a column '{column}'; nothing was recorded.")
+    frame = frame.reset_index(drop=True)
+    n = len(frame)
+    if n == 0:
+        raise ContentlabError(f"{source or 'results'}: has no rows; nothing was recorded.")
+    rows = frame["row"].to_numpy(dtype=np.int64) if "row" in frame.columns else np.arange(n) + (2 if source else 1)
+
+    def here(i: int, column: str) -> str:
+        if options:
+            return f"--{column.replace('_', '-')}"
+        prefix = f"{source}: " if source else ""
+        return f"{prefix}row {int(rows[i])}, column '{column}'"
+
+    def text(column: str) -> pd.Series:
+        if column not in frame.columns:
+            return pd.Series([""] * n, dtype=object)
+        col = frame[column]
+        return col.astype(object).where(col.notna(), "").astype(str).str.strip()
+
+    found: list[tuple[int, str, str]] = []
+    arm = text("arm")
+    known = list(arms)
+    for i in np.flatnonzero(~arm.isin(set(known)).to_numpy()):
+        shown = f"'{short(arm.iat[i])}'" if arm.iat[i] else "(empty)"
+        found.append((i, "arm", f"{shown} is not an arm of {experiment}; its arms are {', '.join(known)}"))
+    impressions, bad_n, p1 = count_cells(text("impressions"), "impressions")
+    clicks, bad_k, p2 = count_cells(text("clicks"), "clicks")
+    found += p1 + p2
+    for i in np.flatnonzero((clicks > impressions) & ~bad_n & ~bad_k):
+        found.append((i, "clicks", f"{clicks[i]:,} clicks is more than its {impressions[i]:,} impressions"))
+    at = np.full(n, "", dtype=object)
+    if "at" in frame.columns:
+        parsed = parse_datetimes(text("at"), timezone)
+        for i in np.flatnonzero(parsed.failed):
+            found.append((int(i), "at", parsed.errors[i]))
+        at = parsed.stored
+    event_id = text("event_id")
+    found += long_cells(event_id, "event_id", MAX_ID_CHARS, "an event id")
+    if found:
+        found.sort(key=lambda p: (rows[p[0]], p[1]))
+        raise ContentlabError(_one_line([f"{here(i, c)}: {r}" for i, c, r in found], "nothing was recorded"))
+    return pd.DataFrame({
+        "arm": arm.to_numpy(dtype=object), "impressions": impressions, "clicks": clicks, "at": at,
+        "event_id": event_id.to_numpy(dtype=object), "row": rows,
+    })
+
+
+def _one_line(problems: list[str], outcome: str, limit: int = 3) -> str:
+    """Problems on one line: the first few, then how many more."""
+    shown = "; ".join(problems[:limit])
+    more = f" (and {len(problems) - limit} more)" if len(problems) > limit else ""
+    return f"{shown}{more}; {outcome}."

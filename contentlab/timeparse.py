@@ -1,0 +1,253 @@
+"""The one date-time parser: every date or time the user gives goes through here.
+
+Post histories (``published_at``), drafts (``publish_at``), results (``at``),
+``score --at``, ``record --at`` and ``report --week/--from/--to`` all accept the
+same thing: ISO 8601, year first. A date alone (``2026-03-14``) or a date and
+time (``2026-03-14T09:30``, ``2026-03-14 09:30:15``), with or without a UTC
+offset in any of its ISO forms (``Z``, ``+01``, ``+0100``, ``+01:00``). A time
+without an offset is local time in the workspace's time zone.
+
+Everything else is refused with the same words wherever it comes from: a
+day/month form such as ``03/12/2026`` (which is 3 December in one country and
+12 March in another), a one-digit offset such as ``+1``, and a year outside
+:data:`YEAR_MIN` to :data:`YEAR_MAX`. The window keeps every stored date inside
+what pandas and NumPy compute with (nanosecond timestamps end in 2262), so no
+accepted value can break a later ``learn``, ``score`` or ``report``.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from datetime import date, timedelta
+
+import numpy as np
+
+from .errors import ContentlabError
+
+YEAR_MIN, YEAR_MAX = 1970, 2200
+EXAMPLES = "e.g. 2026-03-14, 2026-03-14T09:30 or 2026-03-14T09:30:00+01:00"
+STORED_FORMAT = "%Y-%m-%dT%H:%M:%S+00:00"
+
+_ISO = re.compile(
+    r"^(?P<year>\d{4})-(?P<month>\d{2})-(?P<day>\d{2})"
+    r"(?:[T ](?P<hour>\d{1,2}):(?P<minute>\d{2})(?::(?P<second>\d{2})(?:[.,](?P<frac>\d{1,9}))?)?"
+    r"(?P<offset>[zZ]|[+-]\d{2}(?::?\d{2})?)?)?$"
+)
+_DAY_MONTH = re.compile(r"^\d{1,2}[/.\-]\d{1,2}[/.\-]\d{2,4}(?:\b|[T ])")
+_SHORT_OFFSET = re.compile(r"\d{1,2}:\d{2}(?::\d{2}(?:[.,]\d+)?)?\s*(?P<offset>[+-]\d(?::?\d{2})?)$")
+_WEEK = re.compile(r"^(\d{4})-?W(\d{1,2})$", re.IGNORECASE)
+
+__all__ = [
+    "EXAMPLES",
+    "ParsedTimes",
+    "YEAR_MAX",
+    "YEAR_MIN",
+    "parse_date",
+    "parse_datetime",
+    "parse_datetimes",
+    "parse_iso_week",
+    "why_not_iso",
+]
+
+
+@dataclass
+class ParsedTimes:
+    """Result of :func:`parse_datetimes`, one entry per input value.
+
+    ``stored``: ``YYYY-MM-DD`` for a date alone, UTC ``YYYY-MM-DDTHH:MM:SS+00:00``
+    for a date-time, ``""`` where empty or refused. ``has_time``: a clock time was
+    given. ``empty``: the cell was blank. ``errors``: why a non-empty value was
+    refused (None where it was read).
+    """
+
+    stored: np.ndarray
+    has_time: np.ndarray
+    empty: np.ndarray
+    errors: np.ndarray
+
+    @property
+    def failed(self) -> np.ndarray:
+        return np.array([e is not None for e in self.errors], dtype=bool)
+
+
+def why_not_iso(text: str) -> str:
+    """The one sentence that says why ``text`` is not a date the tool reads (for a value that failed)."""
+    shown = text if len(text) <= 40 else text[:39] + "…"
+    if _DAY_MONTH.match(text):
+        return (f"'{shown}' is a day/month form, which reads differently from country to country; "
+                f"write the date year first as ISO 8601 ({EXAMPLES})")
+    m = _SHORT_OFFSET.search(text)
+    if m:
+        return (f"'{shown}' has the UTC offset '{m.group('offset')}'; write offsets with two-digit hours: "
+                "Z, +01, +0100 or +01:00")
+    m = _ISO.match(text)
+    if m:
+        year = int(m.group("year"))
+        if not YEAR_MIN <= year <= YEAR_MAX:
+            return f"'{shown}': year {year} is outside the years contentlab works with ({YEAR_MIN} to {YEAR_MAX})"
+        off = m.group("offset")
+        if off and len(off) > 3 and int(off[-2:]) >= 60:
+            return f"'{shown}': the offset '{off}' has more than 59 minutes"
+        return f"'{shown}' is not an ISO 8601 date or date-time: no such calendar date or clock time"
+    return f"'{shown}' is not an ISO 8601 date or date-time ({EXAMPLES})"
+
+
+def _norm_offset(off: str) -> str:
+    if off in ("Z", "z"):
+        return "+00:00"
+    if len(off) == 3:
+        return off + ":00"
+    if len(off) == 5:
+        return off[:3] + ":" + off[3:]
+    return off
+
+
+def parse_datetimes(values, timezone: str) -> ParsedTimes:
+    """Read many values at once (a column of an export); never raises for a bad value.
+
+    Date-times become UTC; those without an offset are read in ``timezone``
+    (an hour that happens twice at a daylight-saving change is read as its
+    first occurrence; one that does not exist moves forward). A date alone
+    stays a date: its hour is unknown.
+    """
+    import pandas as pd
+
+    series = values if isinstance(values, pd.Series) else pd.Series(list(values), dtype=object)
+    n = len(series)
+    text = series.astype(object).where(series.notna(), "").astype(str).str.strip().reset_index(drop=True)
+    stored = np.full(n, "", dtype=object)
+    has_time = np.zeros(n, dtype=bool)
+    empty = (text == "").to_numpy()
+    errors = np.full(n, None, dtype=object)
+    shaped = text.str.fullmatch(_ISO.pattern[1:-1]).to_numpy(dtype=bool) & ~empty
+    year = pd.to_numeric(text.str.slice(0, 4), errors="coerce").to_numpy()
+    ok = shaped & (year >= YEAR_MIN) & (year <= YEAR_MAX)
+    lengths = text.str.len().to_numpy()
+    date_only = ok & (lengths == 10)
+    if date_only.any():
+        idx = np.flatnonzero(date_only)
+        parsed = pd.to_datetime(text.iloc[idx], format="%Y-%m-%d", errors="coerce")
+        good = parsed.notna().to_numpy()
+        stored[idx[good]] = text.iloc[idx[good]].to_numpy(dtype=object)
+        ok[idx[~good]] = False
+    timed = np.flatnonzero(ok & ~date_only)
+    if len(timed):
+        sub = text.iloc[timed]
+        # The common forms go to pandas as they are; the rest (one-digit hours, '+01', 'z', a decimal
+        # comma) are first rewritten into the form pandas reads, from the parts the pattern found.
+        out, good = _to_utc(sub, timezone)
+        if (~good).any():
+            retry = sub[~good].str.extract(_ISO)
+            out2, good2 = _to_utc(_canonical(retry), timezone)
+            out[~good], good[~good] = out2, good2
+        stored[timed[good]] = out[good]
+        has_time[timed[good]] = True
+        ok[timed[~good]] = False
+    for i in np.flatnonzero(~ok & ~empty):
+        errors[i] = why_not_iso(text.iat[i])
+    return ParsedTimes(stored=stored, has_time=has_time, empty=empty, errors=errors)
+
+
+_HAS_OFFSET = r"(?:[zZ]|[+-]\d{2}(?::?\d{2})?)$"
+
+
+def _to_utc(text, timezone: str) -> tuple[np.ndarray, np.ndarray]:
+    """Date-time text -> (stored UTC text, parsed); with an offset as given, without one in ``timezone``."""
+    import pandas as pd
+
+    out = np.full(len(text), "", dtype=object)
+    good = np.zeros(len(text), dtype=bool)
+    with_off = text.str.contains(_HAS_OFFSET, regex=True).to_numpy(dtype=bool)
+    if with_off.any():
+        stamps = pd.to_datetime(text[with_off], format="ISO8601", utc=True, errors="coerce")
+        g = stamps.notna().to_numpy()
+        vals = np.full(with_off.sum(), "", dtype=object)
+        vals[g] = stamps[g].dt.strftime(STORED_FORMAT).to_numpy(dtype=object)
+        out[with_off], good[with_off] = vals, g
+    if (~with_off).any():
+        naive = pd.to_datetime(text[~with_off], format="ISO8601", errors="coerce")
+        g = naive.notna().to_numpy()
+        vals = np.full((~with_off).sum(), "", dtype=object)
+        if g.any():
+            vals[g] = _localise(naive[g], timezone).dt.strftime(STORED_FORMAT).to_numpy(dtype=object)
+        out[~with_off], good[~with_off] = vals, g
+    return out, good
+
+
+def _canonical(p):
+    """Parts found by :data:`_ISO` -> ``YYYY-MM-DDTHH:MM:SS[.f][+hh:mm]``, the form pandas reads."""
+    clock = (p["year"] + "-" + p["month"] + "-" + p["day"] + "T" + p["hour"].str.zfill(2) + ":" + p["minute"]
+             + ":" + p["second"].fillna("00"))
+    frac = p["frac"].fillna("")
+    clock = clock.where(frac == "", clock + "." + frac)
+    return clock + p["offset"].fillna("").map(_norm_offset)
+
+
+def _localise(naive, timezone: str):
+    """Naive local times -> UTC; the first of a repeated hour, forward over a skipped one."""
+    utc = naive.dt.tz_localize(timezone, ambiguous="NaT", nonexistent="shift_forward").dt.tz_convert("UTC")
+    missing = utc.isna().to_numpy()
+    if missing.any():
+        again = naive[missing].dt.tz_localize(timezone, ambiguous=True, nonexistent="shift_forward")
+        utc.loc[again.index] = again.dt.tz_convert("UTC")
+    return utc
+
+
+def parse_datetime(value, timezone: str, where: str = ""):
+    """One value -> (local timestamp in ``timezone`` or None when blank, has a clock time).
+
+    A date alone gives midnight of that day with ``has_time`` False. Raises
+    :class:`ContentlabError` with ``where`` (e.g. ``--at`` or ``drafts.csv: row 3,
+    column 'publish_at'``) and the shared reason for anything not ISO 8601.
+    """
+    import pandas as pd
+
+    if isinstance(value, pd.Timestamp):
+        value = value.isoformat()
+    elif value is not None and not isinstance(value, str):
+        if isinstance(value, float) and value != value:
+            value = None
+        else:
+            value = str(value)
+    result = parse_datetimes(pd.Series([value], dtype=object), timezone)
+    if result.empty[0]:
+        return None, False
+    if result.errors[0] is not None:
+        prefix = f"{where}: " if where else ""
+        raise ContentlabError(prefix + result.errors[0] + ".")
+    text = result.stored[0]
+    if result.has_time[0]:
+        return pd.Timestamp(text).tz_convert(timezone), True
+    return pd.Timestamp(text).tz_localize(timezone, nonexistent="shift_forward", ambiguous=True), False
+
+
+def parse_date(value, where: str) -> date:
+    """A calendar date (``--from``/``--to``): ISO 8601 ``YYYY-MM-DD`` within the year window."""
+    text = str(value).strip()
+    result = parse_datetimes([text], "UTC")
+    if result.errors[0] is not None or result.empty[0]:
+        reason = result.errors[0] or f"'' is not an ISO 8601 date ({EXAMPLES})"
+        raise ContentlabError(f"{where}: {reason}.")
+    if result.has_time[0]:
+        raise ContentlabError(f"{where}: '{text}' is a date-time; give a date alone, e.g. 2026-11-23.")
+    return date.fromisoformat(result.stored[0])
+
+
+def parse_iso_week(value, where: str = "--week") -> tuple[date, date]:
+    """Monday and Sunday of an ISO week written like ``2026-W48`` (or ``2026W48``)."""
+    text = str(value).strip()
+    m = _WEEK.match(text)
+    if not m:
+        raise ContentlabError(f"{where} {text!r} is not an ISO week. Write it like 2026-W48.")
+    year, week = int(m.group(1)), int(m.group(2))
+    if not YEAR_MIN <= year <= YEAR_MAX:
+        raise ContentlabError(
+            f"{where} {text!r}: year {year} is outside the years contentlab works with ({YEAR_MIN} to {YEAR_MAX})."
+        )
+    try:
+        monday = date.fromisocalendar(year, week, 1)
+    except ValueError:
+        weeks = date(year, 12, 28).isocalendar()[1]
+        raise ContentlabError(f"{where} {text!r}: {year} has no ISO week {week} (weeks run 1 to {weeks}).") from None
+    return monday, monday + timedelta(days=6)

@@ -1,0 +1,348 @@
+"""Every bad input: exit code 2, a clear message that names it, no traceback, the workspace unchanged.
+
+One table, kind -> input -> the words the message must hold. Each case runs the
+command as a user types it (``contentlab.cli.main``) against a copy of one
+small learned workspace, and compares a full SQL dump of the workspace before
+and after. Faults of the machine (read-only folder, full disk, a workspace
+locked by another writer) follow the table, with the fault simulated.
+"""
+
+from __future__ import annotations
+
+import shutil
+import sqlite3
+import threading
+from pathlib import Path
+
+import pytest
+
+from contentlab.cli import main
+
+from conftest import CORPUS, workspace_digest
+
+HEAD = "post_id,published_at,headline,impressions,clicks,channel\n"
+GOOD = "p1,2026-03-02T09:15:00+00:00,Seven ways to use the library,1000,25,blog\n"
+
+
+@pytest.fixture(scope="module")
+def base(tmp_path_factory) -> Path:
+    """The demo corpus imported and learned (no bootstrap), with one experiment that has one result."""
+    path = tmp_path_factory.mktemp("bad-inputs") / "ws"
+    assert main(["import", str(CORPUS / "posts.csv"), "--timezone", "Europe/London", "--quiet",
+                 "--workspace", str(path)]) == 0
+    assert main(["learn", "--bootstrap", "0", "--quiet", "--workspace", str(path)]) == 0
+    assert main(["experiment", "new", "laser", "Inside the makerspace laser cutter",
+                 "5 things to know about the makerspace laser cutter", "--channel", "newsletter", "--flat-prior",
+                 "--seed", "3", "--workspace", str(path)]) == 0
+    assert main(["record", "laser", "--arm", "A", "--impressions", "300", "--clicks", "5", "--event-id", "b1",
+                 "--workspace", str(path)]) == 0
+    return path
+
+
+@pytest.fixture
+def ws(base, tmp_path) -> Path:
+    target = tmp_path / "ws"
+    shutil.copytree(base, target)
+    return target
+
+
+def run(capsys, argv: list[str]) -> tuple[int, str, str]:
+    capsys.readouterr()
+    code = main(argv)
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def big_id() -> str:
+    return "x" * 100_000
+
+
+# kind, files to write ({name: bytes}), argv ({ws} = the workspace copy, {tmp} = the test folder), fragment
+CASES = [
+    ("duplicated header column", {"f.csv": (HEAD.strip() + ",clicks\n" + GOOD.strip() + ",25\n").encode()},
+     ["import", "{tmp}/f.csv"], "column 'clicks' appears twice (columns 5 and 7)"),
+    ("row with more cells than the header", {"f.csv": (HEAD + GOOD + GOOD.replace("p1", "p2").strip() + ",extra\n").encode()},
+     ["import", "{tmp}/f.csv"], "row 3 has 7 cells but the header has 6"),
+    ("NUL byte inside the file", {"f.csv": (HEAD + GOOD + "p2,2026-03-02,Hel\x00lo,10,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "row 3 holds a NUL byte"),
+    ("100,000-character post_id", {"f.csv": (HEAD + big_id() + ",2026-03-02,Hello,10,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "column 'post_id': has 100,000 characters; an id may have at most 200"),
+    ("over-long channel name", {"f.csv": (HEAD + "p9,2026-03-02,Hello,10,1," + "c" * 500 + "\n").encode()},
+     ["import", "{tmp}/f.csv"], "column 'channel': has 500 characters; a channel may have at most 100"),
+    ("row number after a quoted multi-line headline",
+     {"f.csv": (HEAD + 'p1,2026-03-02,"Two\nlines\nhere",10,1,blog\np2,2026-03-02,Hello,10,50,blog\n').encode()},
+     ["import", "{tmp}/f.csv"], "row 5, column 'clicks': 50 clicks is more than its 10 impressions"),
+    ("unbalanced quote", {"f.csv": (HEAD + GOOD + 'p2,2026-03-02,"Unclosed,10,1,blog\n' + GOOD.replace("p1", "p3")).encode()},
+     ["import", "{tmp}/f.csv"], "row 3: a quote (\") opens a cell that never closes"),
+    ("UTF-16 file", {"f.csv": (HEAD + GOOD).encode("utf-16")}, ["import", "{tmp}/f.csv"], "is encoded as UTF-16"),
+    ("count above 2^53", {"f.csv": (HEAD + "p1,2026-03-02,Hello,9007199254740993,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "9007199254740993 is too large to be a count"),
+    ("year 2300 at import", {"f.csv": (HEAD + "p1,2300-03-02,Hello,10,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "row 2, column 'published_at': '2300-03-02': year 2300 is outside the years contentlab works with (1970 to 2200)"),
+    ("year 1600 at import", {"f.csv": (HEAD + "p1,1600-03-02T10:00Z,Hello,10,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "year 1600 is outside the years contentlab works with"),
+    ("day/month date at import", {"f.csv": (HEAD + "p1,03/12/2026,Hello,10,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "'03/12/2026' is a day/month form"),
+    ("one-digit offset at import", {"f.csv": (HEAD + "p1,2026-03-02T10:00+1,Hello,10,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "has the UTC offset '+1'; write offsets with two-digit hours: Z, +01, +0100 or +01:00"),
+    ("day/month date in score --at", {}, ["score", "A new reading room", "--channel", "newsletter", "--at", "03/12/2026 09:00"],
+     "--at: '03/12/2026 09:00' is a day/month form"),
+    ("one-digit offset in score --at", {}, ["score", "A new reading room", "--channel", "newsletter", "--at", "2026-12-03T09:00+1"],
+     "--at: '2026-12-03T09:00+1' has the UTC offset '+1'"),
+    ("day/month date in record --at", {}, ["record", "laser", "--arm", "A", "--impressions", "10", "--clicks", "1", "--at", "03/12/2026"],
+     "--at: '03/12/2026' is a day/month form"),
+    ("one-digit offset in a results file", {"r.csv": b"arm,impressions,clicks,at\nA,10,1,2026-12-03T09:00-5\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'at': '2026-12-03T09:00-5' has the UTC offset '-5'"),
+    ("day/month date in a drafts file", {"d.csv": b"headline,time\nFirst draft here,03/12/2026 09:00\nSecond draft here,03/12/2026 09:00\n"},
+     ["experiment", "new", "winter", "--drafts", "{tmp}/d.csv"], "row 2, column 'publish_at': '03/12/2026 09:00' is a day/month form"),
+    ("day/month date in report --from", {}, ["report", "--from", "03/12/2026", "--to", "2026-12-09", "--out", "{tmp}/out"],
+     "--from: '03/12/2026' is a day/month form"),
+    ("year 2300 in report --week", {}, ["report", "--week", "2300-W02", "--out", "{tmp}/out"], "year 2300 is outside"),
+    ("column map that is a folder", {"map.toml/keep": b""}, ["import", str(CORPUS / "posts.csv"), "--map", "{tmp}/map.toml"],
+     "is a folder; give the column map's .toml file"),
+    ("column map that is not UTF-8", {"map.toml": b'[columns]\npost_id = "Ident\xe9"\n'},
+     ["import", str(CORPUS / "posts.csv"), "--map", "{tmp}/map.toml"], "the column map is not UTF-8 text"),
+    ("negative experiment seed", {}, ["experiment", "new", "seeded", "Draft one here", "Draft two here", "--seed", "-5"],
+     "--seed must be a whole number from 0 to 2147483647; got -5"),
+    ("impressions to split beyond any count", {}, ["experiment", "next", "laser", "--impressions", "99999999999999999999"],
+     "--impressions must be at most 2^53"),
+    ("report on a week in the future", {}, ["report", "--week", "2199-W02", "--out", "{tmp}/out"],
+     "nothing to report: week 2199-W02 has not begun yet"),
+    ("record: non-numeric clicks", {"r.csv": b"arm,impressions,clicks\nA,10,x\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'clicks': 'x' is not a number; nothing was recorded."),
+    ("record: unknown arm", {"r.csv": b"arm,impressions,clicks\nQ,10,1\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'arm': 'Q' is not an arm of laser"),
+    ("record: event id reused with other values", {},
+     ["record", "laser", "--arm", "A", "--impressions", "301", "--clicks", "5", "--event-id", "b1"],
+     "--event-id: event id 'b1' is already recorded with different values (A: 300 impressions, 5 clicks)"),
+    ("demo over a user's workspace", {}, ["demo", "--workspace", "{ws}", "--out", "{tmp}/out"],
+     "holds a contentlab workspace that the demo did not create"),
+]
+
+
+@pytest.mark.parametrize("kind, files, argv, fragment", CASES, ids=[c[0] for c in CASES])
+def test_bad_input_exit_2_one_clear_line_workspace_unchanged(ws, tmp_path, capsys, kind, files, argv, fragment):
+    for name, data in files.items():
+        target = tmp_path / name
+        target.parent.mkdir(parents=True, exist_ok=True)
+        target.write_bytes(data)
+    args = [a.replace("{tmp}", str(tmp_path)).replace("{ws}", str(ws)) for a in argv]
+    if "--workspace" not in args:
+        args += ["--workspace", str(ws)]
+    before = workspace_digest(ws)
+    code, _out, err = run(capsys, args)
+    assert code == 2, err
+    assert "Traceback" not in err
+    assert err.startswith(f"contentlab {args[0]}"), err
+    assert fragment in " ".join(err.split()), err
+    assert workspace_digest(ws) == before
+
+
+def test_record_problems_name_real_columns_once(ws, tmp_path, capsys):
+    """A non-numeric cell is one problem: no false 'more than impressions', no column 'row' the file lacks."""
+    path = tmp_path / "r.csv"
+    path.write_text("arm,impressions,clicks\nA,abc,5\nB,10,1\n", encoding="utf-8")
+    code, _, err = run(capsys, ["record", "laser", "--input", str(path), "--workspace", str(ws)])
+    assert code == 2
+    assert "'abc' is not a number" in err
+    assert "more than" not in err and "column 'row'" not in err
+    assert err.count("row 2") == 1
+
+
+@pytest.mark.parametrize("argv, fragment", [
+    (["learn"], "no posts in the workspace"),
+    (["report"], "nothing to report: no posts in the workspace"),
+])
+def test_empty_workspace_says_import_first(tmp_path, capsys, argv, fragment):
+    empty = tmp_path / "empty"
+    assert main(["settings", "--timezone", "UTC", "--workspace", str(empty)]) == 0
+    before = workspace_digest(empty)
+    code, _, err = run(capsys, argv + ["--workspace", str(empty)])
+    assert code == 2 and fragment in err and "import first" in err
+    assert workspace_digest(empty) == before
+
+
+@pytest.mark.parametrize("argv", [
+    ["settings", "--timezone", "Nope/Zone"],
+    ["experiment", "new", "../x", "Draft one here", "Draft two here"],
+    ["import", "missing.csv"],
+])
+def test_refused_command_leaves_no_new_workspace(tmp_path, capsys, argv):
+    target = tmp_path / "new-folder"
+    code, _, err = run(capsys, argv + ["--workspace", str(target)])
+    assert code == 2 and "Traceback" not in err
+    assert not target.exists()
+
+
+def test_workspace_path_that_is_a_file(tmp_path, capsys):
+    path = tmp_path / "a-file"
+    path.write_text("not a folder")
+    code, _, err = run(capsys, ["settings", "--workspace", str(path)])
+    assert code == 2 and "is a file, not a workspace folder" in err
+    assert path.read_text() == "not a folder"
+
+
+@pytest.mark.parametrize("damage", ["garbage", "truncated"])
+@pytest.mark.parametrize("argv", [["settings"], ["drivers"], ["experiment", "list"], ["import", str(CORPUS / "posts.csv")]])
+def test_corrupt_or_truncated_database_is_not_a_usable_workspace(base, tmp_path, capsys, damage, argv):
+    folder = tmp_path / "broken"
+    folder.mkdir()
+    db = folder / "workspace.sqlite"
+    if damage == "garbage":
+        db.write_bytes(b"this is not a database at all\n" * 100)
+    else:
+        src = sqlite3.connect(base / "workspace.sqlite")
+        copy = sqlite3.connect(tmp_path / "whole.sqlite")
+        src.backup(copy)
+        src.close()
+        copy.close()
+        db.write_bytes((tmp_path / "whole.sqlite").read_bytes()[:5000])
+    before = db.read_bytes()
+    code, _, err = run(capsys, argv + ["--workspace", str(folder)])
+    assert code == 2 and "Traceback" not in err
+    assert "is not a usable workspace" in err
+    assert db.read_bytes() == before
+
+
+def test_experiment_list_with_mixed_channels(ws, capsys):
+    """Drafts on two channels give an experiment without one channel: the list shows '-' (was a TypeError)."""
+    d = ws.parent / "d.csv"
+    d.write_text("headline,channel\nFirst draft here,newsletter\nSecond draft here,blog\n", encoding="utf-8")
+    assert main(["experiment", "new", "mixed", "--drafts", str(d), "--flat-prior", "--workspace", str(ws)]) == 0
+    code, out, err = run(capsys, ["experiment", "list", "--workspace", str(ws)])
+    assert code == 0, err
+    row = next(line for line in out.splitlines() if line.strip().startswith("mixed"))
+    assert " - " in row
+
+
+# ------------------------------------------------------------------ faults of the machine
+
+def test_read_only_workspace_reads_but_refuses_writes(ws, capsys, monkeypatch):
+    """Simulated: the tests may run as root, who can write anywhere, so the permission check is patched."""
+    import contentlab.workspace as workspace
+
+    monkeypatch.setattr(workspace, "_writable", lambda path, db: False)
+    before = workspace_digest(ws)
+    for argv in (["settings"], ["experiment", "status", "laser"], ["drivers"], ["experiment", "list"]):
+        code, out, err = run(capsys, argv + ["--workspace", str(ws)])
+        assert code == 0, err
+    for argv in (["settings", "--timezone", "UTC"], ["import", str(CORPUS / "posts.csv"), "--quiet"],
+                 ["record", "laser", "--arm", "A", "--impressions", "5", "--clicks", "1"],
+                 ["learn", "--bootstrap", "0", "--quiet"]):
+        code, _, err = run(capsys, argv + ["--workspace", str(ws)])
+        assert code == 2 and "is read-only" in err and "Traceback" not in err, err
+    monkeypatch.undo()
+    assert workspace_digest(ws) == before
+
+
+def test_disk_full_says_so_and_writes_nothing(ws, tmp_path, capsys, monkeypatch):
+    """Simulated with the error SQLite raises (SQLITE_FULL: 'database or disk is full') in the middle of an import."""
+    from contentlab.workspace import Workspace
+
+    real = Workspace.upsert_posts
+
+    def fill_up(self, posts, *args, **kwargs):
+        real(self, posts.iloc[:1], *args, **kwargs)  # something was written inside the transaction...
+        raise sqlite3.OperationalError("database or disk is full")
+
+    monkeypatch.setattr(Workspace, "upsert_posts", fill_up)
+    path = tmp_path / "f.csv"
+    path.write_text(HEAD + GOOD.replace("p1", "new1") + GOOD.replace("p1", "new2"), encoding="utf-8")
+    before = workspace_digest(ws)
+    code, _, err = run(capsys, ["import", str(path), "--workspace", str(ws)])
+    assert code == 2 and "Traceback" not in err
+    assert "is full; nothing was written" in err
+    assert workspace_digest(ws) == before  # ...and rolled back
+
+
+def test_locked_workspace_waits_visibly_then_gives_a_clear_error(ws, capsys, monkeypatch):
+    monkeypatch.setenv("CONTENTLAB_LOCK_WAIT", "1.5")
+    holder = sqlite3.connect(ws / "workspace.sqlite")
+    holder.execute("BEGIN IMMEDIATE")
+    try:
+        code, _, err = run(capsys, ["settings", "--timezone", "UTC", "--workspace", str(ws)])
+    finally:
+        holder.rollback()
+        holder.close()
+    assert code == 2 and "Traceback" not in err
+    assert "waiting: another contentlab command is writing to" in err
+    assert "is busy" in err and "Nothing was written" in err
+
+
+def test_locked_workspace_proceeds_once_the_other_writer_finishes(ws, capsys, monkeypatch):
+    monkeypatch.setenv("CONTENTLAB_LOCK_WAIT", "20")
+    holder = sqlite3.connect(ws / "workspace.sqlite", check_same_thread=False)
+    holder.execute("BEGIN IMMEDIATE")
+    timer = threading.Timer(1.5, holder.rollback)
+    timer.start()
+    try:
+        code, out, err = run(capsys, ["settings", "--timezone", "Europe/Paris", "--workspace", str(ws)])
+    finally:
+        timer.join()
+        holder.close()
+    assert code == 0, err
+    assert "waiting:" in err and "Europe/Paris" in out
+
+
+def test_unexpected_error_is_one_line_unless_debugging(ws, capsys, monkeypatch):
+    """A real bug still says it is one, and CONTENTLAB_DEBUG=1 shows where."""
+    import contentlab.cli.importing as importing
+
+    def broken(args):
+        raise TypeError("boom")
+
+    monkeypatch.setattr(importing, "cmd_settings", broken)
+    code, _, err = run(capsys, ["settings", "--workspace", str(ws)])
+    assert code == 1 and "Traceback" not in err
+    assert "unexpected error (TypeError: boom)" in err and "CONTENTLAB_DEBUG=1" in err
+    monkeypatch.setenv("CONTENTLAB_DEBUG", "1")
+    with pytest.raises(TypeError):
+        main(["settings", "--workspace", str(ws)])
+
+
+# ------------------------------------------------------------------ built for the kind, not the case
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+CELL = st.one_of(
+    st.text(max_size=12),
+    st.sampled_from(["", " ", '"', '""', "\x00", "\r", "\n", ";", ",", "\t", "2026-03-14", "03/12/2026",
+                     "2026-03-14T09:30+1", "2300-01-01", "1e400", "-0", "9007199254740993", "NaN", "ｐ1"]),
+)
+
+
+@settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(rows=st.lists(st.lists(CELL, min_size=0, max_size=8), min_size=0, max_size=5),
+       encoding=st.sampled_from(["utf-8", "cp1252", "utf-16", "latin-1"]))
+def test_any_export_is_read_or_refused_with_a_message(tmp_path_factory, rows, encoding):
+    """Whatever bytes a file holds, reading it gives posts or a ContentlabError: never another exception."""
+    from contentlab.errors import ContentlabError
+    from contentlab.ingest import read_history
+
+    lines = [HEAD.strip()] + [",".join(r) for r in rows]
+    path = tmp_path_factory.mktemp("fuzz") / "f.csv"
+    path.write_bytes("\n".join(lines).encode(encoding, errors="replace"))
+    try:
+        history = read_history(path, timezone="Europe/London")
+    except ContentlabError as exc:
+        assert str(exc)
+        return
+    assert history.posts["published_at"].map(lambda t: 1970 <= int(t[:4]) <= 2200).all()
+    assert (history.posts["impressions"] <= 2**53).all()
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.text(max_size=40))
+def test_any_time_text_is_read_or_refused_with_a_reason(text):
+    from contentlab.timeparse import parse_datetimes
+
+    parsed = parse_datetimes([text], "America/New_York")
+    if parsed.empty[0]:
+        return
+    if parsed.errors[0] is None:
+        import pandas as pd
+
+        assert pd.Timestamp(parsed.stored[0]).year in range(1969, 2202)  # a local time near a year's edge may cross it in UTC
+    else:
+        assert text.strip()[:20] in parsed.errors[0] or len(text.strip()) > 40
