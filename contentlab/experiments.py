@@ -909,7 +909,7 @@ def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool, sourc
     if digest is None and source_file is not None:
         # A frame said to come from a file but not read by read_results: its cells stand for its content.
         cols = [c for c in frame.columns if c != "row"]
-        digest = _digest(frame[cols].astype(str).to_csv(index=False))
+        digest = _digest(json.dumps([cols] + frame[cols].astype(str).values.tolist()))
     kind = "total" if cumulative else "increment"
     rows = clean["row"].tolist()
     for i in np.flatnonzero(ids == ""):
