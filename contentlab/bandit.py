@@ -34,6 +34,7 @@ from scipy import optimize, special, stats
 from contentlab.errors import ContentlabError
 
 __all__ = [
+    "BUDGET_TEMPER_END",
     "ArmSpread",
     "Decision",
     "ThompsonBandit",
@@ -72,9 +73,11 @@ FIRST_SPLIT_MAX = 0.6
 # Pseudo-impressions behind the history's typical rate when a test's own
 # level is estimated (see within_test_prior): about one batch of results.
 DEFAULT_LEVEL_WEIGHT = 200.0
-# Temper at the start of a budget when one is given (budget_temper); chosen by
-# benchmarks/replay_archive.py --tune on the earlier experiments.
-DEFAULT_TEMPER_START = 1.0
+# With a budget, the temper rises from DEFAULT_TEMPER_START to BUDGET_TEMPER_END
+# as it is spent (budget_temper); chosen by benchmarks/replay_archive.py --tune
+# on the earlier experiments.
+DEFAULT_TEMPER_START = 2.0
+BUDGET_TEMPER_END = 6.0
 # Stopping rule defaults (ThompsonBandit.decision and the replay's stop figures).
 PROB_STOP = 0.95
 LOSS_STOP_SHARE = 0.01
@@ -510,8 +513,9 @@ def replay_regret_rows(
     from past tests (:func:`within_test_prior`, with the model's ``offsets``
     per arm if given) replaces ``a0, b0``. ``temper_start``: the temper rises
     from it to ``temper`` as the budget is spent (:func:`budget_temper`).
-    ``first_cap``: the first split gives no arm more than this share (with
-    ``cap_lift``, except up to the arm's own prior probability of being best).
+    ``first_cap``: the first split (before results) is plain Thompson
+    sampling, each arm getting its prior probability of being best, and no
+    arm more than this share (with ``cap_lift``, except up to that probability).
     ``stops``: filled with ``impressions`` used when the stopping rule first
     fires (the budget if never) and ``named``, the arm it names (else the
     leader at the end).
@@ -555,6 +559,7 @@ def replay_regret_rows(
             cap = np.where(fresh[:, None], first_cap, 1.0)
             if cap_lift:
                 cap = np.maximum(cap, prob)
+            t = np.where(fresh[:, None], 1.0, t)
         share = allocation_shares(prob, policy=policy, temper=t, min_share=min_share, cap=cap)
         alloc = split_impressions(share, n, rng)
         if trace is not None:
@@ -668,11 +673,12 @@ class ThompsonBandit:
         Total impressions the test will get. When given, the temper rises
         from ``temper_start`` to ``temper`` as it is spent: more exploring
         while much budget remains, committing as it runs out.
-    temper_start : float > 0, default 1.0
+    temper_start : float > 0, default 2.0
         Temper at the start of a budget (used only with ``budget``).
     first_cap : float in (0, 1] or None, default None
-        Before any results, no arm gets more than this share (see
-        :func:`first_split_cap`); None: no cap (the former behaviour).
+        Before any results, allocate by plain Thompson sampling (temper 1) and
+        give no arm more than this share (see :func:`first_split_cap`); None:
+        no cap and the usual temper (the former behaviour).
     cap_lift : bool, default False
         Let an arm exceed ``first_cap`` up to its prior probability of being
         best (for a prior validated on past tests).
@@ -910,14 +916,18 @@ class ThompsonBandit:
         rng = self._rng()
         prob, _ = posterior_summary(a[None], b[None], int(self.n_draws), rng)
         cap = None
+        temper = self.current_temper()
         if self.first_cap is not None and self.impressions_.sum() == 0:
+            # Before results: plain Thompson sampling (each arm's prior
+            # probability of being best), capped unless the prior was validated.
+            temper = 1.0
             cap = np.full(prob.shape, float(self.first_cap))
             if self.cap_lift:
                 cap = np.maximum(cap, prob)
         share = allocation_shares(
             prob,
             policy=self.policy,
-            temper=self.current_temper(),
+            temper=temper,
             min_share=float(self.min_share),
             top_two_beta=float(self.top_two_beta),
             cap=cap,

@@ -45,10 +45,12 @@ import numpy as np
 import pandas as pd
 
 from .bandit import (
+    BUDGET_TEMPER_END,
     DEFAULT_LEVEL_WEIGHT,
     DEFAULT_MIN_SHARE,
     DEFAULT_N_DRAWS,
     DEFAULT_TEMPER,
+    DEFAULT_TEMPER_START,
     Decision,
     ThompsonBandit,
     fit_arm_spread,
@@ -170,6 +172,7 @@ class Allocation:
     arms: pd.DataFrame  # arm, headline, impressions, share
     single: str | None  # the arm to post next when impressions == 1
     notes: tuple[str, ...]
+    why: tuple[str, ...] = ()  # why the split is what it is, in plain words
 
 
 @dataclass(frozen=True)
@@ -216,6 +219,7 @@ class ExperimentStatus:
     warnings: tuple[str, ...]
     prior: dict
     settings: dict = field(repr=False, default_factory=dict)
+    why: tuple[str, ...] = ()  # the prior and the allocation rule, in plain words
 
     def to_dict(self) -> dict:
         arms = self.arms.astype(object).where(self.arms.notna(), None).to_dict(orient="records")
@@ -234,6 +238,7 @@ class ExperimentStatus:
             "decision": jsonable(asdict(self.decision)),
             "warnings": list(self.warnings),
             "prior": jsonable(self.prior),
+            "why": list(self.why),
         }
 
 
@@ -1087,9 +1092,74 @@ def next_allocation(
     if n == 1:
         chosen = next(a for a, c in counts.items() if c == 1)
         notes.append(SINGLE_CAUTION)
+    why = _prior_words(exp["settings"]) + _split_words(bandit, exp["settings"])
+    return Allocation(name, use, int(n), frame, chosen, tuple(notes), tuple(why))
+
+
+def _prior_words(settings: Mapping) -> list[str]:
+    """What the experiment's prior says, in plain words."""
+    prior = settings.get("prior") or {}
+    learned = prior.get("learned")
+    if not learned:
+        reason = prior.get("reason")
+        return [f"Prior: {reason}."] if reason else []
+    words = LearnedPrior(**{k: v for k, v in learned.items() if k in {f.name for f in fields(LearnedPrior)}})
+    out = [f"Prior: each draft is judged against its test's level, which follows this test's own results; "
+           f"{words.spread_words()}."]
+    if learned.get("offsets") is not None:
+        out.append(f"The model's predicted gaps between the drafts are part of the prior: {words.model_reason}.")
+    else:
+        out.append(f"Model: {words.model_reason}.")
+    return out
+
+
+def _split_words(bandit: ThompsonBandit, settings: Mapping) -> list[str]:
+    """Why the next split is what it is: the cap before results, the temper, the budget, the floors."""
+    prob = bandit.prob_best()
+    out = []
+    budget = []
+    if bandit.budget is not None:
+        spent = float(bandit.impressions_.sum())
+        budget.append(
+            f"Budget: {spent:,.0f} of {int(bandit.budget):,} planned impressions spent ({spent / bandit.budget:.0%}); "
+            f"once results are in, the power on each draft's probability of being best rises from "
+            f"{float(bandit.temper_start):g} to {float(bandit.temper):g} as the budget is spent, exploring while "
+            "much remains and committing as it runs out."
+        )
     if bandit.impressions_.sum() == 0:
-        notes.append("No results yet: the split follows the priors alone.")
-    return Allocation(name, use, int(n), frame, chosen, tuple(notes))
+        cap = settings.get("first_cap")
+        if cap is None:
+            out.append("No results yet: the split follows the priors alone.")
+        elif bandit.logit_sd is not None and bandit.prior_offsets is None:
+            out.append(
+                f"No results yet: the prior holds every draft at the same level, so each draft is equally likely "
+                f"to be best and the split is even. No draft would get more than {cap:.0%} of the first impressions "
+                "before results (twice an equal share, at most 60%)."
+            )
+        else:
+            lift = " unless the prior, validated on your past tests, gives it a higher probability of being best" \
+                if bandit.cap_lift else ""
+            out.append(
+                "No results yet: each draft's share is its probability of being best under the prior alone (plain "
+                f"Thompson sampling, not sharpened), and no draft gets more than {cap:.0%} of the first impressions "
+                f"(twice an equal share, at most 60%){lift}, so every draft keeps learning."
+            )
+        return out + budget
+    t = bandit.current_temper()
+    if bandit.policy == "thompson":
+        best = max(prob, key=prob.get)
+        text = (
+            f"Each draft's share follows its probability of being best ({best} leads with {prob[best]:.0%}), raised "
+            f"to the power {t:.2g} and rescaled, which moves traffic to the likely winner sooner than plain Thompson "
+            "sampling."
+        )
+    else:
+        text = "Top-two sampling: about half the traffic goes to the leader and half to its closest challengers."
+    out.append(text)
+    out += budget
+    if bandit.min_share > 0:
+        out.append(f"Every draft still in the running gets at least {float(bandit.min_share):.0%}.")
+    return out
 
 
 # --------------------------------------------------------------------------
@@ -1504,7 +1574,7 @@ def experiment_status(
             "probabilities above rest on fewer effective impressions than the totals show."
         )
     strength = float(arms["prior_strength"].max()) if len(arms) else 0.0
-    if strength > 0 and n.size and n.min() < strength:
+    if strength > 0 and n.size and n.min() < strength and not (settings.get("prior") or {}).get("learned"):
         warnings.append(
             f"The model's prior (worth {strength:,.0f} impressions per arm) still weighs more than some arms' results."
         )
@@ -1530,6 +1600,7 @@ def experiment_status(
         warnings=tuple(warnings),
         prior=settings.get("prior", {}),
         settings=settings,
+        why=tuple(_prior_words(settings) + _split_words(bandit, settings)),
     )
 
 
@@ -1668,6 +1739,8 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
         "cap_lift": (settings.get("prior") or {}).get("source") in ("model", "past tests + model"),
         "budget": settings.get("budget"),
     }
+    if settings.get("budget") is not None:
+        params.update(temper=BUDGET_TEMPER_END, temper_start=DEFAULT_TEMPER_START)
     learned = (settings.get("prior") or {}).get("learned")
     if learned:
         off = learned.get("offsets")
