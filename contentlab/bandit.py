@@ -13,6 +13,14 @@ adds one pseudo-click and one pseudo-miss to every arm alike, which shifts an
 arm with 30 clicks by about 3% and keeps ``a, b >= 1`` so the posterior never
 piles up at 0 or 1. :func:`fit_prior_strength` estimates ``s`` from history.
 
+The prior learned from past tests (issue 12) uses the same Beta form, but
+around the test's own level: :func:`fit_arm_spread` fits, by restricted
+maximum likelihood over past tests, how far arms' log-odds sit from their
+test's level (``logit_sd``), and :func:`within_test_prior` turns it into
+``m`` and ``s`` at the current level (:func:`estimate_level`), so an early gap
+is weighed against the gaps arms of one test usually show, and a drift of
+rates between tests is followed rather than fought.
+
 The module is pure computation (no workspace, no I/O). The vectorised core,
 :func:`posterior_summary`, :func:`allocation_shares` and
 :func:`split_impressions`, works on arrays of shape ``(n_experiments, n_arms)``;
