@@ -32,7 +32,8 @@ Policies: equal split; flat Thompson sampling (Beta(1, 1), temper 1, no floor);
 the former default (flat, temper 4, floor 1%); the new default (the prior
 learned from past tests, temper 4, no floor, first split capped); the new
 default told each test's budget (the temper rises from 2 to 6 as it is spent);
-and the new default with ``--policy top-two``. For the former default, the new
+the new default with ``--policy top-two``; and, when the model's gaps are kept,
+the new default without them. For the former default, the new
 default and top-two it also reports, among test experiments whose best arm is
 clearly best (|z| >= 1.96 against the second, two-proportion z-test on the
 archive's counts), how often the arm named when the stopping rule first fires
@@ -178,7 +179,7 @@ def policies(spread: dict | None, use_model: bool) -> dict[str, dict]:
     flat = {"spread": None, "use_offsets": False}
     new = {"spread": spread, "use_offsets": use_model, "min_share": LEARNED_MIN_SHARE, "temper": DEFAULT_TEMPER,
            "first_cap": True, "cap_lift": use_model}
-    return {
+    rows = {
         "equal split": {"policy": "equal"},
         "flat Thompson (temper 1, no floor)": {**flat, "temper": 1.0, "min_share": 0.0},
         f"former default (flat, temper {DEFAULT_TEMPER:g}, floor {DEFAULT_MIN_SHARE:g})":
@@ -188,6 +189,9 @@ def policies(spread: dict | None, use_model: bool) -> dict[str, dict]:
             {**new, "temper": BUDGET_TEMPER_END, "temper_start": DEFAULT_TEMPER_START},
         "new default, --policy top-two": {**new, "policy": "top_two", "track": True},
     }
+    if use_model:  # what a workspace without a model (or whose model's gaps fail the replay) gets
+        rows["new default without the model's gaps"] = {**new, "use_offsets": False, "cap_lift": False}
+    return rows
 
 
 _GROUPS: dict = {}

@@ -866,7 +866,8 @@ def create_experiment(
             notes += model_notes
             predicted = np.clip(predicted, 1e-6, 1 - 1e-6)
             if prior_strength is None:
-                notes.append(_no_tests_words(ws)[0].upper() + _no_tests_words(ws)[1:] + ".")
+                words = _no_tests_words(ws)
+                notes.append(words[0].upper() + words[1:] + ".")
             choice = _cached_choice(ws, model_id) or choose_prior_strength(history)
             choice = PriorChoice(**{**choice.to_dict(), "notes": tuple(choice.notes), "model_id": model_id})
             if prior_strength is not None:
