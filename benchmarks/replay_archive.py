@@ -41,6 +41,15 @@ archive's counts), how often the arm named when the stopping rule first fires
 rate), or at the end if it never fires, is the truly best one; and the
 impressions used until the rule fires (the budget where it never does).
 
+Measured (2026-12-02, seeds 0..4, 2 shared cores, about 5-11 minutes; 1,068 test experiments):
+equal 1.000; flat Thompson 0.433 +- 0.007; former default 0.336 +- 0.007; new default
+0.340 +- 0.011 (paired minus former +0.004 +- 0.004 SE: no gain); with budget 0.333 +- 0.012;
+top-two 0.645 +- 0.002; new default without the model's gaps 0.327 +- 0.007. The model's gaps
+passed the replay check on the train part (+0.017 +- 0.006) but did not carry over to the later
+tests (rates drifted: pooled 2.04% train, 1.03% test). Right winner among 105 clearly decided tests:
+former 0.970, new 0.926, top-two 0.985; impressions to the stopping rule 0.956, 0.966, 0.791 of the
+budget. The issue's goal of 0.30 is not reached. Rerun before quoting.
+
 ``--tune`` instead replays the train part's latest tests (no peeking at the
 test part) for the new default's temper and the budget schedule.
 
