@@ -13,6 +13,14 @@ adds one pseudo-click and one pseudo-miss to every arm alike, which shifts an
 arm with 30 clicks by about 3% and keeps ``a, b >= 1`` so the posterior never
 piles up at 0 or 1. :func:`fit_prior_strength` estimates ``s`` from history.
 
+The prior learned from past tests (issue 12) uses the same Beta form, but
+around the test's own level: :func:`fit_arm_spread` fits, by restricted
+maximum likelihood over past tests, how far arms' log-odds sit from their
+test's level (``logit_sd``), and :func:`within_test_prior` turns it into
+``m`` and ``s`` at the current level (:func:`estimate_level`), so an early gap
+is weighed against the gaps arms of one test usually show, and a drift of
+rates between tests is followed rather than fought.
+
 The module is pure computation (no workspace, no I/O). The vectorised core,
 :func:`posterior_summary`, :func:`allocation_shares` and
 :func:`split_impressions`, works on arrays of shape ``(n_experiments, n_arms)``;
@@ -24,7 +32,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 from numbers import Integral, Real
 
 import numpy as np
@@ -34,16 +42,25 @@ from scipy import optimize, special, stats
 from contentlab.errors import ContentlabError
 
 __all__ = [
+    "BUDGET_TEMPER_END",
+    "ArmSpread",
     "Decision",
     "ThompsonBandit",
     "allocation_shares",
+    "budget_temper",
+    "empirical_logits",
+    "estimate_level",
+    "first_split_cap",
+    "fit_arm_spread",
     "fit_prior_strength",
     "posterior_summary",
     "prior_params",
     "prob_beta_greater",
     "replay_regret_rows",
     "split_impressions",
+    "stop_rule",
     "wilson_interval",
+    "within_test_prior",
 ]
 
 POLICIES = ("thompson", "top_two")
@@ -58,6 +75,20 @@ DEFAULT_MIN_SHARE = 0.01
 DEFAULT_N_DRAWS = 10_000
 # Upper bound on the draws held in memory at once (elements of the draw array).
 _CHUNK_ELEMENTS = 2_000_000
+# The first split (before any results) gives no arm more than this share
+# (and at most twice an equal share); see first_split_cap.
+FIRST_SPLIT_MAX = 0.6
+# Pseudo-impressions behind the history's typical rate when a test's own
+# level is estimated (see within_test_prior): about one batch of results.
+DEFAULT_LEVEL_WEIGHT = 200.0
+# With a budget, the temper rises from DEFAULT_TEMPER_START to BUDGET_TEMPER_END
+# as it is spent (budget_temper); chosen by benchmarks/replay_archive.py --tune
+# on the earlier experiments.
+DEFAULT_TEMPER_START = 2.0
+BUDGET_TEMPER_END = 6.0
+# Stopping rule defaults (ThompsonBandit.decision and the replay's stop figures).
+PROB_STOP = 0.95
+LOSS_STOP_SHARE = 0.01
 
 
 # --------------------------------------------------------------------------
@@ -119,6 +150,7 @@ def allocation_shares(
     temper: float = DEFAULT_TEMPER,
     min_share: float = DEFAULT_MIN_SHARE,
     top_two_beta: float = 0.5,
+    cap: ArrayLike | None = None,
 ) -> np.ndarray:
     """Turn probabilities of being best, shape ``(n_rows, n_arms)``, into traffic shares.
 
@@ -134,13 +166,18 @@ def allocation_shares(
     sampling would. The floors are filled by water-filling: only arms below
     their floor are lifted, the others are scaled down together. The floors
     never sum to more than 1, because each is at most ``prob_best``.
+
+    ``temper`` may be one number or one per row (shape ``(n_rows, 1)``).
+    ``cap`` (one number, or an array broadcastable to the shares, each at
+    least ``1 / n_arms``): no arm gets more; the excess goes to the other arms
+    in proportion to their shares (see :func:`first_split_cap`).
     """
     p = np.asarray(prob_best, dtype=float)
     n_arms = p.shape[-1]
     if n_arms == 1:
         return np.ones_like(p)
     if policy == "thompson":
-        w = p**temper
+        w = p ** np.asarray(temper, dtype=float)
     else:
         # A tiny smoothing keeps the challenger defined when one arm won every
         # draw (then the challenger is uniform over the others).
@@ -162,7 +199,43 @@ def allocation_shares(
         total = w_free.sum(axis=-1, keepdims=True)
         scaled = np.divide(w_free * free_mass, total, out=np.zeros_like(w_free), where=total > 0)
         share = np.where(fixed, floor, scaled)
+    share = share / share.sum(axis=-1, keepdims=True)
+    if cap is not None:
+        share = _apply_cap(share, np.broadcast_to(np.asarray(cap, dtype=float), share.shape))
+    return share
+
+
+def _apply_cap(share: np.ndarray, cap: np.ndarray) -> np.ndarray:
+    """Lower shares above their cap to it and hand the excess to the others, in proportion to their shares."""
+    cap = np.maximum(cap, 1.0 / share.shape[-1])
+    fixed = np.zeros(share.shape, dtype=bool)
+    for _ in range(share.shape[-1]):
+        over = (share > cap + 1e-12) & ~fixed
+        if not over.any():
+            break
+        fixed |= over
+        free_mass = 1.0 - np.where(fixed, cap, 0.0).sum(axis=-1, keepdims=True)
+        free = np.where(fixed, 0.0, share)
+        total = free.sum(axis=-1, keepdims=True)
+        # Arms with no share at all split the excess evenly.
+        even = np.where(fixed, 0.0, 1.0)
+        scaled = np.where(total > 0, free * free_mass / np.where(total > 0, total, 1.0),
+                          even * free_mass / np.maximum(even.sum(axis=-1, keepdims=True), 1.0))
+        share = np.where(fixed, cap, scaled)
     return share / share.sum(axis=-1, keepdims=True)
+
+
+def first_split_cap(n_arms: int) -> float:
+    """Largest share one arm may get before any results: twice an equal share, and never more than 60%.
+
+    Before results the only evidence is the prior, and tempered sampling can
+    turn a modest prior lead into nearly all the traffic (the demo once sent
+    97% of its first impressions to one draft). Twice the equal share keeps
+    every arm learning; 60% keeps a two- or three-arm test from opening
+    lopsided. Both numbers are a rule of thumb of ours (common practice is an
+    equal first split).
+    """
+    return float(min(FIRST_SPLIT_MAX, 2.0 / max(int(n_arms), 1)))
 
 
 def split_impressions(shares: np.ndarray, n: np.ndarray, rng: np.random.Generator) -> np.ndarray:
@@ -191,11 +264,234 @@ def split_impressions(shares: np.ndarray, n: np.ndarray, rng: np.random.Generato
     return out
 
 
+# --------------------------------------------------------------------------
+# The prior learned from past tests: each arm's rate around its test's level.
+# --------------------------------------------------------------------------
+
+
+def empirical_logits(impressions: ArrayLike, clicks: ArrayLike) -> tuple[np.ndarray, np.ndarray]:
+    """Log-odds of each arm's observed rate and its binomial variance, with half a click and miss added.
+
+    The +0.5 keeps arms with no clicks finite (Haldane's correction, the
+    usual one for empirical log-odds; Cox, 1970, "The Analysis of Binary Data").
+    """
+    n = np.asarray(impressions, dtype=float)
+    k = np.asarray(clicks, dtype=float)
+    ell = np.log((k + 0.5) / (n - k + 0.5))
+    v = 1.0 / (k + 0.5) + 1.0 / (n - k + 0.5)
+    return ell, v
+
+
+@dataclass(frozen=True)
+class ArmSpread:
+    """How far arms of one test sit from each other, learned from past tests.
+
+    ``logit_sd``: standard deviation of an arm's log-odds around its test's
+    level (after the model's offsets times ``slope``, when given); ``level``:
+    the typical click-through rate of the latest past tests (the start value
+    of a new test's level).
+    """
+
+    logit_sd: float
+    level: float
+    slope: float
+    n_tests: int
+    n_arms: int
+    loglik: float
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+def _grouped(codes: np.ndarray, values: np.ndarray, n_groups: int) -> np.ndarray:
+    return np.bincount(codes, weights=values, minlength=n_groups)
+
+
+def _within_reml(codes, ell, v, delta, n_groups, tau2: float) -> tuple[float, float]:
+    """Restricted log-likelihood of the arms' log-odds with each test's level integrated out, and the slope.
+
+    Model: ``ell_jk = level_j + slope delta_jk + u_jk + e_jk`` with
+    ``u ~ N(0, tau2)`` and ``e ~ N(0, v_jk)``; a flat prior on every test's
+    level gives, per test, ``-1/2 [sum log(v + tau2) + log sum w + sum w (r - r_w)^2]``
+    with ``w = 1 / (v + tau2)`` and ``r`` the residual around its weighted
+    mean (Harville, 1977, "Maximum likelihood approaches to variance component
+    estimation"). ``slope`` is its weighted within-test regression estimate.
+    """
+    w = 1.0 / (v + tau2)
+    sw = _grouped(codes, w, n_groups)
+
+    def centred(x):
+        return x - (_grouped(codes, w * x, n_groups) / sw)[codes]
+
+    ell_c = centred(ell)
+    slope = 0.0
+    if delta is not None:
+        d_c = centred(delta)
+        sxx = float((w * d_c * d_c).sum())
+        slope = float((w * d_c * ell_c).sum() / sxx) if sxx > 0 else 0.0
+        ell_c = ell_c - slope * d_c
+    ll = -0.5 * (np.log(v + tau2).sum() + np.log(sw).sum() + float((w * ell_c * ell_c).sum()))
+    return float(ll), slope
+
+
+def fit_arm_spread(
+    experiment_ids: ArrayLike,
+    impressions: ArrayLike,
+    clicks: ArrayLike,
+    *,
+    offsets: ArrayLike | None = None,
+    recent_tests: int = 50,
+    bounds: tuple[float, float] = (1e-3, 3.0),
+) -> ArmSpread:
+    """Fit, by restricted maximum likelihood on past tests, how far arms typically sit from their test's level.
+
+    Rows are arms of past tests (``experiment_ids`` in time order of the
+    tests; tests with one arm say nothing about spread and are left out).
+    Each test's level is integrated out, so a test's overall rate, and any
+    drift of rates between tests, does not count as spread: only the gaps
+    between arms of one test do. With ``offsets`` (each arm's predicted
+    log-odds minus its test's mean), ``slope`` says how much of the model's
+    predicted gaps is real (0: none, 1: all) and ``logit_sd`` is the spread
+    left. ``level`` is the pooled rate of the ``recent_tests`` latest tests.
+    """
+    ids = group_codes(experiment_ids)
+    n = np.asarray(impressions, dtype=float).ravel()
+    k = np.asarray(clicks, dtype=float).ravel()
+    if not (len(ids) == len(n) == len(k)) or len(n) == 0:
+        raise ContentlabError("fit_arm_spread needs experiment ids, impressions and clicks of the same, non-zero length.")
+    if np.any(n <= 0) or np.any(k < 0) or np.any(k > n) or not np.all(np.isfinite(n + k)):
+        raise ContentlabError("fit_arm_spread needs impressions > 0 and 0 <= clicks <= impressions for every arm.")
+    delta = None if offsets is None else np.asarray(offsets, dtype=float).ravel()
+    if delta is not None and (delta.shape != n.shape or not np.all(np.isfinite(delta))):
+        raise ContentlabError("fit_arm_spread needs one finite offset per arm.")
+    size = np.bincount(ids)[ids]
+    keep = size >= 2
+    if not keep.any():
+        raise ContentlabError("fit_arm_spread needs at least one past test with two or more arms.")
+    _, codes = np.unique(ids[keep], return_inverse=True)
+    n, k = n[keep], k[keep]
+    delta = None if delta is None else delta[keep]
+    n_groups = int(codes.max()) + 1
+    ell, v = empirical_logits(n, k)
+
+    def nll(log_tau: float) -> float:
+        return -_within_reml(codes, ell, v, delta, n_groups, math.exp(2 * log_tau))[0]
+
+    lo, hi = math.log(bounds[0]), math.log(bounds[1])
+    grid = np.linspace(lo, hi, 33)
+    values = np.array([nll(g) for g in grid])
+    j = int(np.argmin(values))
+    if j == 0:
+        log_tau = lo
+    else:
+        res = optimize.minimize_scalar(
+            nll, bounds=(grid[j - 1], grid[min(j + 1, len(grid) - 1)]), method="bounded", options={"xatol": 1e-5}
+        )
+        log_tau = float(res.x)
+    tau = math.exp(log_tau)
+    ll, slope = _within_reml(codes, ell, v, delta, n_groups, tau * tau)
+    last = codes >= n_groups - recent_tests  # codes follow the order of first appearance
+    level = float(k[last].sum() / n[last].sum())
+    return ArmSpread(float(tau), float(np.clip(level, 1e-6, 1 - 1e-6)), float(slope), n_groups, int(len(n)), float(ll))
+
+
+def group_codes(values: ArrayLike) -> np.ndarray:
+    """Integer codes of ``values`` in order of first appearance (0, 1, ...)."""
+    arr = np.asarray(values, dtype=object).ravel()
+    _, first, inverse = np.unique(arr.astype(str), return_index=True, return_inverse=True)
+    order = np.argsort(np.argsort(first))
+    return order[inverse]
+
+
+def within_test_prior(
+    clicks: np.ndarray,
+    impressions: np.ndarray,
+    *,
+    logit_sd: float,
+    level: float,
+    level_weight: float = DEFAULT_LEVEL_WEIGHT,
+    offsets: np.ndarray | None = None,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Beta prior ``(a0, b0)`` per arm that holds arms near their test's level, shape ``(n_rows, n_arms)``.
+
+    The level is the test's own pooled rate so far, started at ``level`` worth
+    ``level_weight`` impressions, so it follows a drift of rates between tests.
+    Each arm's prior mean is the level, moved by ``offsets`` on the log-odds
+    scale; its strength ``s`` matches a spread of ``logit_sd`` log-odds at
+    that level (a Beta's variance ``m (1 - m) / (s + 1)`` set equal to
+    ``(m (1 - m) logit_sd)^2``, the delta method), added to the flat base as
+    in :func:`prior_params`. An early gap between arms is then weighed against
+    how far arms of one test usually differ.
+    """
+    k = np.asarray(clicks, dtype=float)
+    n = np.asarray(impressions, dtype=float)
+    mu = estimate_level(k, n, logit_sd=logit_sd, level=level, level_weight=level_weight, offsets=offsets)
+    strength = np.maximum(1.0 / (mu * (1 - mu) * logit_sd**2) - 1.0, 0.0)
+    if offsets is None:
+        m = np.broadcast_to(mu, k.shape)
+    else:
+        m = special.expit(special.logit(mu) + np.asarray(offsets, dtype=float))
+    return 1.0 + m * strength, 1.0 + (1.0 - m) * strength
+
+
+def estimate_level(
+    clicks: np.ndarray,
+    impressions: np.ndarray,
+    *,
+    logit_sd: float,
+    level: float,
+    level_weight: float = DEFAULT_LEVEL_WEIGHT,
+    offsets: np.ndarray | None = None,
+) -> np.ndarray:
+    """A test's level (rate of its typical arm) from its arms so far, shape ``(n_rows, 1)``.
+
+    The random-effects mean of the arms' log-odds (less their offsets):
+    weights ``1 / (v_k + logit_sd^2)``, so an arm that got most of the
+    traffic counts more, but never more than an arm's own spread allows; a
+    pooled rate would let the leader set the level alone and pull every
+    other arm toward it. The history's ``level``, worth ``level_weight``
+    impressions, is one more observation of the level (the only one before
+    results arrive).
+    """
+    ell, v = empirical_logits(impressions, clicks)
+    if offsets is not None:
+        ell = ell - np.asarray(offsets, dtype=float)
+    seen = np.asarray(impressions) > 0
+    w = np.where(seen, 1.0 / (v + logit_sd**2), 0.0)
+    level = float(np.clip(level, 1e-6, 1 - 1e-6))
+    w0 = level_weight * level * (1 - level)
+    eta = (w0 * special.logit(level) + (w * ell).sum(axis=-1, keepdims=True)) / (w0 + w.sum(axis=-1, keepdims=True))
+    return special.expit(eta)
+
+
+def budget_temper(spent: ArrayLike, budget: ArrayLike, temper: float, temper_start: float) -> np.ndarray:
+    """Temper that rises from ``temper_start`` to ``temper`` as the budget is spent: explore early, commit late.
+
+    With much budget left, what is learnt now pays off on many later
+    impressions, so sampling stays close to plain Thompson sampling; near the
+    end there is little left to learn for, and traffic goes to the leader.
+    """
+    frac = np.clip(np.asarray(spent, dtype=float) / np.maximum(np.asarray(budget, dtype=float), 1.0), 0.0, 1.0)
+    return temper_start + (temper - temper_start) * frac
+
+
+def stop_rule(prob: np.ndarray, loss: np.ndarray, mean: np.ndarray,
+              prob_threshold: float = PROB_STOP, loss_share: float = LOSS_STOP_SHARE) -> tuple[np.ndarray, np.ndarray]:
+    """Rows whose leader would be named now (probability of being best, or expected loss small), and the leader.
+
+    The rule of :meth:`ThompsonBandit.decision`, on arrays of shape (rows, arms).
+    """
+    lead = prob.argmax(axis=1)
+    rows = np.arange(len(prob))
+    stop = (prob[rows, lead] >= prob_threshold) | (loss[rows, lead] < loss_share * mean[rows, lead])
+    return stop, lead
+
+
 def replay_regret_rows(
     p: np.ndarray,
     budget: np.ndarray,
-    a0: np.ndarray,
-    b0: np.ndarray,
+    a0: np.ndarray | None,
+    b0: np.ndarray | None,
     rng: np.random.Generator,
     *,
     batch: int | np.ndarray,
@@ -204,6 +500,12 @@ def replay_regret_rows(
     temper: float = DEFAULT_TEMPER,
     min_share: float = DEFAULT_MIN_SHARE,
     trace: list | None = None,
+    spread: Mapping | None = None,
+    offsets: np.ndarray | None = None,
+    temper_start: float | None = None,
+    first_cap: float | None = None,
+    cap_lift: bool = False,
+    stops: dict | None = None,
 ) -> np.ndarray:
     """Replay past tests whose arm rates ``p`` are taken as the truth; clicks lost per test.
 
@@ -212,8 +514,19 @@ def replay_regret_rows(
     ``batch`` (one number, or one per test), allocated as the bandit would from
     Beta(a0 + clicks, b0 + misses) and answered by binomial clicks. Regret is
     the expected clicks lost against always showing the best arm. Shared by the
-    archive replay benchmark and by the prior-strength check on a user's own
-    tests, so both measure the same policy.
+    archive replay benchmark and by the prior checks on a user's own tests,
+    so both measure the same policy as :class:`ThompsonBandit`.
+
+    ``spread`` (``logit_sd``, ``level``, ``level_weight``): the prior learned
+    from past tests (:func:`within_test_prior`, with the model's ``offsets``
+    per arm if given) replaces ``a0, b0``. ``temper_start``: the temper rises
+    from it to ``temper`` as the budget is spent (:func:`budget_temper`).
+    ``first_cap``: the first split (before results) is plain Thompson
+    sampling, each arm getting its prior probability of being best, and no
+    arm more than this share (with ``cap_lift``, except up to that probability).
+    ``stops``: filled with ``impressions`` used when the stopping rule first
+    fires (the budget if never) and ``named``, the arm it names (else the
+    leader at the end).
     """
     gap = p.max(axis=1, keepdims=True) - p
     batch = np.broadcast_to(np.asarray(batch, dtype=np.int64), budget.shape)
@@ -221,15 +534,41 @@ def replay_regret_rows(
     impressions = np.zeros_like(p)
     clicks = np.zeros_like(p)
     regret = np.zeros(len(p))
+    track = stops is not None
+    if track:
+        stop_at = np.full(len(p), -1, dtype=np.int64)
+        named = np.full(len(p), -1, dtype=np.int64)
     while True:
         act = np.flatnonzero(remaining > 0)
         if act.size == 0:
-            return regret
+            break
         n = np.minimum(batch[act], remaining[act])
-        a = a0[act] + clicks[act]
-        b = b0[act] + (impressions[act] - clicks[act])
-        prob, _ = posterior_summary(a, b, n_draws, rng)
-        share = allocation_shares(prob, policy=policy, temper=temper, min_share=min_share)
+        if spread is not None:
+            off = None if offsets is None else offsets[act]
+            pa0, pb0 = within_test_prior(clicks[act], impressions[act], logit_sd=spread["logit_sd"],
+                                         level=spread["level"], level_weight=spread["level_weight"], offsets=off)
+        else:
+            pa0, pb0 = a0[act], b0[act]
+        a = pa0 + clicks[act]
+        b = pb0 + (impressions[act] - clicks[act])
+        prob, loss = posterior_summary(a, b, n_draws, rng, with_loss=track)
+        if track:
+            spent = impressions[act].sum(axis=1)
+            fire, lead = stop_rule(prob, loss, a / (a + b))
+            fire &= (spent > 0) & (stop_at[act] < 0)
+            stop_at[act[fire]] = spent[fire]
+            named[act[fire]] = lead[fire]
+        t = temper
+        if temper_start is not None:
+            t = budget_temper(impressions[act].sum(axis=1), budget[act], temper, temper_start)[:, None]
+        cap = None
+        if first_cap is not None:
+            fresh = impressions[act].sum(axis=1) == 0
+            cap = np.where(fresh[:, None], first_cap, 1.0)
+            if cap_lift:
+                cap = np.maximum(cap, prob)
+            t = np.where(fresh[:, None], 1.0, t)
+        share = allocation_shares(prob, policy=policy, temper=t, min_share=min_share, cap=cap)
         alloc = split_impressions(share, n, rng)
         if trace is not None:
             trace.append(alloc[0].tolist())
@@ -237,6 +576,24 @@ def replay_regret_rows(
         clicks[act] += rng.binomial(alloc, p[act])
         remaining[act] -= n
         regret[act] += (alloc * gap[act]).sum(axis=1)
+    if track:
+        never = stop_at < 0
+        if never.any():
+            if spread is not None:
+                pa0, pb0 = within_test_prior(clicks[never], impressions[never], logit_sd=spread["logit_sd"],
+                                             level=spread["level"], level_weight=spread["level_weight"],
+                                             offsets=None if offsets is None else offsets[never])
+            else:
+                pa0, pb0 = a0[never], b0[never]
+            a = pa0 + clicks[never]
+            b = pb0 + impressions[never] - clicks[never]
+            prob, _ = posterior_summary(a, b, n_draws, rng)
+            named[never] = prob.argmax(axis=1)
+            stop_at[never] = budget[never]
+        stops["impressions"] = stop_at
+        stops["named"] = named
+        stops["fired"] = ~never
+    return regret
 
 
 # --------------------------------------------------------------------------
@@ -307,6 +664,32 @@ class ThompsonBandit:
     n_draws : int >= 100, default 10,000
         Posterior draws per estimate; the binomial standard error of a share
         is at most ``0.5 / sqrt(n_draws)``, i.e. 0.5 percentage points.
+    logit_sd : float > 0 or None, default None
+        The prior learned from past tests (:func:`fit_arm_spread`): each
+        arm's log-odds sit about ``logit_sd`` from its test's level. When
+        given, it replaces ``prior_means``/``prior_strength`` with
+        :func:`within_test_prior`, so early gaps are judged against how far
+        arms of one test usually differ.
+    level : float in (0, 1) or None, default None
+        Typical rate of past tests, the level before results (needed with ``logit_sd``).
+    level_weight : float >= 0, default 200
+        Impressions the history's ``level`` is worth against the test's own results.
+    prior_offsets : sequence of float or None, default None
+        Expected log-odds gap of each arm from the test's level (the model's
+        predicted differences times their validated slope), with ``logit_sd``.
+    budget : int > 0 or None, default None
+        Total impressions the test will get. When given, the temper rises
+        from ``temper_start`` to ``temper`` as it is spent: more exploring
+        while much budget remains, committing as it runs out.
+    temper_start : float > 0, default 2.0
+        Temper at the start of a budget (used only with ``budget``).
+    first_cap : float in (0, 1] or None, default None
+        Before any results, allocate by plain Thompson sampling (temper 1) and
+        give no arm more than this share (see :func:`first_split_cap`); None:
+        no cap and the usual temper (the former behaviour).
+    cap_lift : bool, default False
+        Let an arm exceed ``first_cap`` up to its prior probability of being
+        best (for a prior validated on past tests).
     random_state : int, numpy Generator or None, default None
         An int makes every answer a function of the seed and the number of
         updates so far (asking twice gives the same split); a Generator is
@@ -334,6 +717,14 @@ class ThompsonBandit:
         temper: float = DEFAULT_TEMPER,
         discount: float = 1.0,
         n_draws: int = DEFAULT_N_DRAWS,
+        logit_sd: float | None = None,
+        level: float | None = None,
+        level_weight: float = DEFAULT_LEVEL_WEIGHT,
+        prior_offsets: Sequence[float] | None = None,
+        budget: int | None = None,
+        temper_start: float = DEFAULT_TEMPER_START,
+        first_cap: float | None = None,
+        cap_lift: bool = False,
         random_state: int | np.random.Generator | None = None,
     ) -> None:
         self.arms = arms
@@ -345,6 +736,14 @@ class ThompsonBandit:
         self.temper = temper
         self.discount = discount
         self.n_draws = n_draws
+        self.logit_sd = logit_sd
+        self.level = level
+        self.level_weight = level_weight
+        self.prior_offsets = prior_offsets
+        self.budget = budget
+        self.temper_start = temper_start
+        self.first_cap = first_cap
+        self.cap_lift = cap_lift
         self.random_state = random_state
 
     # ---- validation -----------------------------------------------------
@@ -373,6 +772,23 @@ class ThompsonBandit:
         _check_real("min_share", self.min_share, low=0.0, high=1.0)
         if isinstance(self.n_draws, bool) or not isinstance(self.n_draws, Integral) or self.n_draws < 100:
             raise ContentlabError(f"n_draws must be an integer of at least 100; got {self.n_draws!r}.")
+        if self.logit_sd is not None:
+            _check_real("logit_sd", self.logit_sd, low=0.0, open_low=True)
+            _check_real("level", self.level, low=0.0, high=1.0, open_low=True, open_high=True)
+            _check_real("level_weight", self.level_weight, low=0.0)
+            if self.prior_offsets is not None:
+                off = np.asarray(self.prior_offsets, dtype=float)
+                if off.shape != (len(arms),) or not np.all(np.isfinite(off)):
+                    raise ContentlabError(f"prior_offsets needs one finite log-odds gap per arm; got {self.prior_offsets!r}.")
+        elif self.prior_offsets is not None:
+            raise ContentlabError("prior_offsets needs logit_sd (the spread of arms around their test's level).")
+        if self.budget is not None:
+            b = self.budget
+            if isinstance(b, bool) or not isinstance(b, Integral) or b < 1:
+                raise ContentlabError(f"budget must be a whole number of impressions, at least 1; got {b!r}.")
+        _check_real("temper_start", self.temper_start, low=0.0, open_low=True)
+        if self.first_cap is not None:
+            _check_real("first_cap", self.first_cap, low=0.0, high=1.0, open_low=True)
         rs = self.random_state
         if not (rs is None or isinstance(rs, np.random.Generator)):
             if isinstance(rs, bool) or not isinstance(rs, Integral) or rs < 0:
@@ -459,10 +875,29 @@ class ThompsonBandit:
 
     # ---- posterior ------------------------------------------------------
 
+    def prior_ab(self) -> tuple[np.ndarray, np.ndarray]:
+        """The Beta prior ``(a0, b0)`` per arm now (the within-test prior moves with the test's level)."""
+        arms = self._state()
+        if self.logit_sd is not None:
+            off = None if self.prior_offsets is None else np.asarray(self.prior_offsets, dtype=float)[None]
+            a0, b0 = within_test_prior(
+                self.clicks_[None], self.impressions_[None], logit_sd=float(self.logit_sd), level=float(self.level),
+                level_weight=float(self.level_weight), offsets=off,
+            )
+            return a0[0], b0[0]
+        return prior_params(self._prior_means_array(arms), float(self.prior_strength), len(arms))
+
     def _ab(self) -> tuple[list[str], np.ndarray, np.ndarray]:
         arms = self._state()
-        a0, b0 = prior_params(self._prior_means_array(arms), float(self.prior_strength), len(arms))
+        a0, b0 = self.prior_ab()
         return arms, a0 + self.clicks_, b0 + (self.impressions_ - self.clicks_)
+
+    def current_temper(self) -> float:
+        """The temper of the next allocation: fixed, or rising with the budget spent."""
+        self._state()
+        if self.budget is None or self.policy != "thompson":
+            return float(self.temper)
+        return float(budget_temper(self.impressions_.sum(), self.budget, float(self.temper), float(self.temper_start)))
 
     def posterior_params(self) -> dict[str, tuple[float, float]]:
         """Beta posterior ``(a, b)`` per arm; the posterior mean is ``a / (a + b)``."""
@@ -488,12 +923,22 @@ class ThompsonBandit:
         arms, a, b = self._ab()
         rng = self._rng()
         prob, _ = posterior_summary(a[None], b[None], int(self.n_draws), rng)
+        cap = None
+        temper = self.current_temper()
+        if self.first_cap is not None and self.impressions_.sum() == 0:
+            # Before results: plain Thompson sampling (each arm's prior
+            # probability of being best), capped unless the prior was validated.
+            temper = 1.0
+            cap = np.full(prob.shape, float(self.first_cap))
+            if self.cap_lift:
+                cap = np.maximum(cap, prob)
         share = allocation_shares(
             prob,
             policy=self.policy,
-            temper=float(self.temper),
+            temper=temper,
             min_share=float(self.min_share),
             top_two_beta=float(self.top_two_beta),
+            cap=cap,
         )
         return arms, share, rng
 
@@ -521,7 +966,7 @@ class ThompsonBandit:
 
     # ---- stopping -------------------------------------------------------
 
-    def decision(self, prob_threshold: float = 0.95, loss_threshold: float | None = None) -> Decision:
+    def decision(self, prob_threshold: float = PROB_STOP, loss_threshold: float | None = None) -> Decision:
         """Recommend stopping when the leader is very likely best or choosing it now costs little.
 
         Stops when the leader's probability of being best is at least
@@ -536,7 +981,7 @@ class ThompsonBandit:
         arms, a, b, prob, loss = self._summary(True)
         lead = int(np.argmax(prob))
         mean = a / (a + b)
-        thr = float(0.01 * mean[lead]) if loss_threshold is None else float(loss_threshold)
+        thr = float(LOSS_STOP_SHARE * mean[lead]) if loss_threshold is None else float(loss_threshold)
         pb, el = float(prob[lead]), float(loss[lead])
         name = arms[lead]
         warnings = []
@@ -604,6 +1049,14 @@ class ThompsonBandit:
                 "temper": float(self.temper),
                 "discount": float(self.discount),
                 "n_draws": int(self.n_draws),
+                "logit_sd": None if self.logit_sd is None else float(self.logit_sd),
+                "level": None if self.level is None else float(self.level),
+                "level_weight": float(self.level_weight),
+                "prior_offsets": None if self.prior_offsets is None else [float(x) for x in self.prior_offsets],
+                "budget": None if self.budget is None else int(self.budget),
+                "temper_start": float(self.temper_start),
+                "first_cap": None if self.first_cap is None else float(self.first_cap),
+                "cap_lift": bool(self.cap_lift),
                 "random_state": None if self.random_state is None else int(self.random_state),
             },
             "state": {

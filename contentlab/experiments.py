@@ -12,7 +12,11 @@ write lock is taken before anything is read, so concurrent processes queue
 for it (SQLite's busy timeout) instead of reading stale totals, and a call
 lands whole or not at all.
 
-The prior for each arm is the model's predicted rate ``m`` with a common
+When the history holds past tests, the prior is learned from them
+(:func:`learn_prior_from_tests`): each arm around the test's level, with the
+model's predicted gaps between arms only where a replay of the past tests
+shows they help; it is stored in the experiment's settings. Otherwise (the
+former behaviour) the prior for each arm is the model's predicted rate ``m`` with a common
 strength ``s`` (pseudo-impressions; see :mod:`contentlab.bandit`). ``s`` comes
 from an empirical-Bayes beta-binomial fit of the user's real rates around the
 model's out-of-fold predictions, and is kept only when a replay of the user's
@@ -28,6 +32,7 @@ and the pure :func:`choose_prior_strength` / :func:`replay_regret`.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import math
@@ -43,12 +48,17 @@ import numpy as np
 import pandas as pd
 
 from .bandit import (
+    BUDGET_TEMPER_END,
+    DEFAULT_LEVEL_WEIGHT,
     DEFAULT_MIN_SHARE,
     DEFAULT_N_DRAWS,
     DEFAULT_TEMPER,
+    DEFAULT_TEMPER_START,
     Decision,
     ThompsonBandit,
+    fit_arm_spread,
     fit_prior_strength,
+    first_split_cap,
     prior_params,
     replay_regret_rows,
     wilson_interval,
@@ -62,12 +72,14 @@ __all__ = [
     "Allocation",
     "CreatedExperiment",
     "ExperimentStatus",
+    "LearnedPrior",
     "PriorChoice",
     "RecordSummary",
     "choose_prior_strength",
     "create_experiment",
     "experiment_status",
     "jsonable",
+    "learn_prior_from_tests",
     "list_experiments",
     "next_allocation",
     "normalise_drafts",
@@ -75,6 +87,7 @@ __all__ = [
     "read_drafts",
     "read_results",
     "record_results",
+    "replay_learned",
     "replay_regret",
     "stop_experiment",
 ]
@@ -136,6 +149,7 @@ class PriorChoice:
     n_tests: int = 0
     model_id: int | None = None
     notes: tuple[str, ...] = ()
+    learned: dict | None = None  # LearnedPrior.to_dict() plus 'offsets' per arm, when past tests set the prior
 
     def to_dict(self) -> dict:
         out = asdict(self)
@@ -161,6 +175,7 @@ class Allocation:
     arms: pd.DataFrame  # arm, headline, impressions, share
     single: str | None  # the arm to post next when impressions == 1
     notes: tuple[str, ...]
+    why: tuple[str, ...] = ()  # why the split is what it is, in plain words
 
 
 @dataclass(frozen=True)
@@ -207,6 +222,7 @@ class ExperimentStatus:
     warnings: tuple[str, ...]
     prior: dict
     settings: dict = field(repr=False, default_factory=dict)
+    why: tuple[str, ...] = ()  # the prior and the allocation rule, in plain words
 
     def to_dict(self) -> dict:
         arms = self.arms.astype(object).where(self.arms.notna(), None).to_dict(orient="records")
@@ -225,6 +241,7 @@ class ExperimentStatus:
             "decision": jsonable(asdict(self.decision)),
             "warnings": list(self.warnings),
             "prior": jsonable(self.prior),
+            "why": list(self.why),
         }
 
 
@@ -559,6 +576,169 @@ def choose_prior_strength(
     )
 
 
+# The prior learned from past tests (issue 12). The new default policy has no
+# floor share: the learned prior already keeps an unlucky arm alive, and on the
+# archive's earlier experiments (benchmarks/replay_archive.py --tune, 2 seeds)
+# a floor of 0.01 lost 0.325 of the equal split's clicks against 0.304 without.
+# The replay that checks the model's gaps uses this policy, the default temper
+# and the first-split cap.
+LEARNED_MIN_SHARE = 0.0
+LEARNED_REPEATS = 5
+
+
+@dataclass(frozen=True)
+class LearnedPrior:
+    """How far drafts of one test usually differ, learned from the user's past tests, and the model's part in it."""
+
+    logit_sd: float
+    level: float
+    level_weight: float
+    n_tests: int
+    n_arms: int
+    model_kept: bool = False
+    slope: float = 0.0
+    model_logit_sd: float | None = None
+    replay: dict[str, list[float]] | None = None  # 'without model' / 'with model' -> regret/equal per run
+    gain: float | None = None
+    gain_se: float | None = None
+    n_replayed: int = 0
+    model_reason: str = ""
+    history_key: str = ""  # which history and model it was learned from (to reuse it)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    def spread_words(self) -> str:
+        """The fitted spread in plain words: drafts of one test typically sit within about +-X% of its level."""
+        pct = 100 * (math.exp(self.logit_sd) - 1)
+        return (
+            f"in your {self.n_tests:,} past tests, a draft's click-through rate typically sat about {pct:.0f}% above "
+            f"or below its test's level (a spread of {self.logit_sd:.2f} on the log-odds scale), so an early gap "
+            "smaller than that is judged mostly noise"
+        )
+
+    def used_logit_sd(self) -> float:
+        return float(self.model_logit_sd) if self.model_kept and self.model_logit_sd is not None else float(self.logit_sd)
+
+
+def learn_prior_from_tests(
+    history: pd.DataFrame,
+    *,
+    min_tests: int = MIN_PAST_TESTS,
+    repeats: int = LEARNED_REPEATS,
+    rounds: int = REPLAY_ROUNDS,
+    n_draws: int = REPLAY_DRAWS,
+    seed: int = 0,
+) -> LearnedPrior | None:
+    """Fit, by empirical Bayes on past tests, how far arms sit from their test's level; check the model's gaps by replay.
+
+    ``history`` has one row per past post in time order: ``experiment_id``
+    (missing for posts that were no test's arm), ``impressions``, ``clicks``
+    and optionally ``logit``, the model's out-of-fold predicted log-odds.
+    Returns None when fewer than ``min_tests`` past tests have two or more arms.
+
+    1. :func:`bandit.fit_arm_spread` (restricted maximum likelihood, each
+       test's level integrated out) gives the spread of arms around their
+       test's level.
+    2. With ``logit``: the same fit with each arm's predicted gap from its
+       test's mean as an offset gives ``slope`` (how much of the predicted gaps
+       is real) and the spread left. The gaps are kept only if replaying the
+       latest past tests (each test's observed rates as the truth, its
+       impressions as the budget) with them loses fewer clicks than the same
+       bandit without them, by more than two standard errors of the paired
+       per-run gains.
+    """
+    need = {"experiment_id", "impressions", "clicks"}
+    if not need <= set(history.columns):
+        return None
+    h = history[history["experiment_id"].notna()].copy()
+    h["impressions"] = pd.to_numeric(h["impressions"], errors="coerce")
+    h["clicks"] = pd.to_numeric(h["clicks"], errors="coerce")
+    h = h[(h["impressions"] > 0) & h["clicks"].between(0, h["impressions"])]
+    h = h[h.groupby("experiment_id")["clicks"].transform("size") >= 2]
+    n_tests = h["experiment_id"].nunique()
+    if n_tests < min_tests:
+        return None
+    n = h["impressions"].to_numpy(dtype=np.int64)
+    k = h["clicks"].to_numpy(dtype=np.int64)
+    spread = fit_arm_spread(h["experiment_id"], n, k)
+    base = dict(logit_sd=spread.logit_sd, level=spread.level, level_weight=DEFAULT_LEVEL_WEIGHT,
+                n_tests=spread.n_tests, n_arms=spread.n_arms)
+    if "logit" not in h.columns:
+        return LearnedPrior(**base, model_reason="no model, so drafts start level with each other")
+    logit = pd.to_numeric(h["logit"], errors="coerce")
+    complete = np.isfinite(logit).groupby(h["experiment_id"]).transform("all").to_numpy()
+    m = h[complete].assign(logit=logit[complete])
+    if m["experiment_id"].nunique() < min_tests:
+        return LearnedPrior(**base, model_reason=(
+            f"only {m['experiment_id'].nunique()} past tests have out-of-fold predictions for every draft "
+            f"(at least {min_tests} needed to check the model's gaps), so drafts start level with each other"))
+    offsets = (m["logit"] - m.groupby("experiment_id")["logit"].transform("mean")).to_numpy(dtype=float)
+    with_model = fit_arm_spread(m["experiment_id"], m["impressions"].to_numpy(), m["clicks"].to_numpy(), offsets=offsets)
+    base.update(slope=with_model.slope, model_logit_sd=with_model.logit_sd)
+    if with_model.slope <= 0:
+        return LearnedPrior(**base, model_reason=(
+            f"in your past tests the drafts the model ranked higher did not do better (slope {with_model.slope:.2f}), "
+            "so its predicted gaps are not used"))
+    ids = list(dict.fromkeys(m["experiment_id"]))[-REPLAY_MAX_TESTS:]
+    last = m[m["experiment_id"].isin(ids)].assign(offset=offsets[m["experiment_id"].isin(ids).to_numpy()])
+    ratios = replay_learned(last, {"without model": (spread.logit_sd, 0.0), "with model": (with_model.logit_sd, with_model.slope)},
+                            level=spread.level, repeats=repeats, rounds=rounds, n_draws=n_draws, seed=seed)
+    gains = ratios["without model"] - ratios["with model"]
+    se = float(gains.std(ddof=1) / math.sqrt(len(gains))) if len(gains) > 1 else float("inf")
+    kept = bool(gains.mean() > 2 * se)
+    replay = {key: [round(float(x), 4) for x in v] for key, v in ratios.items()}
+    words = (
+        f"a replay of your {len(ids)} latest past tests ({repeats} runs; clicks lost as a share of an equal split's) "
+        f"gives {ratios['without model'].mean():.3f} without the model's gaps and {ratios['with model'].mean():.3f} "
+        f"with them (slope {with_model.slope:.2f}): a gain of {gains.mean():+.3f} +- {se:.3f} (standard error)"
+    )
+    words += (", more than two standard errors, so the model's gaps are used" if kept
+              else ", not more than two standard errors, so drafts start level with each other (the model's rates are still shown)")
+    return LearnedPrior(**base, model_kept=kept, replay=replay, gain=float(gains.mean()), gain_se=se,
+                        n_replayed=len(ids), model_reason=words)
+
+
+def replay_learned(
+    tests: pd.DataFrame,
+    variants: Mapping[str, tuple[float, float]],
+    *,
+    level: float,
+    repeats: int = LEARNED_REPEATS,
+    rounds: int = REPLAY_ROUNDS,
+    n_draws: int = REPLAY_DRAWS,
+    seed: int = 0,
+) -> dict[str, np.ndarray]:
+    """Clicks lost (share of an equal split's) per run by the new default policy under each ``(logit_sd, slope)``.
+
+    ``tests`` has ``experiment_id, impressions, clicks`` and ``offset`` (the
+    model's predicted gap per arm). The runs of every variant share seeds, so
+    run ``i`` of each saw the same random streams (paired).
+    """
+    tests = tests.assign(rate=(tests["clicks"] / tests["impressions"]).to_numpy(dtype=float))
+    sizes = tests.groupby("experiment_id", sort=False)["rate"].transform("size")
+    out = {key: np.zeros(repeats) for key in variants}
+    equal = 0.0
+    for k, part in tests.groupby(sizes, sort=True):
+        k = int(k)
+        order = part["experiment_id"].drop_duplicates()
+        part = part.set_index("experiment_id").loc[order]
+        p = part["rate"].to_numpy().reshape(-1, k)
+        off = part["offset"].to_numpy(dtype=float).reshape(-1, k)
+        budget = part["impressions"].to_numpy(dtype=np.int64).reshape(-1, k).sum(axis=1)
+        equal += float((budget * (p.max(axis=1) - p.mean(axis=1))).sum())
+        batch = np.maximum(1, np.ceil(budget / rounds)).astype(np.int64)
+        for key, (sd, slope) in variants.items():
+            spread = {"logit_sd": sd, "level": level, "level_weight": DEFAULT_LEVEL_WEIGHT}
+            for r in range(repeats):
+                out[key][r] += replay_regret_rows(
+                    p, budget, None, None, np.random.default_rng([int(seed), k, r]), batch=batch, n_draws=n_draws,
+                    min_share=LEARNED_MIN_SHARE, spread=spread, offsets=slope * off if slope else None,
+                    first_cap=first_split_cap(k), cap_lift=bool(slope),
+                ).sum()
+    return {key: v / equal if equal > 0 else np.full(repeats, np.nan) for key, v in out.items()}
+
+
 def _model_inputs(ws: Workspace, arms: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame, int, list[str]] | None:
     """The latest clicks model's predictions for the drafts and its out-of-fold predictions on history."""
     row = ws.latest_model_row("clicks")
@@ -633,15 +813,24 @@ def create_experiment(
     policy: str = "thompson",
     source: str | None = None,
     seed: int | None = None,
+    budget: int | None = None,
 ) -> CreatedExperiment:
-    """Create experiment ``name`` whose arms are ``drafts``, with priors from the latest model.
+    """Create experiment ``name`` whose arms are ``drafts``, with priors learned from past tests and the model.
 
     Priors, in order: ``flat_prior`` -> flat; ``prior_means`` given -> those
     means with ``prior_strength`` (or the strength :func:`choose_prior_strength`
-    picks when it is None and a model exists); else the latest clicks model's
-    predicted rates with the strength :func:`choose_prior_strength` picks from
-    its out-of-fold predictions (``prior_strength`` overrides it); no model ->
-    flat, with a note.
+    picks when it is None and a model exists); ``prior_strength`` given -> the
+    latest clicks model's predicted rates at that strength; else, when the
+    history holds at least ``MIN_PAST_TESTS`` past tests, the prior learned
+    from them (:func:`learn_prior_from_tests`: each draft around the test's
+    level, with the model's predicted gaps only where a replay shows they
+    help); else the former behaviour: the model's predicted rates with the
+    strength :func:`choose_prior_strength` picks, or flat without a model.
+
+    ``budget``: total impressions planned; allocation explores more while
+    much of it remains and commits as it runs out. Every new experiment's
+    first split gives no arm more than :func:`bandit.first_split_cap` unless a
+    prior validated on past tests justifies more.
     """
     _check_name(name)
     policy = _policy(policy)
@@ -649,6 +838,8 @@ def create_experiment(
         raise ContentlabError(f"--seed must be a whole number from 0 to {2**31 - 1}; got {seed!r}.")
     if prior_strength is not None and (not _is_real(prior_strength) or prior_strength < 0):
         raise ContentlabError(f"prior strength must be a number of at least 0; got {prior_strength!r}.")
+    if budget is not None and (isinstance(budget, bool) or not isinstance(budget, (int, np.integer)) or budget < 1):
+        raise ContentlabError(f"--budget must be a whole number of impressions, at least 1; got {budget!r}.")
     arms = normalise_drafts(drafts, channel=channel, group=group, source=source)
     if ws.conn.execute("SELECT 1 FROM experiments WHERE name=?", (name,)).fetchone():
         raise ContentlabError(
@@ -669,15 +860,25 @@ def create_experiment(
         prior = PriorChoice(s, "given", f"prior means given by the caller, strength {s:g}")
     else:
         inputs = _model_inputs(ws, arms)
-        if inputs is None:
+        learned = None if prior_strength is not None else _learned_prior(ws, inputs)
+        if learned is not None:
+            if inputs is not None:
+                predicted = np.clip(inputs[0], 1e-6, 1 - 1e-6)
+                notes += inputs[3]
+            prior = _learned_choice(learned, predicted, None if inputs is None else inputs[2])
+        elif inputs is None:
             prior = PriorChoice(
                 0.0, "flat",
-                "no clicks model in the workspace (run contentlab learn), so every arm starts at the flat Beta(1, 1) prior",
+                "no clicks model in the workspace (run contentlab learn), so every arm starts at the flat Beta(1, 1) "
+                f"prior; {_no_tests_words(ws)}",
             )
         else:
             predicted, history, model_id, model_notes = inputs
             notes += model_notes
             predicted = np.clip(predicted, 1e-6, 1 - 1e-6)
+            if prior_strength is None:
+                words = _no_tests_words(ws)
+                notes.append(words[0].upper() + words[1:] + ".")
             choice = _cached_choice(ws, model_id) or choose_prior_strength(history)
             choice = PriorChoice(**{**choice.to_dict(), "notes": tuple(choice.notes), "model_id": model_id})
             if prior_strength is not None:
@@ -690,7 +891,10 @@ def create_experiment(
                 )
             else:
                 prior = choice
-    table = prior_table(predicted, prior.strength if predicted is not None else 0.0, len(arms))
+    if prior.learned is not None:
+        table = _learned_table(prior.learned, predicted, len(arms))
+    else:
+        table = prior_table(predicted, prior.strength if predicted is not None else 0.0, len(arms))
     result = pd.concat([arms[["arm", "headline", "channel"]].reset_index(drop=True), table], axis=1)
     common = {c for c in arms["channel"]}
     exp_channel = next(iter(common)) if len(common) == 1 else None
@@ -699,13 +903,15 @@ def create_experiment(
         "seed": int(secrets.randbits(31) if seed is None else seed),
         "prob_threshold": PROB_THRESHOLD,
         "prior": prior.to_dict(),
+        "first_cap": first_split_cap(len(arms)),
+        "budget": None if budget is None else int(budget),
         "arm_meta": {
             arm: {"channel": ch, "publish_at": pa}
             for arm, ch, pa in zip(arms["arm"], arms["channel"], arms["publish_at"])
         },
         "source": source,
     }
-    if prior.strength > 0 and predicted is not None:
+    if prior.strength > 0 and predicted is not None and prior.learned is None:
         notes.append(
             "A model-informed prior is a starting guess from correlations in past posts, not a causal effect; "
             "results soon outweigh it."
@@ -720,9 +926,11 @@ def create_experiment(
             ws.conn.executemany(
                 "INSERT INTO arms (experiment, arm, headline, prior_mean, prior_strength) VALUES (?, ?, ?, ?, ?)",
                 [
-                    (name, arm, headline, None if predicted is None else float(m), float(s))
+                    (name, arm, headline, None if predicted is None and prior.learned is None else float(m), float(s))
                     for arm, headline, m, s in zip(
-                        result["arm"], result["headline"], result["predicted_rate"], result["prior_strength"]
+                        result["arm"], result["headline"],
+                        result["prior_mean"] if prior.learned is not None else result["predicted_rate"],
+                        result["prior_strength"],
                     )
                 ],
             )
@@ -743,6 +951,80 @@ def _cached_choice(ws: Workspace, model_id: int) -> PriorChoice | None:
     return None
 
 
+def _past_tests(ws: Workspace) -> pd.DataFrame:
+    """Arms of past tests in the history (posts sharing an experiment_id), in time order."""
+    posts = ws.posts()
+    return posts.loc[posts["experiment_id"].notna(), ["post_id", "experiment_id", "impressions", "clicks"]]
+
+
+def _no_tests_words(ws: Workspace) -> str:
+    tests = _past_tests(ws)
+    sizes = tests.groupby("experiment_id")["post_id"].transform("size") if len(tests) else pd.Series(dtype=int)
+    found = tests.loc[sizes >= 2, "experiment_id"].nunique() if len(tests) else 0
+    return (
+        f"the history has {found} past test(s) with two or more drafts (posts sharing an experiment_id), fewer than "
+        f"the {MIN_PAST_TESTS} needed to learn how far drafts of one test usually differ, so the prior is the former one"
+    )
+
+
+def _learned_prior(ws: Workspace, inputs) -> LearnedPrior | None:
+    """The prior learned from the workspace's past tests (None when there are too few), cached per history and model."""
+    tests = _past_tests(ws)
+    if inputs is not None:
+        oof = inputs[1][["post_id", "predicted_rate"]]
+        from scipy.special import logit as _logit
+
+        rate = np.clip(pd.to_numeric(oof["predicted_rate"], errors="coerce").to_numpy(dtype=float), 1e-6, 1 - 1e-6)
+        tests = tests.merge(oof.assign(logit=_logit(rate))[["post_id", "logit"]], on="post_id", how="left")
+    key = _digest(tests.to_csv(index=False) + f"\x1e{None if inputs is None else inputs[2]}")
+    for (text,) in ws.conn.execute("SELECT settings FROM experiments ORDER BY created_at DESC LIMIT 50"):
+        got = (json.loads(text).get("prior") or {}).get("learned")
+        if got and got.get("history_key") == key:
+            known = {f.name for f in fields(LearnedPrior)}
+            return LearnedPrior(**{k: v for k, v in got.items() if k in known})
+    learned = learn_prior_from_tests(tests)
+    return None if learned is None else dataclasses.replace(learned, history_key=key)
+
+
+def _learned_choice(learned: LearnedPrior, predicted: np.ndarray | None, model_id: int | None) -> PriorChoice:
+    """The PriorChoice of a prior learned from past tests, with each arm's offset (the model's gap, if kept)."""
+    offsets = None
+    if learned.model_kept and predicted is not None:
+        from scipy.special import logit as _logit
+
+        eta = _logit(predicted)
+        offsets = (learned.slope * (eta - eta.mean())).tolist()
+    model_words = learned.model_reason
+    if predicted is None and learned.model_kept is False and "no model" not in model_words:
+        model_words = "no model, so drafts start level with each other"
+    reason = f"learned from your past tests: {learned.spread_words()}; model: {model_words}"
+    info = {**learned.to_dict(), "offsets": offsets}
+    source = "past tests + model" if offsets is not None else "past tests"
+    return PriorChoice(0.0, source, reason, n_tests=learned.n_tests, model_id=model_id, learned=info)
+
+
+def _learned_table(learned: Mapping, predicted: np.ndarray | None, n_arms: int) -> pd.DataFrame:
+    """Each arm's prior before results (Beta a0, b0 of bandit.within_test_prior at the history's level)."""
+    from scipy import stats
+
+    from .bandit import within_test_prior
+
+    off = learned.get("offsets")
+    sd = float(learned["model_logit_sd"]) if off is not None else float(learned["logit_sd"])
+    a0, b0 = within_test_prior(np.zeros((1, n_arms)), np.zeros((1, n_arms)), logit_sd=sd, level=float(learned["level"]),
+                               level_weight=float(learned["level_weight"]),
+                               offsets=None if off is None else np.asarray(off, dtype=float)[None])
+    a0, b0 = a0[0], b0[0]
+    tail = (1 - PRIOR_INTERVAL) / 2
+    return pd.DataFrame({
+        "predicted_rate": np.full(n_arms, np.nan) if predicted is None else predicted,
+        "prior_strength": a0 + b0 - 2.0,
+        "prior_mean": a0 / (a0 + b0),
+        "prior_low": stats.beta.ppf(tail, a0, b0),
+        "prior_high": stats.beta.ppf(1 - tail, a0, b0),
+    })
+
+
 def list_experiments(ws: Workspace) -> pd.DataFrame:
     """One row per experiment: status, arms, totals so far and the arm with the highest posterior mean."""
     rows = ws.conn.execute(
@@ -759,7 +1041,10 @@ def list_experiments(ws: Workspace) -> pd.DataFrame:
     for name in frame["experiment"]:
         exp = _load(ws, name)
         totals = _totals(ws, name, exp["arms"]["arm"].tolist())
-        a0, b0 = _prior_ab(exp)
+        if (exp["settings"].get("prior") or {}).get("learned"):
+            a0, b0 = _bandit(ws, exp).prior_ab()  # the learned prior moves with the test's level
+        else:
+            a0, b0 = _prior_ab(exp)
         mean = (a0 + totals["clicks"].to_numpy()) / (a0 + b0 + totals["impressions"].to_numpy())
         leaders.append(exp["arms"]["arm"].iat[int(np.argmax(mean))] if totals["impressions"].sum() > 0 else None)
     frame["leader"] = leaders
@@ -829,9 +1114,74 @@ def next_allocation(
     if n == 1:
         chosen = next(a for a, c in counts.items() if c == 1)
         notes.append(SINGLE_CAUTION)
+    why = _prior_words(exp["settings"]) + _split_words(bandit, exp["settings"])
+    return Allocation(name, use, int(n), frame, chosen, tuple(notes), tuple(why))
+
+
+def _prior_words(settings: Mapping) -> list[str]:
+    """What the experiment's prior says, in plain words."""
+    prior = settings.get("prior") or {}
+    learned = prior.get("learned")
+    if not learned:
+        reason = prior.get("reason")
+        return [f"Prior: {reason}."] if reason else []
+    words = LearnedPrior(**{k: v for k, v in learned.items() if k in {f.name for f in fields(LearnedPrior)}})
+    out = [f"Prior: each draft is judged against its test's level, which follows this test's own results; "
+           f"{words.spread_words()}."]
+    if learned.get("offsets") is not None:
+        out.append(f"The model's predicted gaps between the drafts are part of the prior: {words.model_reason}.")
+    else:
+        out.append(f"Model: {words.model_reason}.")
+    return out
+
+
+def _split_words(bandit: ThompsonBandit, settings: Mapping) -> list[str]:
+    """Why the next split is what it is: the cap before results, the temper, the budget, the floors."""
+    prob = bandit.prob_best()
+    out = []
+    budget = []
+    if bandit.budget is not None:
+        spent = float(bandit.impressions_.sum())
+        budget.append(
+            f"Budget: {spent:,.0f} of {int(bandit.budget):,} planned impressions spent ({spent / bandit.budget:.0%}); "
+            f"once results are in, the power on each draft's probability of being best rises from "
+            f"{float(bandit.temper_start):g} to {float(bandit.temper):g} as the budget is spent, exploring while "
+            "much remains and committing as it runs out."
+        )
     if bandit.impressions_.sum() == 0:
-        notes.append("No results yet: the split follows the priors alone.")
-    return Allocation(name, use, int(n), frame, chosen, tuple(notes))
+        cap = settings.get("first_cap")
+        if cap is None:
+            out.append("No results yet: the split follows the priors alone.")
+        elif bandit.logit_sd is not None and bandit.prior_offsets is None:
+            out.append(
+                f"No results yet: the prior holds every draft at the same level, so each draft is equally likely "
+                f"to be best and the split is even. No draft would get more than {cap:.0%} of the first impressions "
+                "before results (twice an equal share, at most 60%)."
+            )
+        else:
+            lift = " unless the prior, validated on your past tests, gives it a higher probability of being best" \
+                if bandit.cap_lift else ""
+            out.append(
+                "No results yet: each draft's share is its probability of being best under the prior alone (plain "
+                f"Thompson sampling, not sharpened), and no draft gets more than {cap:.0%} of the first impressions "
+                f"(twice an equal share, at most 60%){lift}, so every draft keeps learning."
+            )
+        return out + budget
+    t = bandit.current_temper()
+    if bandit.policy == "thompson":
+        best = max(prob, key=prob.get)
+        text = (
+            f"Each draft's share follows its probability of being best ({best} leads with {prob[best]:.0%}), raised "
+            f"to the power {t:.2g} and rescaled, which moves traffic to the likely winner sooner than plain Thompson "
+            "sampling."
+        )
+    else:
+        text = "Top-two sampling: about half the traffic goes to the leader and half to its closest challengers."
+    out.append(text)
+    out += budget
+    if bandit.min_share > 0:
+        out.append(f"Every draft still in the running gets at least {float(bandit.min_share):.0%}.")
+    return out
 
 
 # --------------------------------------------------------------------------
@@ -1218,7 +1568,7 @@ def experiment_status(
             "probabilities above rest on fewer effective impressions than the totals show."
         )
     strength = float(arms["prior_strength"].max()) if len(arms) else 0.0
-    if strength > 0 and n.size and n.min() < strength:
+    if strength > 0 and n.size and n.min() < strength and not (settings.get("prior") or {}).get("learned"):
         warnings.append(
             f"The model's prior (worth {strength:,.0f} impressions per arm) still weighs more than some arms' results."
         )
@@ -1244,6 +1594,7 @@ def experiment_status(
         warnings=tuple(warnings),
         prior=settings.get("prior", {}),
         settings=settings,
+        why=tuple(_prior_words(settings) + _split_words(bandit, settings)),
     )
 
 
@@ -1378,7 +1729,20 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
         "discount": float(discount),
         "n_draws": DEFAULT_N_DRAWS,
         "random_state": int(settings.get("seed", 0)),
+        "first_cap": settings.get("first_cap"),
+        "cap_lift": (settings.get("prior") or {}).get("source") in ("model", "past tests + model"),
+        "budget": settings.get("budget"),
     }
+    if settings.get("budget") is not None:
+        params.update(temper=BUDGET_TEMPER_END, temper_start=DEFAULT_TEMPER_START)
+    learned = (settings.get("prior") or {}).get("learned")
+    if learned:
+        off = learned.get("offsets")
+        params.update(
+            prior_means=None, prior_strength=0.0, min_share=LEARNED_MIN_SHARE, prior_offsets=off,
+            logit_sd=float(learned["model_logit_sd"]) if off is not None else float(learned["logit_sd"]),
+            level=float(learned["level"]), level_weight=float(learned["level_weight"]),
+        )
     state = {"impressions": n.tolist(), "clicks": k.tolist(), "n_updates": int(n_updates)}
     return ThompsonBandit.from_dict({"format": "contentlab.bandit/1", "params": params, "state": state})
 

@@ -479,32 +479,40 @@ def test_model_prior_from_workspace(modelled):
     root, model = modelled
     drafts = pd.read_csv(CORPUS / "drafts.csv")
     with Workspace.open(root, create=False) as w:
-        created = create_experiment(w, "mk", drafts, group="makerspace-launch", source="drafts.csv")
-        prior = created.prior
-        assert prior.model_id is not None and prior.eb_strength > 0 and prior.n_tests >= 5
-        # The chosen strength is one of the replayed candidates 0, s/4, s (s = s_EB capped).
-        s = min(prior.eb_strength, prior.cap)
-        assert any(prior.strength == pytest.approx(c) for c in (0.0, s / 4, s))
-        assert set(prior.replay) == {f"{c:.6g}" for c in (0.0, s / 4, s)}
-        # The same history through the public function gives the same choice.
-        again = choose_prior_strength(_oof_history(model, w))
-        assert again.strength == pytest.approx(prior.strength) and again.eb_strength == pytest.approx(prior.eb_strength)
-        t = created.arms
-        assert t["predicted_rate"].between(0, 1).all() and t["predicted_rate"].nunique() == len(t)
-        stored = [r[0] for r in w.conn.execute("SELECT prior_mean FROM arms WHERE experiment='mk' ORDER BY rowid")]
-        np.testing.assert_allclose(stored, t["predicted_rate"])
-        a = 1 + t["predicted_rate"] * prior.strength
-        b = 1 + (1 - t["predicted_rate"]) * prior.strength
-        np.testing.assert_allclose(t["prior_low"], stats.beta.ppf(0.05, a, b))  # scipy's Beta quantiles
-        # A second experiment with the same model reuses the choice (the replay is the slow part).
-        second = create_experiment(w, "bc", drafts, group="budget-consultation")
-        assert second.prior.strength == pytest.approx(prior.strength)
-        flat = create_experiment(w, "mk-flat", drafts, group="makerspace-launch", flat_prior=True)
-        assert flat.prior.strength == 0 and flat.arms["predicted_rate"].isna().all()
+        # The demo history holds past tests: by default the prior is learned from them (issue 12).
+        learned = create_experiment(w, "mk-learned", drafts, group="makerspace-launch", source="drafts.csv")
+        assert learned.prior.source in ("past tests", "past tests + model") and learned.prior.learned["n_tests"] >= 5
+        assert learned.prior.learned["replay"] is not None  # the model's gaps were checked by replay
+        # Arms start level with each other unless the model's gaps earned their place.
+        if learned.prior.source == "past tests":
+            assert learned.arms["prior_mean"].nunique() == 1
+        # With a strength set by the user, the former model prior is used and the workspace's own choice shown.
         user = create_experiment(w, "mk-user", drafts, group="makerspace-launch", prior_strength=50.0)
-        assert user.prior.source == "user" and user.prior.strength == 50.0
+        prior = user.prior
+        assert prior.source == "user" and prior.strength == 50.0
+        assert prior.model_id is not None and prior.eb_strength > 0 and prior.n_tests >= 5
+        # The replayed candidates are 0, s/4, s (s = s_EB capped).
+        s = min(prior.eb_strength, prior.cap)
+        assert set(prior.replay) == {f"{c:.6g}" for c in (0.0, s / 4, s)}
+        again = choose_prior_strength(_oof_history(model, w))
+        assert again.eb_strength == pytest.approx(prior.eb_strength)
+        t = user.arms
+        assert t["predicted_rate"].between(0, 1).all() and t["predicted_rate"].nunique() == len(t)
+        stored = [r[0] for r in w.conn.execute("SELECT prior_mean FROM arms WHERE experiment='mk-user' ORDER BY rowid")]
+        np.testing.assert_allclose(stored, t["predicted_rate"])
+        a = 1 + t["predicted_rate"] * 50.0
+        b = 1 + (1 - t["predicted_rate"]) * 50.0
+        np.testing.assert_allclose(t["prior_low"], stats.beta.ppf(0.05, a, b))  # scipy's Beta quantiles
         status = experiment_status(w, "mk-user").arms
         np.testing.assert_allclose(status["posterior_mean"], (1 + 50 * t["predicted_rate"]) / 52)
+        flat = create_experiment(w, "mk-flat", drafts, group="makerspace-launch", flat_prior=True)
+        assert flat.prior.strength == 0 and flat.arms["predicted_rate"].isna().all()
+        # Without past tests in the history: the former behaviour, and a note says so.
+        w.conn.execute("UPDATE posts SET experiment_id = NULL")
+        w.conn.commit()
+        created = create_experiment(w, "mk", drafts, group="makerspace-launch", source="drafts.csv")
+        assert created.prior.learned is None and created.prior.source == "flat"
+        assert "fewer than the 5 needed to learn how far drafts" in " ".join(created.notes)
 
 
 # ---- on the real archive --------------------------------------------------------

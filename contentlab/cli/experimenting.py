@@ -49,14 +49,19 @@ def register(subparsers) -> None:
         help="create an experiment from drafts",
         description=_paragraphs(
             "Create an experiment whose arms are the drafts (a CSV with headline and optional arm, channel, "
-            "publish_at, group columns, or headlines as arguments). Each arm's prior starts at the latest "
-            "model's predicted click-through rate; how much that counts (the prior strength, in "
-            "pseudo-impressions) comes from how far your real rates spread around the model's out-of-fold "
-            "predictions (empirical Bayes), and it is kept only if a replay of your past tests shows it loses "
-            "fewer clicks than a flat prior. Without a model, or with --flat-prior, arms start flat."
+            "publish_at, group columns, or headlines as arguments). When your history holds past tests (posts "
+            "sharing an experiment_id), the prior is learned from them: how far drafts of one test usually sit "
+            "from their test's level (empirical Bayes), so an early gap is judged against the gaps you usually "
+            "see. The model's predicted gaps between the drafts join the prior only if a replay of your past tests "
+            "shows they lose fewer clicks than the same prior without them, by more than two standard errors; the "
+            "evidence is printed. Without past tests the former prior is used (the model's predicted rates, at a "
+            "strength checked the same way; flat without a model), and the output says so. Before any results no "
+            "draft gets more than twice an equal share of traffic (at most 60%) unless the validated prior "
+            "justifies it. --budget N tells the allocation how many impressions the test will get, so it explores "
+            "more while much remains and commits as it runs out.",
         ),
         example='contentlab experiment new laser-cutter "Inside the makerspace laser cutter" '
-        '"5 things to know about the makerspace laser cutter" --channel newsletter',
+        '"5 things to know about the makerspace laser cutter" --channel newsletter --budget 20000',
     )
     p.add_argument("name", help="experiment name: letters, digits, '.', '_' or '-'")
     p.add_argument("headlines", nargs="*", metavar="HEADLINE", help="draft headlines (instead of --drafts)")
@@ -68,6 +73,9 @@ def register(subparsers) -> None:
                    help="use the model's predictions with this strength (pseudo-impressions) instead of the chosen one")
     p.add_argument("--policy", default="thompson", choices=["thompson", "top-two"], help=POLICY_HELP)
     p.add_argument("--seed", type=int, help="random seed for the allocations, 0 to 2147483647 (default: a fresh one, stored)")
+    p.add_argument("--budget", type=int, metavar="N",
+                   help="impressions the whole test will get: explore more while much remains, commit as it runs "
+                        "out (default: no budget, a fixed balance)")
     add_format_option(p)
     add_workspace_option(p)
     p.set_defaults(handler=cmd_new)
@@ -194,6 +202,7 @@ def cmd_new(args: argparse.Namespace) -> int:
         created = create_experiment(
             ws, args.name, drafts, flat_prior=args.flat_prior, channel=args.channel, group=args.group,
             prior_strength=args.prior_strength, policy=args.policy, source=args.drafts, seed=args.seed,
+            budget=args.budget,
         )
     frame = created.arms
     if args.format == "json":
@@ -203,7 +212,8 @@ def cmd_new(args: argparse.Namespace) -> int:
     if args.format == "csv":
         _print_csv(frame)
         return 0
-    print(f"Experiment {created.name}: {len(frame)} arms, prior: {created.prior.source}.")
+    print(f"Experiment {created.name}: {len(frame)} arms, prior: {created.prior.source}"
+          + (f", budget {args.budget:,} impressions." if args.budget else "."))
     print(_table(frame, [
         ("arm", "arm", str), ("headline", "headline", lambda v: _clip(v, 60)),
         ("model rate", "predicted_rate", _pct), ("strength", "prior_strength", lambda v: f"{v:,.0f}"),
@@ -232,7 +242,8 @@ def cmd_next(args: argparse.Namespace) -> int:
     frame = alloc.arms
     if args.format == "json":
         _print_json({"experiment": alloc.name, "policy": alloc.policy, "impressions": alloc.impressions,
-                     "next_single": alloc.single, "arms": _records(frame), "notes": list(alloc.notes)})
+                     "next_single": alloc.single, "arms": _records(frame), "why": list(alloc.why),
+                     "notes": list(alloc.notes)})
         return 0
     if args.format == "csv":
         _print_csv(frame)
@@ -247,6 +258,8 @@ def cmd_next(args: argparse.Namespace) -> int:
             ("arm", "arm", str), ("headline", "headline", lambda v: _clip(v, 60)),
             ("impressions", "impressions", lambda v: f"{int(v):,}"), ("share", "share", lambda v: f"{v:.1%}"),
         ]))
+    for line in alloc.why:
+        print(_wrap("Why: " + line))
     for note in alloc.notes:
         print(_wrap("Note: " + note))
     print(f"Then: contentlab record {alloc.name} --arm ARM --impressions N --clicks K")
@@ -283,6 +296,8 @@ def cmd_status(args: argparse.Namespace) -> int:
     ]}))
     print()
     print(_wrap(f"Leader: {d.leader}. " + d.reason))
+    for line in status.why:
+        print(_wrap(line))
     gained = status.clicks_gained
     if status.impressions:
         print(_wrap(

@@ -1,0 +1,104 @@
+"""Experiments whose prior is learned from the workspace's past tests (issue 12): creation, split, replays."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import special
+
+from contentlab.bandit import first_split_cap
+from contentlab.experiments import (
+    create_experiment,
+    experiment_status,
+    next_allocation,
+    read_results,
+    record_results,
+)
+from contentlab.history import import_history
+from contentlab.workspace import Workspace
+
+DRAFTS = ["Late opening at the reading room", "The reading room now opens late", "Reading room: late hours",
+          "Night owls: the reading room stays open"]
+
+
+def past_tests_csv(path, n_tests=30, n_arms=3, logit_sd=0.2, seed=0):
+    """A post history in which every post is an arm of a past test (invented; the spread is known)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for t in range(n_tests):
+        level = rng.normal(special.logit(0.03), 0.3)
+        for j in range(n_arms):
+            p = special.expit(level + rng.normal(0, logit_sd))
+            n = int(rng.integers(2000, 4000))
+            rows.append({"post_id": f"t{t}-{j}", "published_at": f"2026-{1 + t // 28:02d}-{1 + t % 28:02d}",
+                         "headline": f"Past draft {t} {j} about opening hours", "impressions": n,
+                         "clicks": int(rng.binomial(n, p)), "experiment_id": f"t{t}"})
+    pd.DataFrame(rows).to_csv(path, index=False)
+    return path
+
+
+@pytest.fixture
+def learned_ws(tmp_path):
+    with Workspace.open(tmp_path / "ws") as w:
+        import_history(w, past_tests_csv(tmp_path / "posts.csv"))
+        yield w
+
+
+def test_prior_learned_from_past_tests_is_stored_and_explained(learned_ws):
+    created = create_experiment(learned_ws, "hours", DRAFTS, seed=3, budget=20_000)
+    learned = created.prior.learned
+    assert created.prior.source == "past tests" and learned["n_tests"] == 30
+    assert 0.05 < learned["logit_sd"] < 0.5  # simulated with 0.2; 30 tests of 3 arms pin it loosely
+    assert "past tests" in created.prior.reason and "no model" in created.prior.reason
+    # Every draft starts at the same level: equal prior means.
+    assert created.arms["prior_mean"].nunique() == 1
+    alloc = next_allocation(learned_ws, "hours", 1000)
+    assert alloc.arms["impressions"].sum() == 1000
+    assert alloc.arms["share"].max() <= first_split_cap(4) + 1e-9
+    why = " ".join(alloc.why)
+    assert "judged against its test's level" in why and "No results yet" in why
+    status = experiment_status(learned_ws, "hours")
+    assert any("Budget: 0 of 20,000" in line for line in status.why)
+
+
+def test_without_past_tests_the_former_prior_is_used_and_said(tmp_path):
+    with Workspace.open(tmp_path / "ws") as w:
+        created = create_experiment(w, "hours", DRAFTS, seed=3)
+        assert created.prior.learned is None and created.prior.source == "flat"
+        assert "fewer than the 5 needed to learn how far drafts" in created.prior.reason
+        # The former split: no cap was asked for before, but every new experiment has one now.
+        assert next_allocation(w, "hours", 1000).arms["share"].max() <= first_split_cap(4) + 1e-9
+
+
+def test_replaying_the_same_results_file_changes_nothing(learned_ws, tmp_path):
+    create_experiment(learned_ws, "hours", DRAFTS, seed=3)
+    path = tmp_path / "results.csv"
+    path.write_text("arm,impressions,clicks,at\nA,1000,31,2026-12-03T09:00\nB,1000,22,2026-12-03T09:00\n"
+                    "C,1000,35,2026-12-03T09:00\nD,1000,28,2026-12-03T09:00\n", encoding="utf-8")
+    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    before = (next_allocation(learned_ws, "hours", 1000).arms, experiment_status(learned_ws, "hours").arms)
+    again = record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    assert again.added == 0 and again.duplicates == 4
+    after = (next_allocation(learned_ws, "hours", 1000).arms, experiment_status(learned_ws, "hours").arms)
+    pd.testing.assert_frame_equal(before[0], after[0])
+    pd.testing.assert_frame_equal(before[1], after[1])
+    # With results in, the split follows the evidence (shares are no longer capped).
+    assert "probability of being best" in " ".join(next_allocation(learned_ws, "hours", 1000).why)
+
+
+def test_cli_new_next_status_explain_the_prior_and_split(capsys, tmp_path):
+    from contentlab.cli import main
+
+    root = tmp_path / "ws"
+    assert main(["import", str(past_tests_csv(tmp_path / "posts.csv")), "--workspace", str(root)]) == 0
+    capsys.readouterr()
+    assert main(["experiment", "new", "hours", *DRAFTS, "--budget", "8000", "--seed", "2",
+                 "--workspace", str(root)]) == 0
+    out = " ".join(capsys.readouterr().out.split())  # the CLI wraps long lines
+    assert "prior: past tests, budget 8,000 impressions" in out and "typically sat about" in out
+    assert main(["experiment", "next", "hours", "--workspace", str(root)]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert "Why: No results yet" in out and "at most 60%" in out
+    assert main(["experiment", "status", "hours", "--workspace", str(root)]) == 0
+    assert "judged against its test's level" in " ".join(capsys.readouterr().out.split())
