@@ -573,3 +573,13 @@ def test_stop_rule_figures_in_the_replay():
                        batch=500, n_draws=200, stops=stops)
     assert np.all(stops["fired"]) and np.all(stops["named"] == 1)
     assert np.all(stops["impressions"] < 40_000)
+
+
+def test_betabinom_logpmf_matches_scipy():
+    """The beta-binomial log-pmf written with betaln/gammaln equals scipy.stats.betabinom (reference library)."""
+    from contentlab.bandit import betabinom_logpmf
+
+    k = np.array([0, 3, 17, 250, 1000])
+    n = np.array([10, 40, 3000, 2500, 1000])
+    for a, b in [(0.5, 40.0), (3.0, 200.0), (120.0, 9000.0)]:
+        np.testing.assert_allclose(betabinom_logpmf(k, n, a, b), stats.betabinom.logpmf(k, n, a, b), rtol=1e-10)
