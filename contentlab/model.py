@@ -46,11 +46,12 @@ import re
 import sys
 from collections.abc import Sequence
 
+import inspect
+
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy.special import expit
-from sklearn.base import BaseEstimator
 
 from .errors import ContentlabError
 from .features import DENSE_COLUMNS, TIME_COLUMNS, HeadlineFeaturizer, clean_headline, topic_tokens
@@ -159,6 +160,107 @@ def function_word_ngrams(text: str) -> list[str]:
 _WORDING = {"ngrams": wording_ngrams, "function_words": function_word_ngrams}
 
 
+class WordingVocabulary:
+    """The wording block's learned n-grams: turns headlines into 0/1 columns, nothing more.
+
+    ``fit`` learns the vocabulary with scikit-learn's ``CountVectorizer`` (most
+    frequent n-grams first, capped); the fitted model then keeps only this
+    small object, so scoring a draft needs neither scikit-learn nor pickled
+    library objects. ``transform`` gives exactly what the vectorizer's
+    ``transform`` gives (binary, columns in vocabulary order).
+    """
+
+    def __init__(self, analyzer: str, names: Sequence[str]):
+        self.analyzer = analyzer
+        self.names = [str(n) for n in names]
+        self.vocabulary = {n: i for i, n in enumerate(self.names)}
+
+    @classmethod
+    def learn(cls, analyzer: str, texts: Sequence[str], max_features: int | None) -> tuple["WordingVocabulary", sp.csr_matrix]:
+        """Learn from ``texts``; return the vocabulary and the texts' 0/1 matrix."""
+        from sklearn.feature_extraction.text import CountVectorizer
+
+        vec = CountVectorizer(analyzer=_WORDING[analyzer], binary=True, dtype=np.float64,
+                              max_features=max_features or None)
+        matrix = vec.fit_transform(texts).tocsr()
+        return cls(analyzer, vec.get_feature_names_out()), matrix
+
+    def get_feature_names_out(self) -> np.ndarray:
+        return np.asarray(self.names, dtype=object)
+
+    def transform(self, texts: Sequence[str]) -> sp.csr_matrix:
+        analyse = _WORDING[self.analyzer]
+        vocab = self.vocabulary
+        indptr = [0]
+        cols: list[int] = []
+        for text in texts:
+            row = sorted({vocab[t] for t in analyse(str(text)) if t in vocab})
+            cols.extend(row)
+            indptr.append(len(cols))
+        return sp.csr_matrix((np.ones(len(cols)), np.asarray(cols, dtype=np.int32), np.asarray(indptr, dtype=np.int64)),
+                             shape=(len(texts), len(self.names)))
+
+    def __getstate__(self) -> dict:
+        return {"analyzer": self.analyzer, "names": self.names}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__init__(state["analyzer"], state["names"])
+
+
+class FittedLinear:
+    """The coefficients of the final GLM fit, and the settings it was fitted with.
+
+    What prediction needs from :class:`contentlab.glm.PenalizedBinomialGLM`,
+    as plain arrays (the estimator itself stays behind in ``fit``).
+    """
+
+    def __init__(self, coef_: np.ndarray, intercept_: float, **params):
+        self.coef_ = np.asarray(coef_, dtype=float)
+        self.intercept_ = float(intercept_)
+        self.params = dict(params)
+        for key, value in params.items():
+            setattr(self, key, value)
+
+    @classmethod
+    def from_glm(cls, glm) -> "FittedLinear":
+        params = {k: (np.asarray(v, dtype=float) if k == "penalty_weights" and v is not None else v)
+                  for k, v in glm.get_params().items()}
+        return cls(glm.coef_.copy(), float(glm.intercept_), **params)
+
+    def __getstate__(self) -> dict:
+        return {"coef_": self.coef_, "intercept_": self.intercept_, "params": self.params}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__init__(state["coef_"], state["intercept_"], **state["params"])
+
+
+class _Params:
+    """``get_params``/``set_params`` of the constructor's keyword arguments (scikit-learn's convention),
+    without importing scikit-learn, so loading a saved model for scoring stays light."""
+
+    @classmethod
+    def _param_names(cls) -> list[str]:
+        sig = inspect.signature(cls.__init__)
+        return [p.name for p in sig.parameters.values() if p.name != "self" and p.kind == p.KEYWORD_ONLY]
+
+    def get_params(self, deep: bool = True) -> dict:
+        return {name: getattr(self, name) for name in self._param_names()}
+
+    def set_params(self, **params) -> "_Params":
+        valid = self._param_names()
+        for key, value in params.items():
+            if key not in valid:
+                raise ContentlabError(f"{type(self).__name__} has no parameter {key!r}; choose from {valid}")
+            setattr(self, key, value)
+        return self
+
+    def __repr__(self) -> str:
+        sig = inspect.signature(type(self).__init__)
+        changed = [f"{k}={v!r}" for k, v in self.get_params().items() if sig.parameters[k].default is not v
+                   and not (isinstance(v, (int, float, str, bool)) and sig.parameters[k].default == v)]
+        return f"{type(self).__name__}({', '.join(changed)})"
+
+
 def _check_real(name: str, value, *, low: float = 0.0, low_open: bool = False, high: float | None = None):
     ok = isinstance(value, numbers.Real) and not isinstance(value, bool) and np.isfinite(value)
     ok = ok and (value > low if low_open else value >= low) and (high is None or value <= high)
@@ -187,7 +289,7 @@ def check_history_size(n_posts: int, n_events: float, n_periods: int, n_folds: i
 
 # ----------------------------------------------------------------------------- the model
 
-class EngagementModel(BaseEstimator):
+class EngagementModel(_Params):
     r"""Exposure-aware, regularised model of clicks (or engagements) per impression.
 
     For post ``i`` with ``n_i`` impressions and ``k_i`` clicks::
@@ -401,14 +503,6 @@ class EngagementModel(BaseEstimator):
             raise NotFittedError("This EngagementModel is not fitted yet; run contentlab learn (or call fit) first.")
 
     # --------------------------------------------------------------- text parts
-    def _wording_vectorizer(self):
-        from sklearn.feature_extraction.text import CountVectorizer
-
-        return CountVectorizer(
-            analyzer=_WORDING[self.wording], binary=True, dtype=np.float64,
-            max_features=(WORDING_CAP_FACTOR * self.max_terms) or None,
-        )
-
     def _text_blocks(self, fs, fit: bool = False) -> tuple[sp.csr_matrix, sp.csr_matrix]:
         """Topic-term and wording matrices; ``fit`` learns the wording vocabulary first.
 
@@ -417,13 +511,16 @@ class EngagementModel(BaseEstimator):
         """
         n = len(fs)
         T = fs.terms.tocsr() if self.terms else sp.csr_matrix((n, 0))
-        if fit:
-            self.wording_vec_ = self._wording_vectorizer() if self.wording != "none" else None
-        if self.wording_vec_ is None:
+        if fit and self.wording == "none":
+            self.wording_vec_ = None
+        if self.wording == "none" or (not fit and self.wording_vec_ is None):
             Wm = sp.csr_matrix((n, 0))
         else:
             uniq, inverse = np.unique(fs.text.to_numpy(dtype=str), return_inverse=True)
-            Wu = (self.wording_vec_.fit_transform(uniq) if fit else self.wording_vec_.transform(uniq)).tocsr()
+            if fit:
+                self.wording_vec_, Wu = WordingVocabulary.learn(self.wording, uniq, WORDING_CAP_FACTOR * self.max_terms)
+            else:
+                Wu = self.wording_vec_.transform(uniq)
             Wm = Wu[inverse.ravel()]
         return T.astype(np.float64), Wm
 
@@ -667,7 +764,7 @@ class EngagementModel(BaseEstimator):
                                      first_tol=_LARGE_TOL if large else None):
                 pass
             pw = np.asarray(glm.penalty_weights, dtype=float)
-            self.glm_ = glm
+            self.glm_ = FittedLinear.from_glm(glm)
             self.state_ = st
             self.n_shared_ = X0.shape[1]
             self.experiments_ = list(gidx)
@@ -947,7 +1044,7 @@ class EngagementModel(BaseEstimator):
         The one place the predictive interval is computed; scoring's batch path
         calls it too, so the two can never disagree.
         """
-        from scipy import stats
+        from scipy.special import ndtri
 
         eta = np.asarray(eta, dtype=float)
         unseen_n = np.asarray(unseen_n, dtype=float)
@@ -961,22 +1058,14 @@ class EngagementModel(BaseEstimator):
             n_imp = np.broadcast_to(np.asarray(impressions, dtype=float), eta.shape).astype(float)
             if np.any(~np.isfinite(n_imp) | (n_imp <= 0)):
                 raise ContentlabError("impressions must be numbers > 0")
-        s2 = var_se + self.overdispersion_
-        z = stats.norm.ppf(0.5 + self.interval / 2)
-        # Logit-normal rate (parameters + post-to-post spread) by Gauss-Hermite moments, then binomial
-        # noise at n_imp impressions, moment-matched to a Beta for the interval of the observed rate.
-        lat = expit(eta[:, None] + np.sqrt(s2)[:, None] * _GH_NODES[None, :])
-        m = lat @ _GH_WEIGHTS
-        v = np.maximum((lat ** 2) @ _GH_WEIGHTS - m ** 2, 1e-18)
-        v_obs = v + np.maximum(m - m ** 2 - v, 0.0) / n_imp
-        a, b = _beta_from_moments(m, v_obs)
-        tail = (1 - self.interval) / 2
+        z = ndtri(0.5 + self.interval / 2)
+        low, high = predictive_interval(eta, var_se + self.overdispersion_, n_imp, self.interval)
         outside = np.asarray(outside)
         unseen_share = np.asarray(unseen_share, dtype=float)
         return {
             "predicted_rate": expit(eta),
-            "rate_low": stats.beta.ppf(tail, a, b),
-            "rate_high": stats.beta.ppf(1 - tail, a, b),
+            "rate_low": low,
+            "rate_high": high,
             "expected_low": expit(eta - z * logit_se),
             "expected_high": expit(eta + z * logit_se),
             "logit": eta,
@@ -1065,7 +1154,7 @@ def _period_of(frame: pd.DataFrame) -> np.ndarray:
         d = pd.to_datetime(frame["published_at"].astype(str).str.slice(0, 10), errors="coerce")
         if d.isna().any():
             raise ContentlabError("posts need a published_at date (YYYY-MM-DD...) to be split by time")
-    monday = d - pd.to_timedelta(d.dt.weekday, unit="D")
+    monday = d - pd.to_timedelta(d.dt.day_of_week, unit="D")
     return monday.dt.strftime("%Y-%m-%d").to_numpy()
 
 
@@ -1335,6 +1424,31 @@ def _term_groups(T, Wm, names, offset, n_shared) -> tuple[sp.csr_matrix, np.ndar
     return A, cand
 
 
+def predictive_interval(eta, s2, impressions, interval: float) -> tuple[np.ndarray, np.ndarray]:
+    """Interval for the *observed* rate of a post with logit ``eta`` at ``impressions``.
+
+    The one place the predictive interval is computed. The rate is logit-normal
+    (variance ``s2`` on the log-odds: parameters plus post-to-post spread); its
+    mean and variance come from Gauss-Hermite quadrature, binomial noise at the
+    post's impressions is added (the beta-binomial's variance), and the result is
+    moment-matched to a Beta whose quantiles bound the observed rate. The
+    interval always holds the point prediction ``expit(eta)`` (a very skewed
+    Beta of a tiny rate could otherwise leave it out).
+    """
+    from scipy.special import betaincinv
+
+    eta = np.asarray(eta, dtype=float)
+    s2 = np.broadcast_to(np.asarray(s2, dtype=float), eta.shape)
+    lat = expit(eta[:, None] + np.sqrt(s2)[:, None] * _GH_NODES[None, :])
+    m = lat @ _GH_WEIGHTS
+    v = np.maximum((lat ** 2) @ _GH_WEIGHTS - m ** 2, 1e-18)
+    v_obs = v + np.maximum(m - m ** 2 - v, 0.0) / np.asarray(impressions, dtype=float)
+    a, b = _beta_from_moments(m, v_obs)
+    tail = (1 - interval) / 2
+    point = expit(eta)
+    return np.minimum(betaincinv(a, b, tail), point), np.maximum(betaincinv(a, b, 1 - tail), point)
+
+
 def _beta_from_moments(m: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     m = np.clip(m, 1e-12, 1 - 1e-12)
     v = np.minimum(v, m * (1 - m) * (1 - 1e-9))
@@ -1376,19 +1490,11 @@ def _coverage(model: EngagementModel, k, n, eta, Xh) -> dict:
     Uses the fold models' logits (as in ``oof_``) with the final model's spread; a check of the
     interval's calibration, not of its width alone.
     """
-    from scipy import stats
-
     if len(k) == 0:
         return {"n_posts": 0, "coverage": float("nan"), "nominal": model.interval}
-    s2 = model.heldout_excess_variance_
-    lat = expit(eta[:, None] + np.sqrt(s2) * _GH_NODES[None, :])
-    m = lat @ _GH_WEIGHTS
-    v = np.maximum((lat ** 2) @ _GH_WEIGHTS - m ** 2, 1e-18)
-    v_obs = v + np.maximum(m - m ** 2 - v, 0.0) / n
-    a, b = _beta_from_moments(m, v_obs)
-    tail = (1 - model.interval) / 2
+    low, high = predictive_interval(eta, np.full(len(eta), model.heldout_excess_variance_), n, model.interval)
     r = k / n
-    inside = (r >= stats.beta.ppf(tail, a, b)) & (r <= stats.beta.ppf(1 - tail, a, b))
+    inside = (r >= low) & (r <= high)
     return {"n_posts": int(len(k)), "coverage": float(inside.mean()), "nominal": float(model.interval)}
 
 

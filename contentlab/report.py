@@ -885,7 +885,7 @@ def _load_model(ws, outcome: str, missing: list[str]):
         model, summary = ws.load_model(outcome)
     except ContentlabError:
         return None
-    except Exception as exc:  # the pickled model needs code this install does not have
+    except Exception as exc:  # the saved model needs code this install does not have
         missing.append(f"the saved model could not be loaded ({type(exc).__name__}: {exc}); run contentlab learn")
         return None
     stale = False
@@ -1604,9 +1604,9 @@ def _driver_changes(ws, ctx: _Context, drivers: pd.DataFrame) -> dict:
         return out
     prev = None
     try:
-        import pickle
+        from .modelfile import loads
 
-        prev = _driver_frame(pickle.loads(row[5]).drivers())
+        prev = _driver_frame(loads(row[5]).drivers())
     except Exception:
         try:
             summary = json.loads(row[4])
