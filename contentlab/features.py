@@ -146,9 +146,10 @@ def _word_syllables_raw(word: str) -> int:
 
 @lru_cache(maxsize=1)
 def _pyphen():
-    from textstat.backend.utils._get_pyphen import get_pyphen
+    """pyphen's US English hyphenation dictionary (what textstat uses for words CMU lacks)."""
+    from pyphen import Pyphen
 
-    return get_pyphen("en_US")
+    return Pyphen(lang="en_US")
 
 
 _VADER = None
@@ -254,7 +255,7 @@ def vader_scores(text: str) -> tuple[float, float, float]:
             sentiments.append(0)  # sentiment_valence appends 0 for these
         else:
             sentiments.append(_valence(analyser, words, lowered, i, senti.is_cap_diff))
-    sentiments = analyser._but_check(words, sentiments)
+    sentiments = _but_check(words, sentiments)
     scores = analyser.score_valence(sentiments, text)
     return scores["compound"], scores["pos"], scores["neg"]
 
@@ -319,8 +320,63 @@ def _valence(analyser, words: list[str], lowered: list[str], i: int, is_cap_diff
                     w = lowered[i - 3]
                     if w in negate or "n't" in w:
                         valence = valence * c.N_SCALAR
-                valence = analyser._idioms_check(valence, words, i)
-    return analyser._least_check(valence, words, i)
+                valence = _idioms_check(c, valence, words, i)
+    return _least_check(c, lex, valence, words, i)
+
+
+# The three rules below are NLTK's VADER helpers (SentimentIntensityAnalyzer._but_check,
+# _idioms_check and _least_check in nltk/sentiment/vader.py, NLTK 3.8-3.10), copied so that
+# contentlab calls no private method of another package. NLTK is distributed under the Apache
+# License 2.0 (Copyright (C) 2001-2024 NLTK Project); VADER itself is by C.J. Hutto and
+# E. Gilbert (2014), MIT licence. Same operations in the same order; the tests compare the
+# features with NLTK's public polarity_scores on many texts.
+
+def _but_check(words: list[str], sentiments: list[float]) -> list[float]:
+    """Words before "but" count half, words after it one and a half times."""
+    lowered = [w.lower() for w in words]
+    if "but" in lowered:
+        bi = lowered.index("but")
+        for sidx, sentiment in enumerate(sentiments):
+            if sidx < bi:
+                sentiments[sidx] = sentiment * 0.5
+            elif sidx > bi:
+                sentiments[sidx] = sentiment * 1.5
+    return sentiments
+
+
+def _idioms_check(c, valence: float, words: list[str], i: int) -> float:
+    """Fixed idioms ("the bomb", "cut the mustard") set the valence; "kind of"-style bigrams damp it."""
+    idioms = c.SPECIAL_CASE_IDIOMS
+    onezero = f"{words[i - 1]} {words[i]}"
+    twoonezero = f"{words[i - 2]} {words[i - 1]} {words[i]}"
+    twoone = f"{words[i - 2]} {words[i - 1]}"
+    threetwoone = f"{words[i - 3]} {words[i - 2]} {words[i - 1]}"
+    threetwo = f"{words[i - 3]} {words[i - 2]}"
+    for seq in (onezero, twoonezero, twoone, threetwoone, threetwo):
+        if seq in idioms:
+            valence = idioms[seq]
+            break
+    if len(words) - 1 > i:
+        zeroone = f"{words[i]} {words[i + 1]}"
+        if zeroone in idioms:
+            valence = idioms[zeroone]
+    if len(words) - 1 > i + 1:
+        zeroonetwo = f"{words[i]} {words[i + 1]} {words[i + 2]}"
+        if zeroonetwo in idioms:
+            valence = idioms[zeroonetwo]
+    if threetwo in c.BOOSTER_DICT or twoone in c.BOOSTER_DICT:
+        valence = valence + c.B_DECR
+    return valence
+
+
+def _least_check(c, lex, valence: float, words: list[str], i: int) -> float:
+    """ "least" before a word negates it, except in "at least" and "very least"."""
+    if i > 1 and words[i - 1].lower() not in lex and words[i - 1].lower() == "least":
+        if words[i - 2].lower() != "at" and words[i - 2].lower() != "very":
+            valence = valence * c.N_SCALAR
+    elif i > 0 and words[i - 1].lower() not in lex and words[i - 1].lower() == "least":
+        valence = valence * c.N_SCALAR
+    return valence
 
 
 @lru_cache(maxsize=1)

