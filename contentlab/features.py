@@ -410,11 +410,20 @@ def emotion_counts(text: str) -> tuple[int, int]:
 _NUMBER_WORDS = (
     "one|two|three|four|five|six|seven|eight|nine|ten|eleven|twelve|fifteen|twenty|fifty|hundred"
 )
+# Counts written as words are numbers too ("Five quiet changes"). "one" is left out: "no one",
+# "one of", "the one thing" are rarely counts.
+COUNT_WORDS = (
+    "two|three|four|five|six|seven|eight|nine|ten|eleven|twelve|thirteen|fourteen|fifteen|sixteen|"
+    "seventeen|eighteen|nineteen|twenty|thirty|forty|fifty|sixty|seventy|eighty|ninety|hundred|thousand|"
+    "million|billion|dozen"
+)
+HAS_NUMBER = re.compile(rf"\d|\b(?:{COUNT_WORDS})\b", re.IGNORECASE)
 STRUCTURE_PATTERNS: dict[str, str] = {
     "is_question": r"\?",
     "has_exclamation": r"!",
     "leading_number": rf"^\W*(?:\d|(?:{_NUMBER_WORDS})\b)",
-    "has_digit": r"\d",
+    # a digit or a count written as a word; the column keeps its old name for saved models and tables
+    "has_digit": rf"\d|\b(?:{COUNT_WORDS})\b",
     # "7 ways to ...", "Ten things we ...": a count then a plural noun within two words
     "list_form": rf"^\W*(?:\d+|{_NUMBER_WORDS})\s+(?:[\w'-]+\s+)?[a-z'-]+s\b",
     "second_person": r"\b(?:you|your|yours|yourself|yourselves|you'?re|you'?ll|you'?ve|you'?d)\b",

@@ -125,6 +125,11 @@ CV_MIN_PAIRS = 300
 # (on the archive a 20,000 cap dropped a third of the n-grams seen in 3+ headlines, and cost
 # about 0.7 points of pairwise accuracy).
 WORDING_CAP_FACTOR = 3
+# A draft this many standard deviations (summed over the measured dense features: length,
+# readability, ...) outside the history's range is scored as its channel's typical post; nearer
+# ones are pulled toward it in proportion (our choice: half a standard deviation beyond the
+# history's extremes already describes a headline unlike any it holds, e.g. "Hello world").
+FAR_DISTANCE = 0.5
 DEFAULT_ALPHAS = tuple(float(a) for a in np.geomspace(1e-1, 1e-6, 11))
 # Gauss-Hermite (probabilists') nodes and weights: the mean and variance of a logit-normal rate.
 _GH_NODES, _GH_WEIGHTS = np.polynomial.hermite_e.hermegauss(24)
@@ -833,6 +838,7 @@ class EngagementModel(_Params):
         self.typical_rate_ = float(k.sum() / n.sum())
         self.time_known_share_ = float(np.mean(~np.isnan(frame["local_hour"].to_numpy(float))))
         self.dense_range_ = (D[:, st["dense_idx"]].min(axis=0), D[:, st["dense_idx"]].max(axis=0))
+        self.typical_range_ = typical_range(D[:, st["dense_idx"]])
 
         eta_all = np.asarray(X0 @ glm.coef_[: self.n_shared_]).ravel() + glm.intercept_
         self._fit_typical(frame, D, X0, channel, n)
@@ -974,6 +980,7 @@ class EngagementModel(_Params):
                     D[np.ix_(sel, tcols)] = self.channel_time_means_[c]
         T, Wm = self._text_blocks(fs)
         rows = np.arange(len(frame))
+        D, outside, distance = self._bound_dense(D)
         X = self._matrix(D, T, Wm, channel, rows, self.state_)
         if unknown:
             # Unknown channel (evaluation only): the history's channel mix stands in for it.
@@ -983,6 +990,7 @@ class EngagementModel(_Params):
             for i in np.flatnonzero(~np.isin(channel, self.channels_)):
                 X[i, off: off + len(mix)] = mix
             X = X.tocsr()
+        X, shrink = self._shrink_far(X, channel, distance)
         unseen_n = np.zeros(len(frame))
         unseen_share = np.zeros(len(frame))
         for i, t in enumerate(fs.text):
@@ -991,10 +999,60 @@ class EngagementModel(_Params):
                 miss = sum(tok not in self.term_vocabulary_ for tok in unigrams)
                 unseen_n[i] = miss
                 unseen_share[i] = miss / len(unigrams)
-        lo, hi = self.dense_range_
-        Du = D[:, self.state_["dense_idx"]]
-        outside = ((Du < lo) | (Du > hi)).sum(axis=1)
+        frame["_shrink"] = shrink
+        frame["_distance"] = distance
         return X, channel, unseen_n, unseen_share, outside, frame
+
+    def _bound_dense(self, D: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Clip each dense feature to the range the history showed; say how far outside each draft was.
+
+        A linear effect learned on headlines of 20-120 characters says nothing about one of 2:
+        extrapolating it gave "Hi" a top rank. So every feature's contribution is bounded by
+        what the history's own posts reached. Returns the clipped matrix, the number of features
+        outside the range per draft, and the summed distance outside the range of the measured
+        features (``typical_range_``) in standard deviations.
+        """
+        idx = self.state_["dense_idx"]
+        lo, hi = self.dense_range_
+        Du = D[:, idx]
+        outside = ((Du < lo - 1e-12) | (Du > hi + 1e-12)).sum(axis=1)
+        t_lo, t_hi = getattr(self, "typical_range_", self.dense_range_)
+        excess = np.maximum(t_lo - Du, 0.0) + np.maximum(Du - t_hi, 0.0)
+        distance = (excess / self.state_["scale"]).sum(axis=1)
+        D = D.copy()
+        D[:, idx] = np.clip(Du, lo, hi)
+        return D, outside, distance
+
+    def _typical_rows(self, channel: np.ndarray) -> np.ndarray:
+        """The channel's typical design row per draft (the history's channel mix for an unknown channel)."""
+        mix = None
+        rows = []
+        for c in channel:
+            row = self.typical_design_.get(c)
+            if row is None:
+                if mix is None:
+                    mix = sum(self.channel_share_.get(k, 0.0) * np.asarray(v) for k, v in self.typical_design_.items())
+                row = mix
+            rows.append(row)
+        return np.vstack(rows) if rows else np.zeros((0, self.n_shared_))
+
+    def _shrink_far(self, X, channel: np.ndarray, distance: np.ndarray):
+        """Pull far drafts toward their channel's typical post, in proportion to how far they are.
+
+        A draft ``d`` standard deviations (summed over features) outside the history's range
+        gets the design row ``(1 - w) x + w x_typical`` with ``w = min(1, d / FAR_DISTANCE)``:
+        its prediction, contributions and bootstrap spread move toward the channel's typical
+        post, and a draft the model cannot judge at all is scored as a typical one.
+        """
+        w = np.clip(np.asarray(distance, float) / FAR_DISTANCE, 0.0, 1.0)
+        if not np.any(w > 0):
+            return X, w
+        far = np.flatnonzero(w > 0)
+        typical = self._typical_rows(channel[far])
+        X = sp.csr_matrix(X, dtype=float).tolil()
+        for r, i in enumerate(far):
+            X[i] = (1.0 - w[i]) * X[i].toarray().ravel() + w[i] * typical[r]
+        return X.tocsr(), w
 
     def decision_function(self, drafts: pd.DataFrame) -> np.ndarray:
         """Log-odds of the rate for each headline (no experiment effect: a new post)."""
@@ -1022,9 +1080,13 @@ class EngagementModel(_Params):
 
         Columns: ``predicted_rate, rate_low, rate_high, expected_low,
         expected_high, logit, logit_se, impressions_assumed,
-        unseen_term_share, n_unseen_terms, n_outside_range, far_from_history``.
+        unseen_term_share, n_unseen_terms, n_outside_range, far_from_history,
+        distance_from_history, shrink_to_typical``: each dense feature is
+        bounded to the history's range, and a draft outside it is pulled toward
+        its channel's typical post (``shrink_to_typical`` is the weight, 1 =
+        scored as the typical post; see ``_shrink_far``).
         """
-        X, channel, unseen_n, unseen_share, outside, _ = self._draft_design(drafts, allow_unknown_channel)
+        X, channel, unseen_n, unseen_share, outside, prepared = self._draft_design(drafts, allow_unknown_channel)
         coef = self.glm_.coef_[: self.n_shared_]
         eta = np.asarray(X @ coef).ravel() + self.glm_.intercept_
         if self.boot_coef_.shape[0] >= 2:
@@ -1032,10 +1094,13 @@ class EngagementModel(_Params):
             param_var = np.var(eb, axis=1, ddof=1)
         else:
             param_var = np.zeros(len(eta))
-        return pd.DataFrame(
+        out = pd.DataFrame(
             self.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions),
             index=drafts.index,
         )
+        out["distance_from_history"] = prepared["_distance"].to_numpy(float)
+        out["shrink_to_typical"] = prepared["_shrink"].to_numpy(float)
+        return out
 
     def interval_columns(self, eta, param_var, unseen_n, unseen_share, outside, channel,
                          impressions=None) -> dict[str, np.ndarray]:
@@ -1422,6 +1487,22 @@ def _term_groups(T, Wm, names, offset, n_shared) -> tuple[sp.csr_matrix, np.ndar
     keep = p_t_given_c >= TERM_GROUP_TIED
     A = sp.csr_matrix((p_c_given_t[keep], (M.row[keep], M.col[keep] + offset)), shape=(cand.size, n_shared))
     return A, cand
+
+
+def typical_range(D: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per dense column, the range a draft must stay inside to count as "like the history".
+
+    Measured features (length, word length, readability, time) use the history's full
+    range: a 9-character draft beside a history whose shortest post has 19 is outside it.
+    Flags and small counts (whole numbers spanning at most 10) are never "far": a third
+    negative word where the history had at most two is bounded by the clipping, but the
+    headline is still an ordinary one (their range is infinite here).
+    """
+    if D.shape[0] == 0:
+        return np.zeros(D.shape[1]), np.zeros(D.shape[1])
+    lo, hi = D.min(axis=0), D.max(axis=0)
+    counts = np.all(np.isclose(D, np.round(D)), axis=0) & (hi - lo <= 10)
+    return np.where(counts, -np.inf, lo), np.where(counts, np.inf, hi)
 
 
 def predictive_interval(eta, s2, impressions, interval: float) -> tuple[np.ndarray, np.ndarray]:

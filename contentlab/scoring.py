@@ -384,12 +384,14 @@ class _Engine:
             X, channel, unseen_n, unseen_share, outside, prepared = m._draft_design(frame)
         finally:
             feat.n_jobs = old_jobs
+        shrink = prepared["_shrink"].to_numpy(float) if "_shrink" in prepared else np.zeros(len(frame))
         X = X.tocsr()
         eta = np.asarray(X @ self.coef).ravel() + self.intercept
         draws = None
         if self.boot_t is not None:
             draws = np.asarray(X @ self.boot_t) + self.boot_b
         pred = self._predictions(eta, draws, channel, unseen_n, unseen_share, outside, impressions, frame.index)
+        pred["shrink_to_typical"] = shrink
         from .features import clean_headline
 
         texts = [clean_headline(t) for t in frame["headline"].tolist()]
@@ -974,7 +976,10 @@ def score_drafts(
 
     # Reasons.
     reasons = _reason_rows(eng, d, work)
-    cols["reasons"] = ["; ".join(r["text"] for r in rows) for rows in reasons]
+    shrink = np.asarray(pred["shrink_to_typical"], dtype=float) if "shrink_to_typical" in pred else \
+        np.zeros(len(work))
+    cols["reasons"] = ["; ".join(t for t in [_far_reason(w)] + [r["text"] for r in rows] if t)
+                       for w, rows in zip(shrink, reasons)]
 
     # Distance from history.
     share = np.asarray(pred["unseen_term_share"], dtype=float)
@@ -1047,6 +1052,17 @@ def _planned_times(work: pd.DataFrame) -> list[str]:
             text += " (no hour given: channel's usual time)"
         out.append(text)
     return out
+
+
+def _far_reason(shrink: float) -> str:
+    """Why a draft unlike the history scores near its channel's typical post."""
+    if shrink >= 0.999:
+        return ("unlike any headline in your history (length or wording far outside its usual range), so it is "
+                "scored as the channel's typical post")
+    if shrink > 0:
+        return (f"partly outside your history's usual range, so its score is pulled {shrink:.0%} of the way toward "
+                "the channel's typical post")
+    return ""
 
 
 def _distance_note(share: float, n_unseen: int, outside: int, far: bool) -> str:

@@ -201,7 +201,10 @@ def test_featurizer_cleans_markup_before_features():
 
 @pytest.mark.parametrize("text, flags", [
     ("7 ways to use the library", {"leading_number": 1, "list_form": 1, "has_digit": 1}),
-    ("Ten things you should know", {"leading_number": 1, "list_form": 1, "second_person": 1}),
+    # a count written as a word is a number (issue 10, item 3)
+    ("Ten things you should know", {"leading_number": 1, "list_form": 1, "second_person": 1, "has_digit": 1}),
+    ("Five quiet changes", {"leading_number": 1, "list_form": 1, "has_digit": 1}),
+    ("Why no one reads the fine print", {}),
     ("Is the library open?", {"is_question": 1}),
     ("Open late tonight!", {"has_exclamation": 1}),
     ('Readers say "wonderful"', {"has_quote": 1}),
