@@ -443,6 +443,36 @@ _STRUCTURE_REGEX = [
 ]
 
 
+# Word classes of how a headline addresses its reader (Gligoric et al., PLOS ONE 2023, found
+# pronoun classes to matter on headline A/B tests). Closed lists, written here, so no lexicon
+# licence is involved.
+_FIRST_SINGULAR = frozenset("i me my mine myself i'm i've i'd i'll".split())
+_FIRST_PLURAL = frozenset("we us our ours ourselves we're we've we'd we'll".split())
+_THIRD_PERSON = frozenset("he she they him her them his hers their theirs himself herself themselves "
+                          "he's she's they're they've".split())
+_THIS_HERE = frozenset("this these here here's".split())
+_NEGATIONS = frozenset("not no never nothing nobody none nor without don't can't won't isn't aren't doesn't "
+                       "didn't wasn't weren't shouldn't wouldn't couldn't".split())
+_QUESTION_WORDS = frozenset("what why how who when where which".split())
+_SUPERLATIVES = frozenset("best worst most least greatest biggest smallest".split())
+STYLE_COLUMNS = ["n_first_singular", "n_first_plural", "n_third_person", "n_this_here", "n_negations",
+                 "starts_with_question_word", "n_superlatives"]
+
+
+def style_row(text: str) -> tuple[float, ...]:
+    """Pronoun classes and other word-class counts of one clean headline, in ``STYLE_COLUMNS`` order."""
+    toks = [w.replace("’", "'") for w in words_of(text.lower())]
+    return (
+        float(sum(t in _FIRST_SINGULAR for t in toks)),
+        float(sum(t in _FIRST_PLURAL for t in toks)),
+        float(sum(t in _THIRD_PERSON for t in toks)),
+        float(sum(t in _THIS_HERE for t in toks)),
+        float(sum(t in _NEGATIONS for t in toks)),
+        float(bool(toks) and toks[0] in _QUESTION_WORDS),
+        float(sum(t in _SUPERLATIVES for t in toks)),
+    )
+
+
 def structure_row(text: str) -> tuple[float, ...]:
     """Structure flags and counts of one clean headline, in ``STRUCTURE_COLUMNS`` order.
 
@@ -454,7 +484,7 @@ def structure_row(text: str) -> tuple[float, ...]:
     flags = [1.0 if regex.search(lower if on_lower else text) else 0.0 for regex, on_lower in _STRUCTURE_REGEX]
     flags.append(float(len(_ALLCAPS.findall(text))))
     flags.append(float(len(_EMOJI.findall(text))))
-    return tuple(flags)
+    return tuple(flags) + style_row(text)
 
 
 def structure_features(texts: pd.Series) -> pd.DataFrame:
@@ -562,9 +592,44 @@ TEXT_COLUMNS = [
     "n_positive_words",
     "n_negative_words",
 ]
-STRUCTURE_COLUMNS = list(STRUCTURE_PATTERNS) + ["n_allcaps_words", "n_emoji"]
+STRUCTURE_COLUMNS = list(STRUCTURE_PATTERNS) + ["n_allcaps_words", "n_emoji"] + STYLE_COLUMNS
 TIME_COLUMNS = ["hour_sin", "hour_cos", "hour_sin2", "hour_cos2", "weekday_sin", "weekday_cos", "time_known"]
 DENSE_COLUMNS = TEXT_COLUMNS + STRUCTURE_COLUMNS + TIME_COLUMNS
+
+# What every table and sentence calls each column (never the column name itself).
+FEATURE_LABELS: dict[str, str] = {
+    "n_chars": "length",
+    "n_words": "number of words",
+    "mean_word_length": "word length",
+    "flesch_reading_ease": "readability",
+    "flesch_kincaid_grade": "reading grade",
+    "vader_compound": "overall sentiment",
+    "vader_positive": "positive tone",
+    "vader_negative": "negative tone",
+    "n_positive_words": "positive words",
+    "n_negative_words": "negative words",
+    "is_question": "is a question",
+    "has_exclamation": "has an exclamation mark",
+    "leading_number": "starts with a number",
+    "has_digit": "has a number (digits or a word like 'five')",
+    "list_form": "is a list (\"7 ways ...\")",
+    "second_person": "speaks to the reader (you)",
+    "has_quote": "has a quotation",
+    "split_colon_dash": "has a colon or dash",
+    "n_allcaps_words": "words in capitals",
+    "n_emoji": "emoji",
+    "n_first_singular": "I, me, my",
+    "n_first_plural": "we, us, our",
+    "n_third_person": "he, she, they",
+    "n_this_here": "this, these, here",
+    "n_negations": "negations (not, no, never)",
+    "starts_with_question_word": "starts with what, why, how ...",
+    "n_superlatives": "superlatives (best, most ...)",
+    "posting time": "posting time",
+    "topic terms": "topic words",
+    "wording": "wording",
+}
+
 
 
 def text_features(text: str) -> tuple[float, ...]:

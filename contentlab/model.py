@@ -54,7 +54,7 @@ import scipy.sparse as sp
 from scipy.special import expit
 
 from .errors import ContentlabError
-from .features import DENSE_COLUMNS, TIME_COLUMNS, HeadlineFeaturizer, clean_headline, topic_tokens
+from .features import DENSE_COLUMNS, FEATURE_LABELS, TIME_COLUMNS, HeadlineFeaturizer, clean_headline, topic_tokens
 
 __all__ = [
     "EngagementModel",
@@ -81,35 +81,18 @@ DEFAULT_DENSE: tuple[str, ...] = (
     "split_colon_dash",
     "n_allcaps_words",
     "n_emoji",
+    "n_first_singular",
+    "n_first_plural",
+    "n_third_person",
+    "n_this_here",
+    "n_negations",
+    "starts_with_question_word",
+    "n_superlatives",
 )
 HOUR_COLUMNS = ("hour_sin", "hour_cos", "hour_sin2", "hour_cos2")
 WEEKDAY_COLUMNS = ("weekday_sin", "weekday_cos")
 
-FEATURE_LABELS: dict[str, str] = {
-    "n_chars": "length",
-    "n_words": "number of words",
-    "mean_word_length": "word length",
-    "flesch_reading_ease": "readability",
-    "flesch_kincaid_grade": "reading grade",
-    "vader_compound": "overall sentiment",
-    "vader_positive": "positive tone",
-    "vader_negative": "negative tone",
-    "n_positive_words": "positive words",
-    "n_negative_words": "negative words",
-    "is_question": "is a question",
-    "has_exclamation": "has an exclamation mark",
-    "leading_number": "starts with a number",
-    "has_digit": "has a number",
-    "list_form": "is a list (\"7 ways ...\")",
-    "second_person": "speaks to the reader (you)",
-    "has_quote": "has a quotation",
-    "split_colon_dash": "has a colon or dash",
-    "n_allcaps_words": "words in capitals",
-    "n_emoji": "emoji",
-    "posting time": "posting time",
-    "topic terms": "topic words",
-    "wording": "wording",
-}
+# Plain labels live beside the features (features.FEATURE_LABELS); kept importable from here.
 
 # Smallest history learn accepts. Forward-chaining CV needs n_folds + 1 time blocks with posts in
 # each; below ~60 posts a held-out block has fewer than 15 posts and its deviance says little; and
@@ -368,6 +351,10 @@ class EngagementModel(_Params):
         Show a progress bar on stderr.
     n_jobs : int or None, default 1
         Processes for featurising large histories (passed to the featurizer).
+    level : {"recent", "history"}, default "recent"
+        "recent": each channel's baseline follows its recent level, with a half-life chosen
+        on the time folds (see :func:`recent_levels`); rates drift, and a history-wide level
+        predicts later posts too high when they fall. "history": the fitted GLM's own level.
 
     Attributes
     ----------
@@ -414,6 +401,7 @@ class EngagementModel(_Params):
         random_state: int = 0,
         progress: bool = False,
         n_jobs: int | None = 1,
+        level: str = "recent",
     ) -> None:
         self.dense_features = dense_features
         self.use_time = use_time
@@ -434,6 +422,7 @@ class EngagementModel(_Params):
         self.random_state = random_state
         self.progress = progress
         self.n_jobs = n_jobs
+        self.level = level
 
     # ------------------------------------------------------------------ checks
     def _check_params(self) -> tuple[list[str], np.ndarray]:
@@ -450,6 +439,8 @@ class EngagementModel(_Params):
                 raise ContentlabError(f"{name} must be True or False; got {getattr(self, name)!r}")
         if self.wording not in ("ngrams", "function_words", "none"):
             raise ContentlabError(f"wording must be 'ngrams', 'function_words' or 'none'; got {self.wording!r}")
+        if self.level not in ("recent", "history"):
+            raise ContentlabError(f"level must be 'recent' or 'history'; got {self.level!r}")
         if self.cv_metric not in ("auto", "deviance", "pairwise"):
             raise ContentlabError(f"cv_metric must be 'auto', 'deviance' or 'pairwise'; got {self.cv_metric!r}")
         _check_int("min_df", self.min_df, 1)
@@ -835,12 +826,26 @@ class EngagementModel(_Params):
         E = sp.csc_matrix(T[:, st["term_idx"]])[:, self.term_group_index_]
         C = sp.csr_matrix((np.ones(len(codes)), (np.arange(len(codes)), codes)), shape=(len(codes), len(uniq)))
         self.term_clusters_ = np.diff(sp.csr_matrix(E.T @ C).indptr)
+        self.term_varied_tests_ = _varied_tests(E, experiment, in_exp)
+        self.term_weeks_outside_tests_ = _varied_tests(E, periods, ~in_exp, varied=False)
         self.typical_rate_ = float(k.sum() / n.sum())
         self.time_known_share_ = float(np.mean(~np.isnan(frame["local_hour"].to_numpy(float))))
         self.dense_range_ = (D[:, st["dense_idx"]].min(axis=0), D[:, st["dense_idx"]].max(axis=0))
         self.typical_range_ = typical_range(D[:, st["dense_idx"]])
 
         eta_all = np.asarray(X0 @ glm.coef_[: self.n_shared_]).ravel() + glm.intercept_
+        # Levels that follow drift: each channel's recent level, by a half-life chosen on time folds.
+        if self.level == "recent":
+            level = recent_levels(eta_all, k, n, channel, frame["_period"].to_numpy(), blocks, self.n_folds)
+        else:
+            level = (float("inf"), {}, pd.DataFrame(columns=["half_life_weeks", "deviance"]))
+        self.level_half_life_, self.level_offsets_, self.level_cv_ = level
+        chan_off = len(st["dense_idx"]) + len(st["term_idx"]) + len(st["word_idx"])
+        shift = np.array([self.level_offsets_.get(c, 0.0) for c in st["channels"]])
+        self.glm_.coef_[chan_off: chan_off + len(shift)] += shift
+        if boot.shape[0]:
+            boot[:, chan_off: chan_off + len(shift)] += shift.astype(boot.dtype)
+        self.logit_spread_ = float(np.var(eta_all))
         self._fit_typical(frame, D, X0, channel, n)
 
         # Held-out predictions of the chosen alpha.
@@ -1095,7 +1100,8 @@ class EngagementModel(_Params):
         else:
             param_var = np.zeros(len(eta))
         out = pd.DataFrame(
-            self.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions),
+            self.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions,
+                                  shrink=prepared["_shrink"].to_numpy(float)),
             index=drafts.index,
         )
         out["distance_from_history"] = prepared["_distance"].to_numpy(float)
@@ -1103,7 +1109,7 @@ class EngagementModel(_Params):
         return out
 
     def interval_columns(self, eta, param_var, unseen_n, unseen_share, outside, channel,
-                         impressions=None) -> dict[str, np.ndarray]:
+                         impressions=None, shrink=None) -> dict[str, np.ndarray]:
         """``predict_frame``'s columns from a draft design's logits and bootstrap variance.
 
         The one place the predictive interval is computed; scoring's batch path
@@ -1115,6 +1121,10 @@ class EngagementModel(_Params):
         unseen_n = np.asarray(unseen_n, dtype=float)
         # A word the model has never seen has an unknown effect: as much variance as a typical term's.
         var_se = np.asarray(param_var, dtype=float) + unseen_n * self.term_effect_var_
+        if shrink is not None:
+            # A draft scored toward the typical post because the model cannot judge it: its rate
+            # could be anywhere the history's posts were, so that spread is added in proportion.
+            var_se = var_se + np.asarray(shrink, dtype=float) * getattr(self, "logit_spread_", 0.0)
         logit_se = np.sqrt(var_se)
         if impressions is None:
             fallback = float(np.median(list(self.channel_impressions_.values())))
@@ -1489,6 +1499,53 @@ def _term_groups(T, Wm, names, offset, n_shared) -> tuple[sp.csr_matrix, np.ndar
     return A, cand
 
 
+# Candidate half-lives (weeks) of the channel level; inf = the whole history weighs alike.
+LEVEL_HALF_LIVES = (2.0, 4.0, 8.0, 16.0, 32.0, np.inf)
+
+
+def recent_levels(eta, k, n, channel, periods, blocks, n_folds: int,
+                  half_lives: Sequence[float] = LEVEL_HALF_LIVES) -> tuple[float, dict, pd.DataFrame]:
+    """Each channel's recent level on the log-odds, relative to the model's own prediction.
+
+    Rates drift (on the archive they fall by a third over a year), so a model whose level is the
+    history's average predicts later posts too high. Per channel, the offset ``c`` solves
+    ``sum_i w_i n_i expit(eta_i + c) = sum_i w_i k_i`` with weights ``w_i = 0.5 ** (age_i / h)``
+    (age in weeks before the history's last week). The half-life ``h`` is chosen on the time
+    folds: the offsets are learned from the blocks before each fold and judged by the binomial
+    deviance of the fold's posts (``inf``, no decay, is a candidate and wins when there is no
+    drift). Returns ``(h, {channel: offset}, table of deviance per h)``.
+    """
+    from .evaluation import recenter_logits
+    from .stats import binomial_deviance
+
+    eta = np.asarray(eta, float)
+    week = pd.to_datetime(pd.Series(periods)).to_numpy().astype("datetime64[D]").astype(np.int64) / 7.0
+    channel = np.asarray(channel, dtype=object)
+
+    def offsets(rows, now, h):
+        w = np.ones(rows.size) if not np.isfinite(h) else 0.5 ** ((now - week[rows]) / h)
+        shifted = recenter_logits(eta[rows], k[rows] * w, n[rows] * w, channel[rows])
+        per_row = shifted - eta[rows]
+        return {c: float(per_row[channel[rows] == c][0]) for c in pd.unique(channel[rows])}
+
+    rows_cv = []
+    for h in half_lives:
+        total = 0.0
+        for f in range(1, n_folds + 1):
+            tr = np.flatnonzero(blocks < f)
+            te = np.flatnonzero(blocks == f)
+            if tr.size == 0 or te.size == 0:
+                continue
+            off = offsets(tr, week[tr].max(), h)
+            c = np.array([off.get(ch, 0.0) for ch in channel[te]])
+            total += binomial_deviance(k[te], n[te], np.clip(expit(eta[te] + c), 1e-12, 1 - 1e-12))
+        rows_cv.append({"half_life_weeks": float(h), "deviance": total})
+    table = pd.DataFrame(rows_cv)
+    best = float(table.loc[table["deviance"].idxmin(), "half_life_weeks"])
+    every = np.arange(len(eta))
+    return best, offsets(every, week.max(), best), table
+
+
 def typical_range(D: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Per dense column, the range a draft must stay inside to count as "like the history".
 
@@ -1528,6 +1585,26 @@ def predictive_interval(eta, s2, impressions, interval: float) -> tuple[np.ndarr
     tail = (1 - interval) / 2
     point = expit(eta)
     return np.minimum(betaincinv(a, b, tail), point), np.maximum(betaincinv(a, b, 1 - tail), point)
+
+
+def _varied_tests(E, experiment: np.ndarray, in_exp: np.ndarray, varied: bool = True) -> np.ndarray:
+    """Per word (column of the 0/1 matrix ``E``): in how many A/B tests some arms had it and others not.
+
+    Only there does a test tell what the word did; a word every arm of a test shares says
+    nothing about it (the test's own level absorbs it). With ``varied=False``: in how many
+    groups (e.g. weeks of ordinary posts) the word appears at all.
+    """
+    rows = np.flatnonzero(in_exp)
+    if rows.size == 0 or E.shape[1] == 0:
+        return np.zeros(E.shape[1], dtype=np.int64)
+    codes, uniq = pd.factorize(pd.Series(experiment[rows]).astype(str))
+    G = sp.csr_matrix((np.ones(rows.size), (np.arange(rows.size), codes)), shape=(rows.size, len(uniq)))
+    with_word = sp.csr_matrix(sp.csr_matrix(E)[rows].T @ G)  # arms with the word, per test
+    arms = np.asarray(G.sum(axis=0)).ravel()
+    if varied:
+        with_word.data = (with_word.data < arms[with_word.indices]).astype(float)
+    with_word.eliminate_zeros()
+    return np.diff(with_word.indptr).astype(np.int64)
 
 
 def _beta_from_moments(m: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:

@@ -390,18 +390,21 @@ class _Engine:
         draws = None
         if self.boot_t is not None:
             draws = np.asarray(X @ self.boot_t) + self.boot_b
-        pred = self._predictions(eta, draws, channel, unseen_n, unseen_share, outside, impressions, frame.index)
+        pred = self._predictions(eta, draws, channel, unseen_n, unseen_share, outside, impressions, frame.index,
+                                 shrink)
         pred["shrink_to_typical"] = shrink
         from .features import clean_headline
 
         texts = [clean_headline(t) for t in frame["headline"].tolist()]
         return _Design(X, channel, eta, draws, unseen_n, unseen_share, outside, texts, pred)
 
-    def _predictions(self, eta, draws, channel, unseen_n, unseen_share, outside, impressions, index) -> pd.DataFrame:
+    def _predictions(self, eta, draws, channel, unseen_n, unseen_share, outside, impressions, index,
+                     shrink=None) -> pd.DataFrame:
         """predict_frame's numbers from one design pass (same formulas as EngagementModel.predict_frame)."""
         param_var = np.var(draws, axis=1, ddof=1) if draws is not None else np.zeros(len(eta))
         return _Columns(
-            self.model.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions),
+            self.model.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions,
+                                        shrink=shrink),
             index,
         )
 
@@ -563,7 +566,7 @@ def _feature_phrase(name: str, value: float | None, when: str | None) -> str:
     if name == "posting time":
         return f"posting time ({when})" if when else "posting time (the channel's usual time)"
     if value is None:
-        from .model import FEATURE_LABELS
+        from .features import FEATURE_LABELS
 
         return FEATURE_LABELS.get(name, name)
     if name == "n_chars":
@@ -586,7 +589,7 @@ def _feature_phrase(name: str, value: float | None, when: str | None) -> str:
         return _plural(value, "emoji").replace("emojis", "emoji")
     if name == "posting time":
         return f"posting time ({when})" if when else "posting time (the channel's usual time)"
-    from .model import FEATURE_LABELS
+    from .features import FEATURE_LABELS
 
     return FEATURE_LABELS.get(name, name)
 

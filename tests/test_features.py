@@ -204,7 +204,10 @@ def test_featurizer_cleans_markup_before_features():
     # a count written as a word is a number (issue 10, item 3)
     ("Ten things you should know", {"leading_number": 1, "list_form": 1, "second_person": 1, "has_digit": 1}),
     ("Five quiet changes", {"leading_number": 1, "list_form": 1, "has_digit": 1}),
-    ("Why no one reads the fine print", {}),
+    ("Why no one reads the fine print", {"n_negations": 1, "starts_with_question_word": 1}),
+    ("We asked them: is this our best year?", {"is_question": 1, "split_colon_dash": 1, "n_first_plural": 2,
+                                               "n_third_person": 1, "n_this_here": 1, "n_superlatives": 1}),
+    ("I can't believe my luck", {"n_first_singular": 2, "n_negations": 1}),
     ("Is the library open?", {"is_question": 1}),
     ("Open late tonight!", {"has_exclamation": 1}),
     ('Readers say "wonderful"', {"has_quote": 1}),

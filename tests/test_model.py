@@ -80,7 +80,7 @@ def test_unpenalised_limit_matches_statsmodels_glm():
     posts = add_local_time(posts, "UTC")
 
     model = EngagementModel(dense_features=dense, use_time=False, terms=False, wording="none",
-                            alphas=[1e-12], dense_alpha=1e-12, n_bootstrap=0).fit(posts)
+                            alphas=[1e-12], dense_alpha=1e-12, n_bootstrap=0, level="history").fit(posts)
     st = model.state_
     ours = model.glm_.coef_[: len(dense)] / st["scale"]
 
@@ -140,13 +140,51 @@ def test_demo_validation_beats_baselines(demo_model):
 def test_drivers_table_is_consistent(demo_model):
     dr = demo_model.drivers()
     assert list(dr["rank"]) == list(range(1, len(dr) + 1))
-    assert (dr["relative_change"].abs().diff().dropna() <= 1e-12).all()  # ranked by size
+    # Issue 10, item 3: writing style, then posting time, then topic words; inside each group
+    # the clear effects first, then by sureness (|effect| / bootstrap standard error), not by size.
+    order = {"writing style": 0, "posting time": 1, "topic words": 2}
+    assert (dr["group"].map(order).diff().dropna() >= 0).all()
+    for _, part in dr.groupby("group", sort=False):
+        key = list(zip(part["uncertain"].astype(int), -part["sureness"]))
+        assert key == sorted(key)
+    # plain labels everywhere, never a column name
+    assert not dr["label"].str.contains("_").any()
+    assert "has a number (digits or a word like 'five')" in set(dr["label"])
     spans = (dr["low"] <= 0) & (dr["high"] >= 0)
     assert (spans == dr["uncertain"]).all()
     assert (dr["low"] <= dr["high"]).all()
     assert any("not proof of cause" in c for c in dr.attrs["cautions"])
     assert any("truthful" in c for c in dr.attrs["cautions"])
     assert dr["sentence"].str.contains("interval").all()
+
+
+def test_topic_words_need_support_and_tied_words_merge(demo_model):
+    from contentlab.drivers import MIN_TERM_CLUSTERS, MIN_TERM_TESTS, SUPPORT_RULE
+
+    dr = demo_model.drivers(top_terms=200)
+    terms = dr[dr["kind"] == "topic term"]
+    assert SUPPORT_RULE in dr.attrs["cautions"]
+    idx = {demo_model.term_names_[i]: r for r, i in enumerate(demo_model.term_group_index_)}
+    from contentlab.drivers import supported_terms
+
+    keep = set(supported_terms(demo_model).tolist())
+    for r in keep:
+        assert (demo_model.term_varied_tests_[r] >= MIN_TERM_TESTS
+                or demo_model.term_weeks_outside_tests_[r] >= MIN_TERM_CLUSTERS)
+    # 'laser' and 'cutter' always come together in the demo: one driver, in reading order.
+    assert "term: laser cutter" in set(terms["driver"])
+    assert not {"term: laser", "term: cutter"} & set(terms["driver"])
+    assert idx  # the model kept candidate words at all
+
+
+def test_within_experiments_note_matches_the_marks(demo_model):
+    dr = demo_model.drivers()
+    note = [c for c in dr.attrs["cautions"] if "rest on" in c]
+    marks = set(dr["evidence"])
+    if "within experiments" in marks or any(m.startswith("mixed") for m in marks):
+        assert len(note) == 1
+    else:
+        assert note == []
 
 
 def test_time_cv_never_sees_the_future(demo_model):
