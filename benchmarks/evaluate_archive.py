@@ -14,7 +14,8 @@ training period's weeks (fitted on the weeks before).
 Printed per cut and model:
 
 * pairwise accuracy on significant (|z| >= 1.96) same-image arm pairs, with a
-  95% interval from a bootstrap over whole experiments;
+  95% interval from a bootstrap over whole experiments; beside it the same on
+  the pairs whose two headlines differ (identical headlines can only tie);
 * within-test deviance gain over each test's mean (each test's level refitted);
 * calibration of predicted against observed rate by decile of the prediction,
   and the ratio of mean predicted to observed rate on the later posts;
@@ -206,6 +207,7 @@ def figures(test, eta, low=None, high=None, rank=None) -> dict:
     cal = calibration_table(p, k, n, n_bins=10)
     out = {
         "pairwise": pw,
+        "distinct": distinct_pair_accuracy(test, eta if rank is None else rank),
         "within_gain": 1.0 - d_m / d_b,
         "calibration": cal,
         "pred_over_obs": float((p * n).sum() / k.sum()),
@@ -217,12 +219,44 @@ def figures(test, eta, low=None, high=None, rank=None) -> dict:
     return out
 
 
+def distinct_pair_accuracy(test, score, n_boot: int = 2000, seed: int = 0) -> dict:
+    """Pairwise accuracy on significant same-image pairs whose two headlines differ.
+
+    Two arms with the same (cleaned) headline and image can only differ by things outside the
+    headline, so no headline model can order them: every model scores 0.5 there. Leaving them
+    out shows what the headline explains. Interval: percentile bootstrap over experiments.
+    """
+    import numpy as np
+
+    from contentlab.features import clean_headline
+
+    i, j, z = _pairs(test)
+    text = test["headline"].map(clean_headline).to_numpy()
+    keep = (np.abs(z) >= 1.96) & (text[i] != text[j])
+    i, j, z = i[keep], j[keep], z[keep]
+    s = np.asarray(score, float)
+    diff = s[i] - s[j]
+    correct = np.where(diff == 0, 0.5, (np.sign(diff) == np.sign(z)).astype(float))
+    exp = test["experiment_id"].astype(str).to_numpy()[i]
+    codes, uniq = np.unique(exp, return_inverse=True)
+    sums = np.bincount(uniq, weights=correct, minlength=len(codes))
+    counts = np.bincount(uniq, minlength=len(codes)).astype(float)
+    rng = np.random.default_rng(seed)
+    draws = rng.integers(0, len(codes), size=(n_boot, len(codes)))
+    boot = sums[draws].sum(axis=1) / np.maximum(counts[draws].sum(axis=1), 1.0)
+    return {"accuracy": float(correct.mean()), "n_pairs": int(len(correct)), "n_clusters": int(len(codes)),
+            "ci_low": float(np.percentile(boot, 2.5)), "ci_high": float(np.percentile(boot, 97.5))}
+
+
 def print_figures(name: str, f: dict) -> None:
     pw = f["pairwise"]
+    dp = f["distinct"]
     cov = "n/a (no interval)" if f["coverage"] != f["coverage"] else f"{f['coverage']:.3f}"
     print(f"  {name:<22} pairwise {pw['accuracy']:.3f} [{pw['ci_low']:.3f}, {pw['ci_high']:.3f}] "
-          f"({pw['n_pairs']} pairs, {pw['n_clusters']} tests)  within-test gain {f['within_gain']:+.2%}  "
-          f"predicted/observed {f['pred_over_obs']:.2f}  90% coverage {cov}")
+          f"({pw['n_pairs']} pairs, {pw['n_clusters']} tests); distinct headlines {dp['accuracy']:.3f} "
+          f"[{dp['ci_low']:.3f}, {dp['ci_high']:.3f}] ({dp['n_pairs']} pairs)")
+    print(f"  {'':<22} within-test gain {f['within_gain']:+.2%}  predicted/observed {f['pred_over_obs']:.2f}  "
+          f"90% coverage {cov}")
     cal = f["calibration"]
     print("  " + " " * 22 + " deciles pred->obs (%): " + "  ".join(
         f"{p * 100:.2f}->{o * 100:.2f}" for p, o in zip(cal["mean_predicted"], cal["observed_rate"])))

@@ -190,7 +190,7 @@ def format_drivers(frame, model, cautions: list[str]) -> str:
 # ----------------------------------------------------------------------------- evaluate
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
-    from ..evaluation import evaluate_files
+    from ..holdout import evaluate_files
     from ..workspace import check_timezone
 
     check_timezone(args.timezone)
