@@ -178,9 +178,9 @@ def driver_table(model: "EngagementModel", *, top_terms: int = 15, min_term_post
     r0 = model.typical_rate_
     base = logit(r0)
     rel = lambda e: expit(base + e) / r0 - 1.0  # noqa: E731
-    from scipy.stats import norm
+    from scipy.special import ndtri
 
-    z = float(norm.ppf(0.5 + model.interval / 2))
+    z = float(ndtri(0.5 + model.interval / 2))
     rows = []
     sds: list[float] = []
     for driver, kind, step, effect, bvals, n_posts, head, sh in records:

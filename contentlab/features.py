@@ -163,12 +163,11 @@ _VADER_PUNC_LIST: frozenset[str] = frozenset()
 def _vader():
     global _VADER, _VADER_TOKENS, _VADER_PUNC_LIST
     if _VADER is None:
-        from .langdata import ensure_language_data
+        # contentlab's own copy of NLTK's VADER rules (contentlab/vader.py): importing nltk
+        # itself takes seconds, too slow for scoring one draft.
+        from .vader import analyzer
 
-        ensure_language_data()
-        from nltk.sentiment.vader import SentimentIntensityAnalyzer
-
-        analyser = SentimentIntensityAnalyzer()
+        analyser = analyzer()
         _VADER_TOKENS = frozenset(analyser.lexicon)
         _VADER_PUNC_LIST = frozenset(analyser.constants.PUNC_LIST)
         _VADER = analyser
@@ -506,19 +505,54 @@ def _stem(word: str) -> str:
     return _stemmer().stem(word)
 
 
+class _Stemmer:
+    """The Snowball English stemmer of the ``snowballstemmer`` package (BSD-3-Clause), light to import."""
+
+    def __init__(self):
+        import snowballstemmer
+
+        self._stemmer = snowballstemmer.stemmer("english")
+
+    def stem(self, word: str) -> str:
+        return self._stemmer.stemWord(word)
+
+
 @lru_cache(maxsize=1)
 def _stemmer():
-    from nltk.stem.snowball import SnowballStemmer
+    return _Stemmer()
 
-    return SnowballStemmer("english")
+
+# scikit-learn's ENGLISH_STOP_WORDS (BSD-3-Clause; the list of the Glasgow Information Retrieval
+# Group), copied so that featurising a draft does not import scikit-learn (seconds on a small
+# machine). tests/test_features.py checks it still equals scikit-learn's.
+ENGLISH_STOP_WORDS = frozenset((
+    "a about above across after afterwards again against all almost alone along already also although "
+    "always am among amongst amoungst amount an and another any anyhow anyone anything anyway anywhere "
+    "are around as at back be became because become becomes becoming been before beforehand behind being "
+    "below beside besides between beyond bill both bottom but by call can cannot cant co con could "
+    "couldnt cry de describe detail do done down due during each eg eight either eleven else elsewhere "
+    "empty enough etc even ever every everyone everything everywhere except few fifteen fifty fill find "
+    "fire first five for former formerly forty found four from front full further get give go had has "
+    "hasnt have he hence her here hereafter hereby herein hereupon hers herself him himself his how "
+    "however hundred i ie if in inc indeed interest into is it its itself keep last latter latterly least "
+    "less ltd made many may me meanwhile might mill mine more moreover most mostly move much must my "
+    "myself name namely neither never nevertheless next nine no nobody none noone nor not nothing now "
+    "nowhere of off often on once one only onto or other others otherwise our ours ourselves out over own "
+    "part per perhaps please put rather re same see seem seemed seeming seems serious several she should "
+    "show side since sincere six sixty so some somehow someone something sometime sometimes somewhere "
+    "still such system take ten than that the their them themselves then thence there thereafter thereby "
+    "therefore therein thereupon these they thick thin third this those though three through throughout "
+    "thru thus to together too top toward towards twelve twenty two un under until up upon us very via "
+    "was we well were what whatever when whence whenever where whereafter whereas whereby wherein "
+    "whereupon wherever whether which while whither who whoever whole whom whose why will with within "
+    "without would yet you your yours yourself yourselves "
+).split())
 
 
 def _stop_words() -> frozenset[str]:
     global _STOP
     if _STOP is None:
-        from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS
-
-        _STOP = frozenset(ENGLISH_STOP_WORDS) | {"s", "t", "ll", "re", "ve", "d"}
+        _STOP = ENGLISH_STOP_WORDS | {"s", "t", "ll", "re", "ve", "d"}
     return _STOP
 
 
@@ -611,7 +645,7 @@ FEATURE_LABELS: dict[str, str] = {
     "is_question": "is a question",
     "has_exclamation": "has an exclamation mark",
     "leading_number": "starts with a number",
-    "has_digit": "has a number (digits or a word like 'five')",
+    "has_digit": "has a number (digits or words)",
     "list_form": "is a list (\"7 ways ...\")",
     "second_person": "speaks to the reader (you)",
     "has_quote": "has a quotation",
@@ -680,7 +714,8 @@ def _map_chunks(uniques: list, chunk_fn, n_jobs: int | None, progress: bool, war
     """``chunk_fn`` over chunks of distinct texts, in order; on a process pool when the batch is large."""
     n_jobs = n_jobs if n_jobs is not None else (os.cpu_count() or 1)
     n = len(uniques)
-    warm()  # in the parent, so forked workers inherit the loaded data
+    if n_jobs > 1 and n >= PARALLEL_MIN_ROWS:
+        warm()  # in the parent, so forked workers inherit the loaded data
     bar = None
     if progress and n > 5000:
         from tqdm import tqdm

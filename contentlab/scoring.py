@@ -235,13 +235,13 @@ def prob_better(logit_a, logit_b, var_a, var_b, cov_ab=0.0):
     ``sd(diff) = sqrt(var_a + var_b - 2 cov_ab)``. With no uncertainty at all the
     answer is 1, 0 or 0.5 (tie).
     """
-    from scipy.stats import norm
+    from scipy.special import ndtr
 
     diff = np.asarray(logit_a, dtype=float) - np.asarray(logit_b, dtype=float)
     var = np.asarray(var_a, dtype=float) + np.asarray(var_b, dtype=float) - 2 * np.asarray(cov_ab, dtype=float)
     sd = np.sqrt(np.maximum(var, 0.0))
     with np.errstate(divide="ignore", invalid="ignore"):
-        p = np.where(sd > 0, norm.cdf(diff / np.where(sd > 0, sd, 1.0)), np.where(diff > 0, 1.0,
+        p = np.where(sd > 0, ndtr(diff / np.where(sd > 0, sd, 1.0)), np.where(diff > 0, 1.0,
                                                                                   np.where(diff < 0, 0.0, 0.5)))
     return float(p) if np.ndim(p) == 0 else p
 
@@ -252,9 +252,9 @@ def rate_lift(base_logit, diff, diff_sd, level: float = 0.9):
     ``lift = expit(base + diff) / expit(base) - 1``; the interval maps
     ``diff +- z sd`` the same way (monotone, so it is exact for a normal ``diff``).
     """
-    from scipy.stats import norm
+    from scipy.special import ndtri
 
-    z = norm.ppf(0.5 + level / 2)
+    z = ndtri(0.5 + level / 2)
     base = np.asarray(base_logit, dtype=float)
     d = np.asarray(diff, dtype=float)
     s = np.asarray(diff_sd, dtype=float)
