@@ -282,17 +282,7 @@ def _valence(analyser, words: list[str], lowered: list[str], i: int, is_cap_diff
         if i > start_i and lowered[i - (start_i + 1)] not in lex:
             before = words[i - (start_i + 1)]
             before_low = lowered[i - (start_i + 1)]
-            # scalar_inc_dec(before, valence, is_cap_diff)
-            scalar = 0.0
-            if before_low in boosters:
-                scalar = boosters[before_low]
-                if valence < 0:
-                    scalar *= -1
-                if before.isupper() and is_cap_diff:
-                    if valence > 0:
-                        scalar += c.C_INCR
-                    else:
-                        scalar -= c.C_INCR
+            scalar = c.scalar_inc_dec(before, valence, is_cap_diff) if before_low in boosters else 0.0
             if start_i == 1 and scalar != 0:
                 scalar = scalar * 0.95
             if start_i == 2 and scalar != 0:
