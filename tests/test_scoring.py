@@ -453,3 +453,17 @@ def test_shrink_grows_with_distance(demo):
     typical = model.contributions(drafts)["typical_logit"].iloc[1]
     if pred["shrink_to_typical"].iloc[1] == 1.0:
         assert pred["logit"].iloc[1] == pytest.approx(typical)
+
+
+def test_a_number_written_as_a_word_is_a_number_in_reasons_and_edits(demo):
+    # Issue 10, item 3: "Five" was "no number: -4%" in the reasons while an edit offered to drop it.
+    result = score(demo, pd.DataFrame({"headline": ["Five quiet changes to the reading room"],
+                                       "channel": ["social_visual"]}), suggest=True)
+    reasons = result["reasons"].iloc[0]
+    assert "no number" not in reasons
+    pred = demo["model"].contributions(pd.DataFrame({"headline": ["Five quiet changes to the reading room"],
+                                                     "channel": ["social_visual"]}))
+    assert pred["has_digit"].iloc[0] > 0  # counted as having a number, which the demo history rewards
+    from contentlab.edits import add_number
+
+    assert add_number("Five quiet changes to the reading room") == []  # never "add a number" to it
