@@ -177,8 +177,8 @@ def format_drivers(frame, model, cautions: list[str]) -> str:
         flag = "  uncertain" if r.uncertain else ""
         lines.append(f"{r.rank:>3}  {r.label[:34]:<34} {r.step[:24]:<24} {r.relative_change:>+8.1%} "
                      f"{interval:>17}  {r.evidence[:22]:<22}{flag}")
-        if r.rank == len(frame) or frame["group"].iloc[r.rank] != group:
-            lines.append("")
+        if r.rank < len(frame) and frame["group"].iloc[r.rank] != group:
+            lines.append("")  # between groups; the blank line before "In words" ends the last
     lines.append("")
     lines.append("In words:")
     lines.extend(f"  - {s}" for s in driver_sentences(frame, 5))
