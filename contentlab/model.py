@@ -46,14 +46,16 @@ import re
 import sys
 from collections.abc import Sequence
 
+import inspect
+from dataclasses import dataclass
+
 import numpy as np
 import pandas as pd
 import scipy.sparse as sp
 from scipy.special import expit
-from sklearn.base import BaseEstimator
 
 from .errors import ContentlabError
-from .features import DENSE_COLUMNS, TIME_COLUMNS, HeadlineFeaturizer, clean_headline, topic_tokens
+from .features import DENSE_COLUMNS, FEATURE_LABELS, TIME_COLUMNS, HeadlineFeaturizer, clean_headline, topic_tokens
 
 __all__ = [
     "EngagementModel",
@@ -80,35 +82,18 @@ DEFAULT_DENSE: tuple[str, ...] = (
     "split_colon_dash",
     "n_allcaps_words",
     "n_emoji",
+    "n_first_singular",
+    "n_first_plural",
+    "n_third_person",
+    "n_this_here",
+    "n_negations",
+    "starts_with_question_word",
+    "n_superlatives",
 )
 HOUR_COLUMNS = ("hour_sin", "hour_cos", "hour_sin2", "hour_cos2")
 WEEKDAY_COLUMNS = ("weekday_sin", "weekday_cos")
 
-FEATURE_LABELS: dict[str, str] = {
-    "n_chars": "length",
-    "n_words": "number of words",
-    "mean_word_length": "word length",
-    "flesch_reading_ease": "readability",
-    "flesch_kincaid_grade": "reading grade",
-    "vader_compound": "overall sentiment",
-    "vader_positive": "positive tone",
-    "vader_negative": "negative tone",
-    "n_positive_words": "positive words",
-    "n_negative_words": "negative words",
-    "is_question": "is a question",
-    "has_exclamation": "has an exclamation mark",
-    "leading_number": "starts with a number",
-    "has_digit": "has a number",
-    "list_form": "is a list (\"7 ways ...\")",
-    "second_person": "speaks to the reader (you)",
-    "has_quote": "has a quotation",
-    "split_colon_dash": "has a colon or dash",
-    "n_allcaps_words": "words in capitals",
-    "n_emoji": "emoji",
-    "posting time": "posting time",
-    "topic terms": "topic words",
-    "wording": "wording",
-}
+# Plain labels live beside the features (features.FEATURE_LABELS); kept importable from here.
 
 # Smallest history learn accepts. Forward-chaining CV needs n_folds + 1 time blocks with posts in
 # each; below ~60 posts a held-out block has fewer than 15 posts and its deviance says little; and
@@ -124,6 +109,11 @@ CV_MIN_PAIRS = 300
 # (on the archive a 20,000 cap dropped a third of the n-grams seen in 3+ headlines, and cost
 # about 0.7 points of pairwise accuracy).
 WORDING_CAP_FACTOR = 3
+# A draft this many standard deviations (summed over the measured dense features: length,
+# readability, ...) outside the history's range is scored as its channel's typical post; nearer
+# ones are pulled toward it in proportion (our choice: half a standard deviation beyond the
+# history's extremes already describes a headline unlike any it holds, e.g. "Hello world").
+FAR_DISTANCE = 0.5
 DEFAULT_ALPHAS = tuple(float(a) for a in np.geomspace(1e-1, 1e-6, 11))
 # Gauss-Hermite (probabilists') nodes and weights: the mean and variance of a logit-normal rate.
 _GH_NODES, _GH_WEIGHTS = np.polynomial.hermite_e.hermegauss(24)
@@ -159,6 +149,107 @@ def function_word_ngrams(text: str) -> list[str]:
 _WORDING = {"ngrams": wording_ngrams, "function_words": function_word_ngrams}
 
 
+class WordingVocabulary:
+    """The wording block's learned n-grams: turns headlines into 0/1 columns, nothing more.
+
+    ``fit`` learns the vocabulary with scikit-learn's ``CountVectorizer`` (most
+    frequent n-grams first, capped); the fitted model then keeps only this
+    small object, so scoring a draft needs neither scikit-learn nor pickled
+    library objects. ``transform`` gives exactly what the vectorizer's
+    ``transform`` gives (binary, columns in vocabulary order).
+    """
+
+    def __init__(self, analyzer: str, names: Sequence[str]):
+        self.analyzer = analyzer
+        self.names = [str(n) for n in names]
+        self.vocabulary = {n: i for i, n in enumerate(self.names)}
+
+    @classmethod
+    def learn(cls, analyzer: str, texts: Sequence[str], max_features: int | None) -> tuple["WordingVocabulary", sp.csr_matrix]:
+        """Learn from ``texts``; return the vocabulary and the texts' 0/1 matrix."""
+        from sklearn.feature_extraction.text import CountVectorizer
+
+        vec = CountVectorizer(analyzer=_WORDING[analyzer], binary=True, dtype=np.float64,
+                              max_features=max_features or None)
+        matrix = vec.fit_transform(texts).tocsr()
+        return cls(analyzer, vec.get_feature_names_out()), matrix
+
+    def get_feature_names_out(self) -> np.ndarray:
+        return np.asarray(self.names, dtype=object)
+
+    def transform(self, texts: Sequence[str]) -> sp.csr_matrix:
+        analyse = _WORDING[self.analyzer]
+        vocab = self.vocabulary
+        indptr = [0]
+        cols: list[int] = []
+        for text in texts:
+            row = sorted({vocab[t] for t in analyse(str(text)) if t in vocab})
+            cols.extend(row)
+            indptr.append(len(cols))
+        return sp.csr_matrix((np.ones(len(cols)), np.asarray(cols, dtype=np.int32), np.asarray(indptr, dtype=np.int64)),
+                             shape=(len(texts), len(self.names)))
+
+    def __getstate__(self) -> dict:
+        return {"analyzer": self.analyzer, "names": self.names}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__init__(state["analyzer"], state["names"])
+
+
+class FittedLinear:
+    """The coefficients of the final GLM fit, and the settings it was fitted with.
+
+    What prediction needs from :class:`contentlab.glm.PenalizedBinomialGLM`,
+    as plain arrays (the estimator itself stays behind in ``fit``).
+    """
+
+    def __init__(self, coef_: np.ndarray, intercept_: float, **params):
+        self.coef_ = np.asarray(coef_, dtype=float)
+        self.intercept_ = float(intercept_)
+        self.params = dict(params)
+        for key, value in params.items():
+            setattr(self, key, value)
+
+    @classmethod
+    def from_glm(cls, glm) -> "FittedLinear":
+        params = {k: (np.asarray(v, dtype=float) if k == "penalty_weights" and v is not None else v)
+                  for k, v in glm.get_params().items()}
+        return cls(glm.coef_.copy(), float(glm.intercept_), **params)
+
+    def __getstate__(self) -> dict:
+        return {"coef_": self.coef_, "intercept_": self.intercept_, "params": self.params}
+
+    def __setstate__(self, state: dict) -> None:
+        self.__init__(state["coef_"], state["intercept_"], **state["params"])
+
+
+class _Params:
+    """``get_params``/``set_params`` of the constructor's keyword arguments (scikit-learn's convention),
+    without importing scikit-learn, so loading a saved model for scoring stays light."""
+
+    @classmethod
+    def _param_names(cls) -> list[str]:
+        sig = inspect.signature(cls.__init__)
+        return [p.name for p in sig.parameters.values() if p.name != "self" and p.kind == p.KEYWORD_ONLY]
+
+    def get_params(self, deep: bool = True) -> dict:
+        return {name: getattr(self, name) for name in self._param_names()}
+
+    def set_params(self, **params) -> "_Params":
+        valid = self._param_names()
+        for key, value in params.items():
+            if key not in valid:
+                raise ContentlabError(f"{type(self).__name__} has no parameter {key!r}; choose from {valid}")
+            setattr(self, key, value)
+        return self
+
+    def __repr__(self) -> str:
+        sig = inspect.signature(type(self).__init__)
+        changed = [f"{k}={v!r}" for k, v in self.get_params().items() if sig.parameters[k].default is not v
+                   and not (isinstance(v, (int, float, str, bool)) and sig.parameters[k].default == v)]
+        return f"{type(self).__name__}({', '.join(changed)})"
+
+
 def _check_real(name: str, value, *, low: float = 0.0, low_open: bool = False, high: float | None = None):
     ok = isinstance(value, numbers.Real) and not isinstance(value, bool) and np.isfinite(value)
     ok = ok and (value > low if low_open else value >= low) and (high is None or value <= high)
@@ -187,7 +278,28 @@ def check_history_size(n_posts: int, n_events: float, n_periods: int, n_folds: i
 
 # ----------------------------------------------------------------------------- the model
 
-class EngagementModel(BaseEstimator):
+@dataclass
+class _FitData:
+    """The history as the fit steps see it: counts, design blocks, groups and time blocks."""
+
+    frame: pd.DataFrame
+    outcome: str
+    k: np.ndarray
+    n: np.ndarray
+    y: np.ndarray
+    periods: np.ndarray
+    cols: list
+    D: np.ndarray
+    T: sp.csr_matrix
+    Wm: sp.csr_matrix
+    channel: np.ndarray
+    experiment: np.ndarray
+    in_exp: np.ndarray
+    blocks: np.ndarray
+    large: bool
+
+
+class EngagementModel(_Params):
     r"""Exposure-aware, regularised model of clicks (or engagements) per impression.
 
     For post ``i`` with ``n_i`` impressions and ``k_i`` clicks::
@@ -261,6 +373,10 @@ class EngagementModel(BaseEstimator):
         Show a progress bar on stderr.
     n_jobs : int or None, default 1
         Processes for featurising large histories (passed to the featurizer).
+    level : {"recent", "history"}, default "recent"
+        "recent": each channel's baseline follows its recent level, with a half-life chosen
+        on the time folds (see :func:`recent_levels`); rates drift, and a history-wide level
+        predicts later posts too high when they fall. "history": the fitted GLM's own level.
 
     Attributes
     ----------
@@ -307,6 +423,7 @@ class EngagementModel(BaseEstimator):
         random_state: int = 0,
         progress: bool = False,
         n_jobs: int | None = 1,
+        level: str = "recent",
     ) -> None:
         self.dense_features = dense_features
         self.use_time = use_time
@@ -327,6 +444,7 @@ class EngagementModel(BaseEstimator):
         self.random_state = random_state
         self.progress = progress
         self.n_jobs = n_jobs
+        self.level = level
 
     # ------------------------------------------------------------------ checks
     def _check_params(self) -> tuple[list[str], np.ndarray]:
@@ -343,6 +461,8 @@ class EngagementModel(BaseEstimator):
                 raise ContentlabError(f"{name} must be True or False; got {getattr(self, name)!r}")
         if self.wording not in ("ngrams", "function_words", "none"):
             raise ContentlabError(f"wording must be 'ngrams', 'function_words' or 'none'; got {self.wording!r}")
+        if self.level not in ("recent", "history"):
+            raise ContentlabError(f"level must be 'recent' or 'history'; got {self.level!r}")
         if self.cv_metric not in ("auto", "deviance", "pairwise"):
             raise ContentlabError(f"cv_metric must be 'auto', 'deviance' or 'pairwise'; got {self.cv_metric!r}")
         _check_int("min_df", self.min_df, 1)
@@ -401,14 +521,6 @@ class EngagementModel(BaseEstimator):
             raise NotFittedError("This EngagementModel is not fitted yet; run contentlab learn (or call fit) first.")
 
     # --------------------------------------------------------------- text parts
-    def _wording_vectorizer(self):
-        from sklearn.feature_extraction.text import CountVectorizer
-
-        return CountVectorizer(
-            analyzer=_WORDING[self.wording], binary=True, dtype=np.float64,
-            max_features=(WORDING_CAP_FACTOR * self.max_terms) or None,
-        )
-
     def _text_blocks(self, fs, fit: bool = False) -> tuple[sp.csr_matrix, sp.csr_matrix]:
         """Topic-term and wording matrices; ``fit`` learns the wording vocabulary first.
 
@@ -417,13 +529,16 @@ class EngagementModel(BaseEstimator):
         """
         n = len(fs)
         T = fs.terms.tocsr() if self.terms else sp.csr_matrix((n, 0))
-        if fit:
-            self.wording_vec_ = self._wording_vectorizer() if self.wording != "none" else None
-        if self.wording_vec_ is None:
+        if fit and self.wording == "none":
+            self.wording_vec_ = None
+        if self.wording == "none" or (not fit and self.wording_vec_ is None):
             Wm = sp.csr_matrix((n, 0))
         else:
             uniq, inverse = np.unique(fs.text.to_numpy(dtype=str), return_inverse=True)
-            Wu = (self.wording_vec_.fit_transform(uniq) if fit else self.wording_vec_.transform(uniq)).tocsr()
+            if fit:
+                self.wording_vec_, Wu = WordingVocabulary.learn(self.wording, uniq, WORDING_CAP_FACTOR * self.max_terms)
+            else:
+                Wu = self.wording_vec_.transform(uniq)
             Wm = Wu[inverse.ravel()]
         return T.astype(np.float64), Wm
 
@@ -544,24 +659,46 @@ class EngagementModel(BaseEstimator):
 
     # --------------------------------------------------------------------- fit
     def fit(self, posts: pd.DataFrame, outcome: str = "clicks") -> "EngagementModel":
-        """Learn from history ``posts`` (the workspace's posts frame). Returns ``self``."""
+        """Learn from history ``posts`` (the workspace's posts frame). Returns ``self``.
+
+        The steps, each a method that can be run and tested alone: ``_design`` (features and
+        time blocks), ``_choose_penalty`` (time folds), ``_final_fit``, ``_bootstrap``,
+        ``_keep_state`` (what prediction and drivers need, incl. drift levels), ``_predictive_spread``
+        (the interval's post-to-post part) and ``_validate`` (held-out figures).
+        """
         from threadpoolctl import threadpool_limits
         from tqdm import tqdm
 
-        from .evaluation import baseline_rates, deviance_table, pair_accuracy, within_experiment_deviance
-        from .glm import PenalizedBinomialGLM, add_group_effects
-
         dense_names, alphas = self._check_params()
         frame = self._check_posts(posts, outcome)
+        data = self._design(frame, outcome, dense_names)
+        bar = tqdm(total=self.n_folds * len(alphas) + self.n_bootstrap, desc="learn", unit="fit", file=sys.stderr,
+                   disable=not self.progress, leave=False)
+        # Scipy's L-BFGS-B calls BLAS on tiny vectors; with several BLAS threads on a shared
+        # 2-core machine that is ~30x slower than one thread, so fits run single-threaded.
+        with threadpool_limits(limits=1, user_api="blas"):
+            oof_by_alpha = self._choose_penalty(data, alphas, bar)
+            X0, X, glm, gidx = self._final_fit(data)
+            boot, clusters = self._bootstrap(data, X, glm, bar)
+        bar.close()
+        self.boot_coef_ = boot
+        oof = oof_by_alpha[(self.alpha_, self.adaptive_)]
+        eta_all = self._keep_state(data, X0, gidx, clusters, oof)
+        self._predictive_spread(data, X0, X, glm, eta_all, oof)
+        self.validation_ = self._validate(data, X0, oof)
+        return self
+
+    def _design(self, frame: pd.DataFrame, outcome: str, dense_names: list[str]) -> "_FitData":
+        """Featurise the history once and cut it into time blocks.
+
+        Dense features are per-headline functions (no look-ahead); the term and wording
+        vocabularies are built on all history but every fold keeps only the columns its own
+        training posts reach min_df on, which is what refitting them per fold would give.
+        """
         k = frame[outcome].to_numpy(float)
         n = frame["impressions"].to_numpy(float)
-        y = k / n
         periods = frame["_period"].to_numpy()
         check_history_size(len(frame), k.sum(), len(np.unique(periods)), self.n_folds, outcome)
-
-        # Featurise once. Dense features are per-headline functions (no look-ahead); the term and
-        # wording vocabularies are built on all history but every fold keeps only the columns its
-        # own training posts reach min_df on, which is what refitting them per fold would give.
         self.featurizer_ = HeadlineFeaturizer(min_df=1, max_terms=self.max_terms, n_jobs=self.n_jobs).fit(frame)
         fs = self.featurizer_.transform(frame, progress=self.progress)
         T, Wm = self._text_blocks(fs, fit=True)
@@ -572,144 +709,171 @@ class EngagementModel(BaseEstimator):
         self._num_only_words_ = (np.array([w == "<num>" for w in self.wording_vec_.get_feature_names_out()], dtype=bool)
                                  if self.wording_vec_ is not None else np.zeros(0, dtype=bool))
         cols = dense_names + (list(TIME_COLUMNS) if self.use_time else [])
-        D = fs.dense[cols].to_numpy(float)
-        channel = fs.channel.to_numpy(dtype=object)
-        experiment = frame["experiment_id"].to_numpy(dtype=object)
-        in_exp = pd.notna(frame["experiment_id"]).to_numpy()
+        return _FitData(
+            frame=frame, outcome=outcome, k=k, n=n, y=k / n, periods=periods, cols=cols,
+            D=fs.dense[cols].to_numpy(float), T=T, Wm=Wm, channel=fs.channel.to_numpy(dtype=object),
+            experiment=frame["experiment_id"].to_numpy(dtype=object),
+            in_exp=pd.notna(frame["experiment_id"]).to_numpy(), blocks=_time_blocks(frame, self.n_folds),
+            large=len(frame) >= LARGE_HISTORY_POSTS,
+        )
 
-        blocks = _time_blocks(frame, self.n_folds)
+    def _choose_penalty(self, data: "_FitData", alphas: np.ndarray, bar) -> dict:
+        """alpha (and the adaptive variant) by forward time folds; returns held-out logits per choice.
+
+        Sets ``alpha_``, ``adaptive_``, ``cv_metric_`` and ``cv_results_``.
+        """
+        from .evaluation import pair_accuracy
+        from .glm import PenalizedBinomialGLM, add_group_effects
+
+        frame, outcome, k, n, y = data.frame, data.outcome, data.k, data.n, data.y
+        D, T, Wm, channel, experiment, in_exp = data.D, data.T, data.Wm, data.channel, data.experiment, data.in_exp
+        blocks, large = data.blocks, data.large
         n_cv = self.n_folds * len(alphas)
-        bar = tqdm(total=n_cv + self.n_bootstrap, desc="learn", unit="fit", file=sys.stderr,
-                   disable=not self.progress, leave=False)
         # Fits inside CV only rank penalties, so a looser tolerance does (looser still on large
         # histories, see LARGE_HISTORY_POSTS); the final fit is tight.
-        large = len(frame) >= LARGE_HISTORY_POSTS
         glm_kw = dict(max_iter=2000, tol=_LARGE_TOL if large else 1e-5)
-        with threadpool_limits(limits=1, user_api="blas"):
-            # Scipy's L-BFGS-B calls BLAS on tiny vectors; with several BLAS threads on a shared
-            # 2-core machine that is ~30x slower than one thread, so fits run single-threaded.
-            folds = []
-            for f in range(1, self.n_folds + 1):
-                tr = np.flatnonzero(blocks < f)
-                te = np.flatnonzero(blocks == f)
-                st = self._state(D, T, Wm, channel, tr)
-                Xtr, gidx = add_group_effects(self._matrix(D, T, Wm, channel, tr, st), experiment[tr])
-                Xte = self._matrix(D, T, Wm, channel, te, st)
-                glm = PenalizedBinomialGLM(warm_start=True, **glm_kw)
-                folds.append((tr, te, Xtr, Xte, glm, (st, len(gidx)), self._text_mask(st, len(gidx))))
-            rows = []
-            oof_by_alpha = {}
-            rising = 0
-            best = np.inf
-            held_rows = np.flatnonzero(blocks >= 1)
-            metric = self._cv_metric(frame.iloc[held_rows], outcome)
-            self.cv_metric_ = metric
-            variants = {"auto": (False, True), True: (True,), False: (False,)}[self.adaptive]
-            n_workers = _n_workers(self.n_jobs, len(frame), len(folds))
-            pool = _FoldPool(self, folds, y, n, k, experiment, in_exp, variants, n_workers)
-            try:
-                def evaluate(alpha: float) -> float:
-                    crit = {v: 0.0 for v in variants}
-                    oof = {v: np.full(len(frame), np.nan) for v in variants}
-                    for f_idx, v, te, eta, c in pool.step(float(alpha)):
-                        oof[v][te] = eta
-                        crit[v] += c
-                    bar.update(self.n_folds)
-                    done[0] += self.n_folds
-                    for v in variants:
-                        row = {"alpha": float(alpha), "adaptive": v, "deviance": crit[v]}
-                        c = crit[v]
-                        if metric == "pairwise":
-                            acc = pair_accuracy(frame.iloc[held_rows], oof[v][held_rows], outcome, n_boot=1)["accuracy"]
-                            row["pairwise_accuracy"] = acc
-                            c = -acc
-                        row["criterion"] = c
-                        rows.append(row)
-                        oof_by_alpha[(float(alpha), v)] = oof[v]
-                    return min(r["criterion"] for r in rows[-len(variants):])
+        folds = []
+        for f in range(1, self.n_folds + 1):
+            tr = np.flatnonzero(blocks < f)
+            te = np.flatnonzero(blocks == f)
+            st = self._state(D, T, Wm, channel, tr)
+            Xtr, gidx = add_group_effects(self._matrix(D, T, Wm, channel, tr, st), experiment[tr])
+            Xte = self._matrix(D, T, Wm, channel, te, st)
+            glm = PenalizedBinomialGLM(warm_start=True, **glm_kw)
+            folds.append((tr, te, Xtr, Xte, glm, (st, len(gidx)), self._text_mask(st, len(gidx))))
+        rows = []
+        oof_by_alpha = {}
+        rising = 0
+        best = np.inf
+        held_rows = np.flatnonzero(blocks >= 1)
+        metric = self._cv_metric(frame.iloc[held_rows], outcome)
+        self.cv_metric_ = metric
+        variants = {"auto": (False, True), True: (True,), False: (False,)}[self.adaptive]
+        n_workers = _n_workers(self.n_jobs, len(frame), len(folds))
+        pool = _FoldPool(self, folds, y, n, k, experiment, in_exp, variants, n_workers)
+        try:
+            def evaluate(alpha: float) -> float:
+                crit = {v: 0.0 for v in variants}
+                oof = {v: np.full(len(frame), np.nan) for v in variants}
+                for f_idx, v, te, eta, c in pool.step(float(alpha)):
+                    oof[v][te] = eta
+                    crit[v] += c
+                bar.update(self.n_folds)
+                done[0] += self.n_folds
+                for v in variants:
+                    row = {"alpha": float(alpha), "adaptive": v, "deviance": crit[v]}
+                    c = crit[v]
+                    if metric == "pairwise":
+                        acc = pair_accuracy(frame.iloc[held_rows], oof[v][held_rows], outcome, n_boot=1)["accuracy"]
+                        row["pairwise_accuracy"] = acc
+                        c = -acc
+                    row["criterion"] = c
+                    rows.append(row)
+                    oof_by_alpha[(float(alpha), v)] = oof[v]
+                return min(r["criterion"] for r in rows[-len(variants):])
 
-                done = [0]
-                # Large histories: a path one decade apart first, then the half steps either side
-                # of its best alpha (8 instead of 9 alphas on bench_learn's 100,000 posts).
-                coarse = large and len(alphas) >= 5
-                for alpha in (alphas[::2] if coarse else alphas):
-                    c_best = evaluate(alpha)
-                    if c_best < best - 1e-9:
-                        best, rising = c_best, 0
-                    else:
-                        rising += 1
-                        if rising >= 2:
-                            break
-                if coarse:
-                    seen = {r["alpha"] for r in rows}
-                    i = int(np.flatnonzero(alphas == min(rows, key=lambda r: r["criterion"])["alpha"])[0])
-                    for j in (i - 1, i + 1):
-                        if 0 <= j < len(alphas) and float(alphas[j]) not in seen:
-                            evaluate(alphas[j])
-                bar.update(max(n_cv - done[0], 0))
-            finally:
-                pool.close()
-            cv = pd.DataFrame(rows)
-            self.cv_results_ = cv
-            pick = cv.loc[cv["criterion"].idxmin()]
-            self.alpha_ = float(pick["alpha"])
-            self.adaptive_ = bool(pick["adaptive"])
-            del folds
+            done = [0]
+            # Large histories: a path one decade apart first, then the half steps either side
+            # of its best alpha (8 instead of 9 alphas on bench_learn's 100,000 posts).
+            coarse = large and len(alphas) >= 5
+            for alpha in (alphas[::2] if coarse else alphas):
+                c_best = evaluate(alpha)
+                if c_best < best - 1e-9:
+                    best, rising = c_best, 0
+                else:
+                    rising += 1
+                    if rising >= 2:
+                        break
+            if coarse:
+                seen = {r["alpha"] for r in rows}
+                i = int(np.flatnonzero(alphas == min(rows, key=lambda r: r["criterion"])["alpha"])[0])
+                for j in (i - 1, i + 1):
+                    if 0 <= j < len(alphas) and float(alphas[j]) not in seen:
+                        evaluate(alphas[j])
+            bar.update(max(n_cv - done[0], 0))
+        finally:
+            pool.close()
+        cv = pd.DataFrame(rows)
+        self.cv_results_ = cv
+        pick = cv.loc[cv["criterion"].idxmin()]
+        self.alpha_ = float(pick["alpha"])
+        self.adaptive_ = bool(pick["adaptive"])
+        del folds
+        return oof_by_alpha
 
-            # Final fit on all history.
-            all_rows = np.arange(len(frame))
-            st = self._state(D, T, Wm, channel, all_rows)
-            X0 = self._matrix(D, T, Wm, channel, all_rows, st)
-            X, gidx = add_group_effects(X0, experiment)
-            pw = self._penalties(st, len(gidx), self.alpha_)
-            glm = PenalizedBinomialGLM(alpha=self.alpha_, penalty_weights=pw, warm_start=True, max_iter=3000, tol=1e-6)
-            for _ in self._fit_glm(glm, X, y, n, pw, self._text_mask(st, len(gidx)), (self.adaptive_,),
-                                     first_tol=_LARGE_TOL if large else None):
-                pass
-            pw = np.asarray(glm.penalty_weights, dtype=float)
-            self.glm_ = glm
-            self.state_ = st
-            self.n_shared_ = X0.shape[1]
-            self.experiments_ = list(gidx)
+    def _final_fit(self, data: "_FitData"):
+        """The GLM on all history at the chosen penalty; returns (shared design, full design, glm, experiments)."""
+        from .glm import PenalizedBinomialGLM, add_group_effects
 
-            # Bootstrap: resample whole experiments, and weeks for posts outside experiments.
-            clusters = np.where(in_exp, ("exp:" + pd.Series(experiment).astype(str)).to_numpy(),
-                                ("week:" + pd.Series(periods).astype(str)).to_numpy())
-            codes, uniq = pd.factorize(pd.Series(clusters))
-            rng = np.random.default_rng(self.random_state)
-            # All resampling counts drawn up front, so the draws do not depend on n_jobs.
-            counts = rng.multinomial(len(uniq), np.full(len(uniq), 1.0 / len(uniq)), size=self.n_bootstrap)
-            n_shared = self.n_shared_
+        D, T, Wm, channel, experiment = data.D, data.T, data.Wm, data.channel, data.experiment
+        y, n, large, frame = data.y, data.n, data.large, data.frame
+        # Final fit on all history.
+        all_rows = np.arange(len(frame))
+        st = self._state(D, T, Wm, channel, all_rows)
+        X0 = self._matrix(D, T, Wm, channel, all_rows, st)
+        X, gidx = add_group_effects(X0, experiment)
+        pw = self._penalties(st, len(gidx), self.alpha_)
+        glm = PenalizedBinomialGLM(alpha=self.alpha_, penalty_weights=pw, warm_start=True, max_iter=3000, tol=1e-6)
+        for _ in self._fit_glm(glm, X, y, n, pw, self._text_mask(st, len(gidx)), (self.adaptive_,),
+                                 first_tol=_LARGE_TOL if large else None):
+            pass
+        self.glm_ = FittedLinear.from_glm(glm)
+        self.state_ = st
+        self.n_shared_ = X0.shape[1]
+        self.experiments_ = list(gidx)
+        return X0, X, glm, gidx
 
-            def refit(draws: np.ndarray) -> np.ndarray:
-                out = np.empty((len(draws), n_shared + 1), dtype=np.float32)
-                bglm = PenalizedBinomialGLM(alpha=self.alpha_, penalty_weights=pw, warm_start=True,
-                                            max_iter=500, tol=1e-5)
-                for j, b in enumerate(draws):
-                    # Warm start from the full fit: a resample moves the coefficients a little.
-                    bglm.coef_, bglm.intercept_, bglm.n_features_in_ = glm.coef_.copy(), glm.intercept_, X.shape[1]
-                    # Posts of clusters not drawn have weight 0 and add nothing to the objective:
-                    # leaving them out (about a third of the rows) gives the same fit, faster.
-                    wb = n * counts[b][codes]
-                    keep = wb > 0
-                    with _quiet_convergence():
-                        bglm.fit(X[keep], y[keep], wb[keep])
-                    out[j, :-1] = bglm.coef_[:n_shared]
-                    out[j, -1] = bglm.intercept_
-                    if n_boot_workers == 1:
-                        bar.update(1)
-                return out
+    def _bootstrap(self, data: "_FitData", X, glm, bar):
+        """Refits on resampled whole experiments (and weeks outside them); returns (coefficients, cluster codes)."""
+        from .glm import PenalizedBinomialGLM
 
-            n_boot_workers = _n_workers(self.n_jobs, len(frame), self.n_bootstrap)
-            chunks = [c for c in np.array_split(np.arange(self.n_bootstrap), n_boot_workers) if len(c)]
-            parts = _run_forked(refit, chunks, n_boot_workers)
-            boot = np.vstack(parts) if parts else np.empty((0, n_shared + 1), dtype=np.float32)
-            if n_boot_workers > 1:
-                bar.update(self.n_bootstrap)
-        bar.close()
-        self.boot_coef_ = boot
+        frame, experiment, in_exp, periods, n, y = data.frame, data.experiment, data.in_exp, data.periods, data.n, data.y
+        pw = np.asarray(glm.penalty_weights, dtype=float)
+        # Bootstrap: resample whole experiments, and weeks for posts outside experiments.
+        clusters = np.where(in_exp, ("exp:" + pd.Series(experiment).astype(str)).to_numpy(),
+                            ("week:" + pd.Series(periods).astype(str)).to_numpy())
+        codes, uniq = pd.factorize(pd.Series(clusters))
+        rng = np.random.default_rng(self.random_state)
+        # All resampling counts drawn up front, so the draws do not depend on n_jobs.
+        counts = rng.multinomial(len(uniq), np.full(len(uniq), 1.0 / len(uniq)), size=self.n_bootstrap)
+        n_shared = self.n_shared_
 
-        # ------------------------------------------------- what the rest of the model keeps
+        def refit(draws: np.ndarray) -> np.ndarray:
+            out = np.empty((len(draws), n_shared + 1), dtype=np.float32)
+            bglm = PenalizedBinomialGLM(alpha=self.alpha_, penalty_weights=pw, warm_start=True,
+                                        max_iter=500, tol=1e-5)
+            for j, b in enumerate(draws):
+                # Warm start from the full fit: a resample moves the coefficients a little.
+                bglm.coef_, bglm.intercept_, bglm.n_features_in_ = glm.coef_.copy(), glm.intercept_, X.shape[1]
+                # Posts of clusters not drawn have weight 0 and add nothing to the objective:
+                # leaving them out (about a third of the rows) gives the same fit, faster.
+                wb = n * counts[b][codes]
+                keep = wb > 0
+                with _quiet_convergence():
+                    bglm.fit(X[keep], y[keep], wb[keep])
+                out[j, :-1] = bglm.coef_[:n_shared]
+                out[j, -1] = bglm.intercept_
+                if n_boot_workers == 1:
+                    bar.update(1)
+            return out
+
+        n_boot_workers = _n_workers(self.n_jobs, len(frame), self.n_bootstrap)
+        chunks = [c for c in np.array_split(np.arange(self.n_bootstrap), n_boot_workers) if len(c)]
+        parts = _run_forked(refit, chunks, n_boot_workers)
+        boot = np.vstack(parts) if parts else np.empty((0, n_shared + 1), dtype=np.float32)
+        if n_boot_workers > 1:
+            bar.update(self.n_bootstrap)
+        return boot, (codes, uniq)
+
+    def _keep_state(self, data: "_FitData", X0, gidx, clusters, oof) -> np.ndarray:
+        """What prediction, drivers and scoring need; calibrates spread and drift levels. Returns the
+        history's logits without experiment effects."""
+        frame, outcome, k, n = data.frame, data.outcome, data.k, data.n
+        D, T, Wm, channel, experiment, in_exp = data.D, data.T, data.Wm, data.channel, data.experiment, data.in_exp
+        periods, blocks, cols = data.periods, data.blocks, data.cols
+        codes, uniq = clusters
+        st = self.state_
+        boot = self.boot_coef_
         self.outcome_ = outcome
         self.n_posts_ = int(len(frame))
         self.n_experiment_posts_ = int(in_exp.sum())
@@ -733,15 +897,42 @@ class EngagementModel(BaseEstimator):
         E = sp.csc_matrix(T[:, st["term_idx"]])[:, self.term_group_index_]
         C = sp.csr_matrix((np.ones(len(codes)), (np.arange(len(codes)), codes)), shape=(len(codes), len(uniq)))
         self.term_clusters_ = np.diff(sp.csr_matrix(E.T @ C).indptr)
+        self.term_varied_tests_ = _varied_tests(E, experiment, in_exp)
+        self.term_weeks_outside_tests_ = _varied_tests(E, periods, ~in_exp, varied=False)
         self.typical_rate_ = float(k.sum() / n.sum())
         self.time_known_share_ = float(np.mean(~np.isnan(frame["local_hour"].to_numpy(float))))
         self.dense_range_ = (D[:, st["dense_idx"]].min(axis=0), D[:, st["dense_idx"]].max(axis=0))
+        self.typical_range_ = typical_range(D[:, st["dense_idx"]])
 
-        eta_all = np.asarray(X0 @ glm.coef_[: self.n_shared_]).ravel() + glm.intercept_
+        chan_off = len(st["dense_idx"]) + len(st["term_idx"]) + len(st["word_idx"])
+        # How far apart the model puts headlines of one test, calibrated on the held-out folds.
+        self.spread_ = spread_factor(oof, k, n, experiment, in_exp)
+        self.glm_.coef_[:chan_off] *= self.spread_
+        if boot.shape[0]:
+            boot[:, :chan_off] *= np.float32(self.spread_)
+        eta_all = np.asarray(X0 @ self.glm_.coef_[: self.n_shared_]).ravel() + self.glm_.intercept_
+        # Levels that follow drift: each channel's recent level, by a half-life chosen on time folds.
+        if self.level == "recent":
+            level = recent_levels(eta_all, k, n, channel, frame["_period"].to_numpy(), blocks, self.n_folds)
+        else:
+            level = (float("inf"), {}, pd.DataFrame(columns=["half_life_weeks", "deviance"]))
+        self.level_half_life_, self.level_offsets_, self.level_cv_ = level
+        shift = np.array([self.level_offsets_.get(c, 0.0) for c in st["channels"]])
+        self.glm_.coef_[chan_off: chan_off + len(shift)] += shift
+        if boot.shape[0]:
+            boot[:, chan_off: chan_off + len(shift)] += shift.astype(boot.dtype)
+        self.logit_spread_ = float(np.var(eta_all))
         self._fit_typical(frame, D, X0, channel, n)
+        self.training_posts_summary_ = frame[["channel", "local_hour", "impressions", outcome]].copy()
+        return eta_all
 
-        # Held-out predictions of the chosen alpha.
-        oof = oof_by_alpha[(self.alpha_, self.adaptive_)]
+    def _predictive_spread(self, data: "_FitData", X0, X, glm, eta_all, oof) -> None:
+        """Held-out logits (``oof_``), the post-to-post spread of the predictive interval, and the
+        within-test share of each column's evidence."""
+        frame, k, n, blocks = data.frame, data.k, data.n, data.blocks
+        experiment, channel, in_exp = data.experiment, data.channel, data.in_exp
+        st = self.state_
+        boot = self.boot_coef_
         fold = np.where(blocks >= 1, blocks, -1)
         self.oof_ = pd.DataFrame({
             "post_id": frame["post_id"].to_numpy(),
@@ -772,10 +963,14 @@ class EngagementModel(BaseEstimator):
         p_fit = expit(eta_all + np.asarray(X[:, self.n_shared_:] @ glm.coef_[self.n_shared_:]).ravel())
         self.within_share_ = _within_share(X0, n * p_fit * (1 - p_fit), experiment, channel, in_exp)
 
-        # --------------------------------------------------------------- validation
+    def _validate(self, data: "_FitData", X0, oof) -> dict:
+        """Held-out figures against the baselines (deviance, within-test gain, pairs, coverage)."""
+        from .evaluation import baseline_rates, deviance_table, pair_accuracy, within_experiment_deviance
+
+        frame, outcome, k, n, blocks = data.frame, data.outcome, data.k, data.n, data.blocks
+        experiment, in_exp = data.experiment, data.in_exp
+        held = ~np.isnan(oof)
         test_rows = np.flatnonzero(held)
-        train_summary = frame[["channel", "local_hour", "impressions", outcome]].copy()
-        self.training_posts_summary_ = train_summary
         deviance_rows = []
         base_all = {key: np.full(len(frame), np.nan) for key in
                     ("overall rate", "per-channel rate", "per-channel and hour-block rate")}
@@ -809,8 +1004,7 @@ class EngagementModel(BaseEstimator):
         validation["coverage"] = _coverage(self, k[held], n[held], oof[held], X0[np.flatnonzero(held)])
         validation["messages"] = _validation_messages(validation)
         validation["trustworthy"] = not any(m.startswith("WARNING") for m in validation["messages"])
-        self.validation_ = validation
-        return self
+        return validation
 
     def _fit_typical(self, frame, D, X0, channel, n) -> None:
         """Per channel: the typical post (mean design row), its logit, and its median impressions."""
@@ -877,6 +1071,7 @@ class EngagementModel(BaseEstimator):
                     D[np.ix_(sel, tcols)] = self.channel_time_means_[c]
         T, Wm = self._text_blocks(fs)
         rows = np.arange(len(frame))
+        D, outside, distance = self._bound_dense(D)
         X = self._matrix(D, T, Wm, channel, rows, self.state_)
         if unknown:
             # Unknown channel (evaluation only): the history's channel mix stands in for it.
@@ -886,6 +1081,7 @@ class EngagementModel(BaseEstimator):
             for i in np.flatnonzero(~np.isin(channel, self.channels_)):
                 X[i, off: off + len(mix)] = mix
             X = X.tocsr()
+        X, shrink = self._shrink_far(X, channel, distance)
         unseen_n = np.zeros(len(frame))
         unseen_share = np.zeros(len(frame))
         for i, t in enumerate(fs.text):
@@ -894,10 +1090,60 @@ class EngagementModel(BaseEstimator):
                 miss = sum(tok not in self.term_vocabulary_ for tok in unigrams)
                 unseen_n[i] = miss
                 unseen_share[i] = miss / len(unigrams)
-        lo, hi = self.dense_range_
-        Du = D[:, self.state_["dense_idx"]]
-        outside = ((Du < lo) | (Du > hi)).sum(axis=1)
+        frame["_shrink"] = shrink
+        frame["_distance"] = distance
         return X, channel, unseen_n, unseen_share, outside, frame
+
+    def _bound_dense(self, D: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Clip each dense feature to the range the history showed; say how far outside each draft was.
+
+        A linear effect learned on headlines of 20-120 characters says nothing about one of 2:
+        extrapolating it gave "Hi" a top rank. So every feature's contribution is bounded by
+        what the history's own posts reached. Returns the clipped matrix, the number of features
+        outside the range per draft, and the summed distance outside the range of the measured
+        features (``typical_range_``) in standard deviations.
+        """
+        idx = self.state_["dense_idx"]
+        lo, hi = self.dense_range_
+        Du = D[:, idx]
+        outside = ((Du < lo - 1e-12) | (Du > hi + 1e-12)).sum(axis=1)
+        t_lo, t_hi = getattr(self, "typical_range_", self.dense_range_)
+        excess = np.maximum(t_lo - Du, 0.0) + np.maximum(Du - t_hi, 0.0)
+        distance = (excess / self.state_["scale"]).sum(axis=1)
+        D = D.copy()
+        D[:, idx] = np.clip(Du, lo, hi)
+        return D, outside, distance
+
+    def _typical_rows(self, channel: np.ndarray) -> np.ndarray:
+        """The channel's typical design row per draft (the history's channel mix for an unknown channel)."""
+        mix = None
+        rows = []
+        for c in channel:
+            row = self.typical_design_.get(c)
+            if row is None:
+                if mix is None:
+                    mix = sum(self.channel_share_.get(k, 0.0) * np.asarray(v) for k, v in self.typical_design_.items())
+                row = mix
+            rows.append(row)
+        return np.vstack(rows) if rows else np.zeros((0, self.n_shared_))
+
+    def _shrink_far(self, X, channel: np.ndarray, distance: np.ndarray):
+        """Pull far drafts toward their channel's typical post, in proportion to how far they are.
+
+        A draft ``d`` standard deviations (summed over features) outside the history's range
+        gets the design row ``(1 - w) x + w x_typical`` with ``w = min(1, d / FAR_DISTANCE)``:
+        its prediction, contributions and bootstrap spread move toward the channel's typical
+        post, and a draft the model cannot judge at all is scored as a typical one.
+        """
+        w = np.clip(np.asarray(distance, float) / FAR_DISTANCE, 0.0, 1.0)
+        if not np.any(w > 0):
+            return X, w
+        far = np.flatnonzero(w > 0)
+        typical = self._typical_rows(channel[far])
+        X = sp.csr_matrix(X, dtype=float).tolil()
+        for r, i in enumerate(far):
+            X[i] = (1.0 - w[i]) * X[i].toarray().ravel() + w[i] * typical[r]
+        return X.tocsr(), w
 
     def decision_function(self, drafts: pd.DataFrame) -> np.ndarray:
         """Log-odds of the rate for each headline (no experiment effect: a new post)."""
@@ -925,9 +1171,13 @@ class EngagementModel(BaseEstimator):
 
         Columns: ``predicted_rate, rate_low, rate_high, expected_low,
         expected_high, logit, logit_se, impressions_assumed,
-        unseen_term_share, n_unseen_terms, n_outside_range, far_from_history``.
+        unseen_term_share, n_unseen_terms, n_outside_range, far_from_history,
+        distance_from_history, shrink_to_typical``: each dense feature is
+        bounded to the history's range, and a draft outside it is pulled toward
+        its channel's typical post (``shrink_to_typical`` is the weight, 1 =
+        scored as the typical post; see ``_shrink_far``).
         """
-        X, channel, unseen_n, unseen_share, outside, _ = self._draft_design(drafts, allow_unknown_channel)
+        X, channel, unseen_n, unseen_share, outside, prepared = self._draft_design(drafts, allow_unknown_channel)
         coef = self.glm_.coef_[: self.n_shared_]
         eta = np.asarray(X @ coef).ravel() + self.glm_.intercept_
         if self.boot_coef_.shape[0] >= 2:
@@ -935,24 +1185,32 @@ class EngagementModel(BaseEstimator):
             param_var = np.var(eb, axis=1, ddof=1)
         else:
             param_var = np.zeros(len(eta))
-        return pd.DataFrame(
-            self.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions),
+        out = pd.DataFrame(
+            self.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions,
+                                  shrink=prepared["_shrink"].to_numpy(float)),
             index=drafts.index,
         )
+        out["distance_from_history"] = prepared["_distance"].to_numpy(float)
+        out["shrink_to_typical"] = prepared["_shrink"].to_numpy(float)
+        return out
 
     def interval_columns(self, eta, param_var, unseen_n, unseen_share, outside, channel,
-                         impressions=None) -> dict[str, np.ndarray]:
+                         impressions=None, shrink=None) -> dict[str, np.ndarray]:
         """``predict_frame``'s columns from a draft design's logits and bootstrap variance.
 
         The one place the predictive interval is computed; scoring's batch path
         calls it too, so the two can never disagree.
         """
-        from scipy import stats
+        from scipy.special import ndtri
 
         eta = np.asarray(eta, dtype=float)
         unseen_n = np.asarray(unseen_n, dtype=float)
         # A word the model has never seen has an unknown effect: as much variance as a typical term's.
         var_se = np.asarray(param_var, dtype=float) + unseen_n * self.term_effect_var_
+        if shrink is not None:
+            # A draft scored toward the typical post because the model cannot judge it: its rate
+            # could be anywhere the history's posts were, so that spread is added in proportion.
+            var_se = var_se + np.asarray(shrink, dtype=float) * getattr(self, "logit_spread_", 0.0)
         logit_se = np.sqrt(var_se)
         if impressions is None:
             fallback = float(np.median(list(self.channel_impressions_.values())))
@@ -961,22 +1219,14 @@ class EngagementModel(BaseEstimator):
             n_imp = np.broadcast_to(np.asarray(impressions, dtype=float), eta.shape).astype(float)
             if np.any(~np.isfinite(n_imp) | (n_imp <= 0)):
                 raise ContentlabError("impressions must be numbers > 0")
-        s2 = var_se + self.overdispersion_
-        z = stats.norm.ppf(0.5 + self.interval / 2)
-        # Logit-normal rate (parameters + post-to-post spread) by Gauss-Hermite moments, then binomial
-        # noise at n_imp impressions, moment-matched to a Beta for the interval of the observed rate.
-        lat = expit(eta[:, None] + np.sqrt(s2)[:, None] * _GH_NODES[None, :])
-        m = lat @ _GH_WEIGHTS
-        v = np.maximum((lat ** 2) @ _GH_WEIGHTS - m ** 2, 1e-18)
-        v_obs = v + np.maximum(m - m ** 2 - v, 0.0) / n_imp
-        a, b = _beta_from_moments(m, v_obs)
-        tail = (1 - self.interval) / 2
+        z = ndtri(0.5 + self.interval / 2)
+        low, high = predictive_interval(eta, var_se + self.overdispersion_, n_imp, self.interval)
         outside = np.asarray(outside)
         unseen_share = np.asarray(unseen_share, dtype=float)
         return {
             "predicted_rate": expit(eta),
-            "rate_low": stats.beta.ppf(tail, a, b),
-            "rate_high": stats.beta.ppf(1 - tail, a, b),
+            "rate_low": low,
+            "rate_high": high,
             "expected_low": expit(eta - z * logit_se),
             "expected_high": expit(eta + z * logit_se),
             "logit": eta,
@@ -1065,7 +1315,7 @@ def _period_of(frame: pd.DataFrame) -> np.ndarray:
         d = pd.to_datetime(frame["published_at"].astype(str).str.slice(0, 10), errors="coerce")
         if d.isna().any():
             raise ContentlabError("posts need a published_at date (YYYY-MM-DD...) to be split by time")
-    monday = d - pd.to_timedelta(d.dt.weekday, unit="D")
+    monday = d - pd.to_timedelta(d.dt.day_of_week, unit="D")
     return monday.dt.strftime("%Y-%m-%d").to_numpy()
 
 
@@ -1335,6 +1585,140 @@ def _term_groups(T, Wm, names, offset, n_shared) -> tuple[sp.csr_matrix, np.ndar
     return A, cand
 
 
+def spread_factor(oof, k, n, experiment, in_exp, min_posts: int = 2 * CV_MIN_PAIRS) -> float:
+    """The factor in [0.05, 1] that best fits held-out A/B tests when it scales the model's differences.
+
+    A weak penalty ranks headlines best (what alpha is chosen for) but spreads the arms of a
+    test further apart than they turn out: judged within each held-out test (its level
+    refitted), ``s * eta`` with the best ``s`` predicts the arms' rates better and ranks them
+    the same. 1 (no change) when the held-out folds hold fewer than ``min_posts`` test arms.
+    """
+    from scipy.optimize import minimize_scalar
+
+    from .evaluation import recenter_logits
+    from .stats import binomial_deviance
+
+    oof = np.asarray(oof, float)
+    use = np.asarray(in_exp, bool) & np.isfinite(oof)
+    if use.sum() < min_posts:
+        return 1.0
+    ke, ne, ee, ge = k[use], n[use], oof[use], np.asarray(experiment)[use]
+
+    def dev(scale: float) -> float:
+        return binomial_deviance(ke, ne, np.clip(expit(recenter_logits(scale * ee, ke, ne, ge)), 1e-12, 1 - 1e-12))
+
+    res = minimize_scalar(dev, bounds=(0.05, 1.0), method="bounded", options={"xatol": 1e-3})
+    return float(res.x)
+
+
+# Candidate half-lives (weeks) of the channel level; inf = the whole history weighs alike.
+LEVEL_HALF_LIVES = (2.0, 4.0, 8.0, 16.0, 32.0, np.inf)
+
+
+def recent_levels(eta, k, n, channel, periods, blocks, n_folds: int,
+                  half_lives: Sequence[float] = LEVEL_HALF_LIVES) -> tuple[float, dict, pd.DataFrame]:
+    """Each channel's recent level on the log-odds, relative to the model's own prediction.
+
+    Rates drift (on the archive they fall by a third over a year), so a model whose level is the
+    history's average predicts later posts too high. Per channel, the offset ``c`` solves
+    ``sum_i w_i n_i expit(eta_i + c) = sum_i w_i k_i`` with weights ``w_i = 0.5 ** (age_i / h)``
+    (age in weeks before the history's last week). The half-life ``h`` is chosen on the time
+    folds: the offsets are learned from the blocks before each fold and judged by the binomial
+    deviance of the fold's posts (``inf``, no decay, is a candidate and wins when there is no
+    drift). Returns ``(h, {channel: offset}, table of deviance per h)``.
+    """
+    from .evaluation import recenter_logits
+    from .stats import binomial_deviance
+
+    eta = np.asarray(eta, float)
+    week = pd.to_datetime(pd.Series(periods)).to_numpy().astype("datetime64[D]").astype(np.int64) / 7.0
+    channel = np.asarray(channel, dtype=object)
+
+    def offsets(rows, now, h):
+        w = np.ones(rows.size) if not np.isfinite(h) else 0.5 ** ((now - week[rows]) / h)
+        shifted = recenter_logits(eta[rows], k[rows] * w, n[rows] * w, channel[rows])
+        per_row = shifted - eta[rows]
+        return {c: float(per_row[channel[rows] == c][0]) for c in pd.unique(channel[rows])}
+
+    rows_cv = []
+    for h in half_lives:
+        total = 0.0
+        for f in range(1, n_folds + 1):
+            tr = np.flatnonzero(blocks < f)
+            te = np.flatnonzero(blocks == f)
+            if tr.size == 0 or te.size == 0:
+                continue
+            off = offsets(tr, week[tr].max(), h)
+            c = np.array([off.get(ch, 0.0) for ch in channel[te]])
+            total += binomial_deviance(k[te], n[te], np.clip(expit(eta[te] + c), 1e-12, 1 - 1e-12))
+        rows_cv.append({"half_life_weeks": float(h), "deviance": total})
+    table = pd.DataFrame(rows_cv)
+    best = float(table.loc[table["deviance"].idxmin(), "half_life_weeks"])
+    every = np.arange(len(eta))
+    return best, offsets(every, week.max(), best), table
+
+
+def typical_range(D: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Per dense column, the range a draft must stay inside to count as "like the history".
+
+    Measured features (length, word length, readability, time) use the history's full
+    range: a 9-character draft beside a history whose shortest post has 19 is outside it.
+    Flags and small counts (whole numbers spanning at most 10) are never "far": a third
+    negative word where the history had at most two is bounded by the clipping, but the
+    headline is still an ordinary one (their range is infinite here).
+    """
+    if D.shape[0] == 0:
+        return np.zeros(D.shape[1]), np.zeros(D.shape[1])
+    lo, hi = D.min(axis=0), D.max(axis=0)
+    counts = np.all(np.isclose(D, np.round(D)), axis=0) & (hi - lo <= 10)
+    return np.where(counts, -np.inf, lo), np.where(counts, np.inf, hi)
+
+
+def predictive_interval(eta, s2, impressions, interval: float) -> tuple[np.ndarray, np.ndarray]:
+    """Interval for the *observed* rate of a post with logit ``eta`` at ``impressions``.
+
+    The one place the predictive interval is computed. The rate is logit-normal
+    (variance ``s2`` on the log-odds: parameters plus post-to-post spread); its
+    mean and variance come from Gauss-Hermite quadrature, binomial noise at the
+    post's impressions is added (the beta-binomial's variance), and the result is
+    moment-matched to a Beta whose quantiles bound the observed rate. The
+    interval always holds the point prediction ``expit(eta)`` (a very skewed
+    Beta of a tiny rate could otherwise leave it out).
+    """
+    from scipy.special import betaincinv
+
+    eta = np.asarray(eta, dtype=float)
+    s2 = np.broadcast_to(np.asarray(s2, dtype=float), eta.shape)
+    lat = expit(eta[:, None] + np.sqrt(s2)[:, None] * _GH_NODES[None, :])
+    m = lat @ _GH_WEIGHTS
+    v = np.maximum((lat ** 2) @ _GH_WEIGHTS - m ** 2, 1e-18)
+    v_obs = v + np.maximum(m - m ** 2 - v, 0.0) / np.asarray(impressions, dtype=float)
+    a, b = _beta_from_moments(m, v_obs)
+    tail = (1 - interval) / 2
+    point = expit(eta)
+    return np.minimum(betaincinv(a, b, tail), point), np.maximum(betaincinv(a, b, 1 - tail), point)
+
+
+def _varied_tests(E, experiment: np.ndarray, in_exp: np.ndarray, varied: bool = True) -> np.ndarray:
+    """Per word (column of the 0/1 matrix ``E``): in how many A/B tests some arms had it and others not.
+
+    Only there does a test tell what the word did; a word every arm of a test shares says
+    nothing about it (the test's own level absorbs it). With ``varied=False``: in how many
+    groups (e.g. weeks of ordinary posts) the word appears at all.
+    """
+    rows = np.flatnonzero(in_exp)
+    if rows.size == 0 or E.shape[1] == 0:
+        return np.zeros(E.shape[1], dtype=np.int64)
+    codes, uniq = pd.factorize(pd.Series(experiment[rows]).astype(str))
+    G = sp.csr_matrix((np.ones(rows.size), (np.arange(rows.size), codes)), shape=(rows.size, len(uniq)))
+    with_word = sp.csr_matrix(sp.csr_matrix(E)[rows].T @ G)  # arms with the word, per test
+    arms = np.asarray(G.sum(axis=0)).ravel()
+    if varied:
+        with_word.data = (with_word.data < arms[with_word.indices]).astype(float)
+    with_word.eliminate_zeros()
+    return np.diff(with_word.indptr).astype(np.int64)
+
+
 def _beta_from_moments(m: np.ndarray, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     m = np.clip(m, 1e-12, 1 - 1e-12)
     v = np.minimum(v, m * (1 - m) * (1 - 1e-9))
@@ -1376,19 +1760,11 @@ def _coverage(model: EngagementModel, k, n, eta, Xh) -> dict:
     Uses the fold models' logits (as in ``oof_``) with the final model's spread; a check of the
     interval's calibration, not of its width alone.
     """
-    from scipy import stats
-
     if len(k) == 0:
         return {"n_posts": 0, "coverage": float("nan"), "nominal": model.interval}
-    s2 = model.heldout_excess_variance_
-    lat = expit(eta[:, None] + np.sqrt(s2) * _GH_NODES[None, :])
-    m = lat @ _GH_WEIGHTS
-    v = np.maximum((lat ** 2) @ _GH_WEIGHTS - m ** 2, 1e-18)
-    v_obs = v + np.maximum(m - m ** 2 - v, 0.0) / n
-    a, b = _beta_from_moments(m, v_obs)
-    tail = (1 - model.interval) / 2
+    low, high = predictive_interval(eta, np.full(len(eta), model.heldout_excess_variance_), n, model.interval)
     r = k / n
-    inside = (r >= stats.beta.ppf(tail, a, b)) & (r <= stats.beta.ppf(1 - tail, a, b))
+    inside = (r >= low) & (r <= high)
     return {"n_posts": int(len(k)), "coverage": float(inside.mean()), "nominal": float(model.interval)}
 
 

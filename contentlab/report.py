@@ -878,7 +878,7 @@ def _load_model(ws, outcome: str, missing: list[str]):
         model, summary = ws.load_model(outcome)
     except ContentlabError:
         return None
-    except Exception as exc:  # the pickled model needs code this install does not have
+    except Exception as exc:  # the saved model needs code this install does not have
         missing.append(f"the saved model could not be loaded ({type(exc).__name__}: {exc}); run contentlab learn")
         return None
     stale = False
@@ -1599,7 +1599,9 @@ def _driver_changes(ws, ctx: _Context, drivers: pd.DataFrame) -> dict:
         return out
     prev = None
     try:
-        prev = _driver_frame(_previous_model(ws, ctx.outcome, row).drivers())
+        from .modelfile import loads
+
+        prev = _driver_frame(loads(row[5]).drivers())
     except Exception:
         try:
             summary = json.loads(row[4])
@@ -1634,20 +1636,6 @@ def _driver_changes(ws, ctx: _Context, drivers: pd.DataFrame) -> dict:
     out["change_rows"] = [{"label": r["label"], "before": _pct_or_none(r["effect_pct_prev"]),
                            "now": _pct_or_none(r["effect_pct"])} for _, r in moved.iterrows()]
     return out
-
-
-def _previous_model(ws, outcome: str, row):
-    """The fit before the newest, through the workspace's own loader when it can reach older fits.
-
-    Falls back to reading the stored blob of ``row`` for workspaces whose ``load_model`` takes no
-    ``offset`` (a pickle written by this same installation's ``learn``).
-    """
-    try:
-        return ws.load_model(outcome, offset=1)[0]
-    except TypeError:
-        import pickle
-
-        return pickle.loads(row[5])
 
 
 # ---------------------------------------------------------------- experiments

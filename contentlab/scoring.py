@@ -103,13 +103,13 @@ def prob_better(logit_a, logit_b, var_a, var_b, cov_ab=0.0):
     ``sd(diff) = sqrt(var_a + var_b - 2 cov_ab)``. With no uncertainty at all the
     answer is 1, 0 or 0.5 (tie).
     """
-    from scipy.stats import norm
+    from scipy.special import ndtr
 
     diff = np.asarray(logit_a, dtype=float) - np.asarray(logit_b, dtype=float)
     var = np.asarray(var_a, dtype=float) + np.asarray(var_b, dtype=float) - 2 * np.asarray(cov_ab, dtype=float)
     sd = np.sqrt(np.maximum(var, 0.0))
     with np.errstate(divide="ignore", invalid="ignore"):
-        p = np.where(sd > 0, norm.cdf(diff / np.where(sd > 0, sd, 1.0)), np.where(diff > 0, 1.0,
+        p = np.where(sd > 0, ndtr(diff / np.where(sd > 0, sd, 1.0)), np.where(diff > 0, 1.0,
                                                                                   np.where(diff < 0, 0.0, 0.5)))
     return float(p) if np.ndim(p) == 0 else p
 
@@ -120,9 +120,9 @@ def rate_lift(base_logit, diff, diff_sd, level: float = 0.9):
     ``lift = expit(base + diff) / expit(base) - 1``; the interval maps
     ``diff +- z sd`` the same way (monotone, so it is exact for a normal ``diff``).
     """
-    from scipy.stats import norm
+    from scipy.special import ndtri
 
-    z = norm.ppf(0.5 + level / 2)
+    z = ndtri(0.5 + level / 2)
     base = np.asarray(base_logit, dtype=float)
     d = np.asarray(diff, dtype=float)
     s = np.asarray(diff_sd, dtype=float)
@@ -252,22 +252,27 @@ class _Engine:
             X, channel, unseen_n, unseen_share, outside, prepared = m._draft_design(frame)
         finally:
             feat.n_jobs = old_jobs
+        shrink = prepared["_shrink"].to_numpy(float) if "_shrink" in prepared else np.zeros(len(frame))
         X = X.tocsr()
         eta = np.asarray(X @ self.coef).ravel() + self.intercept
         draws = None
         if self.boot_t is not None:
             draws = np.asarray(X @ self.boot_t) + self.boot_b
-        pred = self._predictions(eta, draws, channel, unseen_n, unseen_share, outside, impressions, frame.index)
+        pred = self._predictions(eta, draws, channel, unseen_n, unseen_share, outside, impressions, frame.index,
+                                 shrink)
+        pred["shrink_to_typical"] = shrink
         from .features import clean_headline
 
         texts = [clean_headline(t) for t in frame["headline"].tolist()]
         return _Design(X, channel, eta, draws, unseen_n, unseen_share, outside, texts, pred)
 
-    def _predictions(self, eta, draws, channel, unseen_n, unseen_share, outside, impressions, index) -> pd.DataFrame:
+    def _predictions(self, eta, draws, channel, unseen_n, unseen_share, outside, impressions, index,
+                     shrink=None) -> pd.DataFrame:
         """predict_frame's numbers from one design pass (same formulas as EngagementModel.predict_frame)."""
         param_var = np.var(draws, axis=1, ddof=1) if draws is not None else np.zeros(len(eta))
         return _Columns(
-            self.model.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions),
+            self.model.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions,
+                                        shrink=shrink),
             index,
         )
 
@@ -429,7 +434,7 @@ def _feature_phrase(name: str, value: float | None, when: str | None) -> str:
     if name == "posting time":
         return f"posting time ({when})" if when else "posting time (the channel's usual time)"
     if value is None:
-        from .model import FEATURE_LABELS
+        from .features import FEATURE_LABELS
 
         return FEATURE_LABELS.get(name, name)
     if name == "n_chars":
@@ -452,7 +457,7 @@ def _feature_phrase(name: str, value: float | None, when: str | None) -> str:
         return _plural(value, "emoji").replace("emojis", "emoji")
     if name == "posting time":
         return f"posting time ({when})" if when else "posting time (the channel's usual time)"
-    from .model import FEATURE_LABELS
+    from .features import FEATURE_LABELS
 
     return FEATURE_LABELS.get(name, name)
 
@@ -842,7 +847,10 @@ def score_drafts(
 
     # Reasons.
     reasons = _reason_rows(eng, d, work)
-    cols["reasons"] = ["; ".join(r["text"] for r in rows) for rows in reasons]
+    shrink = np.asarray(pred["shrink_to_typical"], dtype=float) if "shrink_to_typical" in pred else \
+        np.zeros(len(work))
+    cols["reasons"] = ["; ".join(t for t in [_far_reason(w)] + [r["text"] for r in rows] if t)
+                       for w, rows in zip(shrink, reasons)]
 
     # Distance from history.
     share = np.asarray(pred["unseen_term_share"], dtype=float)
@@ -915,6 +923,17 @@ def _planned_times(work: pd.DataFrame) -> list[str]:
             text += " (no hour given: channel's usual time)"
         out.append(text)
     return out
+
+
+def _far_reason(shrink: float) -> str:
+    """Why a draft unlike the history scores near its channel's typical post."""
+    if shrink >= 0.999:
+        return ("unlike any headline in your history (length or wording far outside its usual range), so it is "
+                "scored as the channel's typical post")
+    if shrink > 0:
+        return (f"partly outside your history's usual range, so its score is pulled {shrink:.0%} of the way toward "
+                "the channel's typical post")
+    return ""
 
 
 def _distance_note(share: float, n_unseen: int, outside: int, far: bool) -> str:

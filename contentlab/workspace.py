@@ -13,7 +13,6 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import pickle
 import sqlite3
 import sys
 import time
@@ -431,7 +430,9 @@ class Workspace:
 
     # ------------------------------------------------------------- models
     def save_model(self, outcome: str, fingerprint: str, summary: dict, model: object) -> int:
-        blob = pickle.dumps(model, protocol=pickle.HIGHEST_PROTOCOL)
+        from .modelfile import dumps
+
+        blob = dumps(model)
         with self.conn:
             cur = self.conn.execute(
                 "INSERT INTO models (created_at, outcome, fingerprint, summary, blob) VALUES (?,?,?,?,?)",
@@ -456,7 +457,9 @@ class Workspace:
                 f"No model in the workspace at {self.path}{' for ' + outcome if outcome else ''}. "
                 "Run: contentlab learn"
             )
-        model = pickle.loads(row[5])
+        from .modelfile import loads
+
+        model = loads(row[5], where=f"the workspace at {self.path}")
         return model, json.loads(row[4])
 
 

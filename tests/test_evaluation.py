@@ -13,12 +13,12 @@ from contentlab.errors import ContentlabError
 from contentlab.evaluation import (
     baseline_rates,
     deviance_table,
-    evaluate_files,
     hour_block,
     recenter_logits,
     smoothed_group_rates,
     within_experiment_deviance,
 )
+from contentlab.holdout import evaluate_files
 from contentlab.stats import binomial_deviance
 
 ROOT = Path(__file__).resolve().parent.parent

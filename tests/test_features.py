@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import functools
+
 import math
 from pathlib import Path
 
@@ -23,6 +25,14 @@ from contentlab.errors import ContentlabError
 #                 vis-it 2, your 1, lo-cal 2, branch 1, this 1, sum-mer 2.
 WORKED = "Libraries open doors to everyone. Visit your local branch this summer."
 WORDS, SENTENCES, SYLLABLES = 11, 2, 19
+
+
+@pytest.fixture(autouse=True, scope="module")
+def _nltk_reference_data():
+    """textstat (the reference) looks the CMU dictionary up through NLTK: give it contentlab's folder."""
+    from contentlab.langdata import ensure_language_data
+
+    ensure_language_data()
 
 
 def test_flesch_and_kincaid_recomputed_by_hand():
@@ -120,8 +130,19 @@ def test_vader_first_example_proportions():
     assert (compound, pos, neg) == (0.8316, 0.746, 0.0)
 
 
+@functools.lru_cache(maxsize=1)
+def _nltk_analyser():
+    """NLTK's own VADER (the reference), over the lexicon contentlab's language data folder holds."""
+    from nltk.sentiment.vader import SentimentIntensityAnalyzer
+
+    from contentlab.langdata import ensure_language_data
+
+    ensure_language_data()
+    return SentimentIntensityAnalyzer()
+
+
 def _nltk_scores(text):
-    s = F._vader().polarity_scores(text)
+    s = _nltk_analyser().polarity_scores(text)
     return s["compound"], s["pos"], s["neg"]
 
 
@@ -201,7 +222,13 @@ def test_featurizer_cleans_markup_before_features():
 
 @pytest.mark.parametrize("text, flags", [
     ("7 ways to use the library", {"leading_number": 1, "list_form": 1, "has_digit": 1}),
-    ("Ten things you should know", {"leading_number": 1, "list_form": 1, "second_person": 1}),
+    # a count written as a word is a number (issue 10, item 3)
+    ("Ten things you should know", {"leading_number": 1, "list_form": 1, "second_person": 1, "has_digit": 1}),
+    ("Five quiet changes", {"leading_number": 1, "list_form": 1, "has_digit": 1}),
+    ("Why no one reads the fine print", {"n_negations": 1, "starts_with_question_word": 1}),
+    ("We asked them: is this our best year?", {"is_question": 1, "split_colon_dash": 1, "n_first_plural": 2,
+                                               "n_third_person": 1, "n_this_here": 1, "n_superlatives": 1}),
+    ("I can't believe my luck", {"n_first_singular": 2, "n_negations": 1}),
     ("Is the library open?", {"is_question": 1}),
     ("Open late tonight!", {"has_exclamation": 1}),
     ('Readers say "wonderful"', {"has_quote": 1}),
@@ -319,3 +346,23 @@ def test_featurizer_never_raises_and_returns_finite_values(fitted, headlines):
     assert np.isfinite(values).all()
     assert fs.terms.shape == (len(headlines), len(fitted.term_names_))
     assert all(math.isfinite(v) for v in fs.terms.data)
+
+
+def test_stop_word_copy_equals_scikit_learn():
+    # contentlab keeps its own copy so that scoring never imports scikit-learn (issue 10, item 7)
+    from sklearn.feature_extraction.text import ENGLISH_STOP_WORDS
+
+    assert F.ENGLISH_STOP_WORDS == frozenset(ENGLISH_STOP_WORDS)
+
+
+def test_scoring_path_imports_neither_nltk_nor_scikit_learn():
+    import subprocess
+    import sys
+
+    code = ("import sys; from contentlab.features import text_features, topic_tokens; "
+            "text_features('Five quiet changes to the reading room!'); topic_tokens('Five quiet changes'); "
+            "import contentlab.model, contentlab.modelfile, contentlab.scoring; "
+            "print(sorted(m for m in ('nltk', 'sklearn', 'scipy.stats') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "[]"

@@ -54,13 +54,9 @@ NO_NETWORK_SCRIPT = textwrap.dedent(
         "compound": float(fs.dense["vader_compound"].iloc[0]),
         "fre": float(fs.dense["flesch_reading_ease"].iloc[1]),
         "textstat_fre": float(textstat.flesch_reading_ease(posts["headline"].iloc[1])),
-        "nltk_download_is_refusal": nltk.download.__name__,
+        # contentlab must leave a host program's nltk.download alone
+        "nltk_download_untouched": nltk.download is refuse,
     }
-    try:
-        nltk.download("vader_lexicon")
-        out["download"] = "allowed"
-    except Exception as exc:  # noqa: BLE001 - any refusal will do
-        out["download"] = type(exc).__name__
     print(json.dumps(out))
     """
 )
@@ -79,9 +75,7 @@ def test_featurizing_works_offline_from_a_fresh_data_folder(tmp_path):
     # VADER reference example (vaderSentiment README; Hutto and Gilbert 2014): 0.8316
     assert out["compound"] == pytest.approx(0.8316, abs=1e-4)
     assert out["fre"] == out["textstat_fre"]
-    # contentlab replaced nltk.download with a refusal of its own
-    assert out["nltk_download_is_refusal"] == "_refuse_download"
-    assert out["download"] == "ContentlabError"
+    assert out["nltk_download_untouched"] is True
 
 
 @pytest.fixture(scope="module")

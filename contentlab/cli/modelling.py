@@ -38,7 +38,9 @@ def register(subparsers) -> None:
         description=(
             "Each effect of the saved model as the relative change of the rate for a meaningful step "
             "(one more negative word, ten more characters, 18:00 rather than 09:00, a topic word present), "
-            "with a 90% bootstrap interval that resamples whole experiments or weeks, ranked by size."
+            "with a 90% bootstrap interval that resamples whole experiments or weeks: how the headline is "
+            "written first, then when it is posted, then topic words (only those with support), the surest "
+            "effects first in each part."
         ),
         example="contentlab drivers --format csv > drivers.csv",
     )
@@ -167,12 +169,20 @@ def format_drivers(frame, model, cautions: list[str]) -> str:
     head = (f"What went with more or fewer {model.outcome_} per impression in your history "
             f"(relative change at the typical rate {model.typical_rate_:.2%}, {model.interval:.0%} bootstrap interval):")
     lines = [head, ""]
-    lines.append(f"{'#':>3}  {'driver':<28} {'step':<24} {'change':>8} {'interval':>17}  {'evidence':<22}")
+    group = None
     for r in frame.itertuples():
+        if r.group != group:
+            group = r.group
+            title = {"writing style": "How the headline is written", "posting time": "When it is posted",
+                     "topic words": "What it is about (topic words)"}.get(group, str(group))
+            lines.append(f"{title} (surest first):")
+            lines.append(f"{'#':>3}  {'driver':<34} {'step':<24} {'change':>8} {'interval':>17}  {'evidence':<22}")
         interval = f"{r.low:+.1%} to {r.high:+.1%}" if r.low == r.low else "n/a"
         flag = "  uncertain" if r.uncertain else ""
-        lines.append(f"{r.rank:>3}  {r.driver[:28]:<28} {r.step[:24]:<24} {r.relative_change:>+8.1%} "
+        lines.append(f"{r.rank:>3}  {r.label[:34]:<34} {r.step[:24]:<24} {r.relative_change:>+8.1%} "
                      f"{interval:>17}  {r.evidence[:22]:<22}{flag}")
+        if r.rank < len(frame) and frame["group"].iloc[r.rank] != group:
+            lines.append("")  # between groups; the blank line before "In words" ends the last
     lines.append("")
     lines.append("In words:")
     lines.extend(f"  - {s}" for s in driver_sentences(frame, 5))
@@ -184,7 +194,7 @@ def format_drivers(frame, model, cautions: list[str]) -> str:
 # ----------------------------------------------------------------------------- evaluate
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
-    from ..evaluation import evaluate_files
+    from ..holdout import evaluate_files
     from ..workspace import check_timezone
 
     check_timezone(args.timezone)
