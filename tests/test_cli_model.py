@@ -134,3 +134,29 @@ def test_evaluate_cli(tmp_path, capsys):
     assert code == 0 and "Calibration" in out
     code, _, err = run(capsys, "evaluate", "--train", str(tmp_path / "missing.csv"), "--test", str(test))
     assert code == 2 and "missing.csv" in err
+
+
+@pytest.mark.parametrize("fmt", ["table", "json", "csv"])
+def test_drivers_from_the_saved_summary_match_the_model(workspace, capsys, monkeypatch, fmt):
+    """`drivers` answers from the table `learn` saved with the model; it must print exactly what the model gives."""
+    from contentlab.cli import modelling
+
+    code, fast, err = run(capsys, "drivers", "--workspace", str(workspace), "--format", fmt)
+    assert code == 0, err
+    monkeypatch.setattr(modelling, "_saved_drivers", lambda ws, outcome, top: (None, None))
+    code, slow, err = run(capsys, "drivers", "--workspace", str(workspace), "--format", fmt)
+    assert code == 0, err
+    assert fast == slow
+
+
+def test_drivers_with_another_top_comes_from_the_model(workspace, capsys, monkeypatch):
+    from contentlab.cli import modelling
+
+    calls = []
+    real = modelling._saved_drivers
+    monkeypatch.setattr(modelling, "_saved_drivers", lambda ws, o, top: calls.append(top) or real(ws, o, top))
+    code, out, err = run(capsys, "drivers", "--workspace", str(workspace), "--top", "3", "--format", "json")
+    assert code == 0, err
+    assert calls == [3]
+    topics = [d for d in json.loads(out)["drivers"] if d["kind"] == "topic term"]
+    assert len(topics) <= 3

@@ -8,6 +8,9 @@ import sys
 
 from . import add_format_option, add_workspace_option, command_parser
 
+# Topic words `drivers` lists unless --top says otherwise (learn saves that table with the model).
+DEFAULT_TOP_TERMS = 15
+
 
 def register(subparsers) -> None:
     p = command_parser(
@@ -46,7 +49,8 @@ def register(subparsers) -> None:
     )
     p.add_argument("--outcome", choices=("clicks", "engagements"), default=None,
                    help="which saved model (default: the newest)")
-    p.add_argument("--top", type=int, default=15, metavar="N", help="topic words to list (default: %(default)s)")
+    p.add_argument("--top", type=int, default=DEFAULT_TOP_TERMS, metavar="N",
+                   help="topic words to list (default: %(default)s)")
     add_format_option(p)
     add_workspace_option(p)
     p.set_defaults(handler=cmd_drivers)
@@ -93,6 +97,10 @@ def cmd_learn(args: argparse.Namespace) -> int:
         drivers = model.drivers()
         summary["drivers"] = _records(drivers)
         summary["cautions"] = drivers.attrs["cautions"]
+        # What `contentlab drivers` prints, so it can answer from this summary without loading the model.
+        summary["drivers_top"] = DEFAULT_TOP_TERMS
+        summary["interval"] = model.interval
+        summary["typical_rate"] = model.typical_rate_
         model_id = ws.save_model(args.outcome, fingerprint, summary, model)
     if args.format == "json":
         print(json.dumps({"model_id": model_id, **summary}, indent=2, default=_json_default))
@@ -145,29 +153,58 @@ def cmd_drivers(args: argparse.Namespace) -> int:
     if args.top < 0:
         raise ContentlabError(f"--top must be 0 or more; got {args.top}")
     with Workspace.open(args.workspace, create=False) as ws:
-        model, summary = ws.load_model(args.outcome)
-        stale = ws.fingerprint(model.outcome_) != ws.latest_model_row(args.outcome)[3]
-    frame = model.drivers(top_terms=args.top)
-    cautions = list(frame.attrs["cautions"])
+        frame, about = _saved_drivers(ws, args.outcome, args.top)
+        if frame is None:  # another --top, or a model saved before its summary kept the table
+            model, _ = ws.load_model(args.outcome)
+            frame = model.drivers(top_terms=args.top)
+            about = {"outcome": model.outcome_, "interval": model.interval, "typical_rate": model.typical_rate_,
+                     "cautions": frame.attrs["cautions"]}
+        stale = ws.fingerprint(about["outcome"]) != ws.latest_model_row(args.outcome)[3]
+    cautions = list(about["cautions"])
     if stale:
         cautions.insert(0, "The history changed since this model was learned; run contentlab learn to update it.")
     if args.format == "json":
-        print(json.dumps({"outcome": model.outcome_, "interval": model.interval, "drivers": _records(frame),
+        print(json.dumps({"outcome": about["outcome"], "interval": about["interval"], "drivers": _records(frame),
                           "cautions": cautions}, indent=2, default=_json_default))
     elif args.format == "csv":
         from ..safety import write_csv
 
         write_csv(frame, sys.stdout)
     else:
-        print(format_drivers(frame, model, cautions))
+        print(format_drivers(frame, about, cautions))
     return 0
 
 
-def format_drivers(frame, model, cautions: list[str]) -> str:
+def _saved_drivers(ws, outcome: str | None, top: int):
+    """The drivers table `learn` saved in the newest model's summary, when it answers this --top; else (None, None).
+
+    Reading it from the summary's JSON spares `drivers` loading the model and the libraries behind it.
+    """
+    row = ws.latest_model_row(outcome)
+    if row is None:
+        return None, None  # load_model says there is no model
+    try:
+        summary = json.loads(row[4])
+    except (TypeError, ValueError):
+        return None, None
+    needed = ("drivers", "drivers_top", "interval", "typical_rate", "cautions", "outcome")
+    if not all(k in summary for k in needed) or summary["drivers_top"] != top or not summary["drivers"]:
+        return None, None
+    import pandas as pd
+
+    frame = pd.DataFrame(summary["drivers"])
+    for column in ("relative_change", "low", "high"):
+        if column in frame:
+            frame[column] = pd.to_numeric(frame[column], errors="coerce")  # JSON null stands for NaN
+    return frame, {k: summary[k] for k in needed if k != "drivers"}
+
+
+def format_drivers(frame, about: dict, cautions: list[str]) -> str:
     from ..drivers import driver_sentences
 
-    head = (f"What went with more or fewer {model.outcome_} per impression in your history "
-            f"(relative change at the typical rate {model.typical_rate_:.2%}, {model.interval:.0%} bootstrap interval):")
+    head = (f"What went with more or fewer {about['outcome']} per impression in your history "
+            f"(relative change at the typical rate {about['typical_rate']:.2%}, "
+            f"{about['interval']:.0%} bootstrap interval):")
     lines = [head, ""]
     group = None
     for r in frame.itertuples():
