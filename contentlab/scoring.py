@@ -912,7 +912,7 @@ def _planned_times(work: pd.DataFrame) -> list[str]:
     """'Thu 2026-12-03 07:30' per draft, or the fallback the model uses when no time is given."""
     out = []
     for date, hour, wd in zip(work["local_date"], work["local_hour"], work["local_weekday"]):
-        if not date:
+        if pd.isna(date) or not date or pd.isna(wd):  # a draft without a time beside drafts with one
             out.append("no time given: channel's usual time")
             continue
         text = f"{_WEEKDAY_NAMES[int(wd)]} {date}"

@@ -467,3 +467,14 @@ def test_a_number_written_as_a_word_is_a_number_in_reasons_and_edits(demo):
     from contentlab.edits import add_number
 
     assert add_number("Five quiet changes to the reading room") == []  # never "add a number" to it
+
+
+def test_drafts_with_and_without_a_planned_time_score_together(demo):
+    """One draft with a publish_at beside one without (as the web API sends them) scores both."""
+    drafts = pd.DataFrame({"headline": ["5 things to know about the makerspace laser cutter", "Inside the makerspace"],
+                           "channel": ["newsletter", "newsletter"],
+                           "publish_at": ["2026-12-03T07:30", None]})
+    out = score(demo, drafts)
+    assert out["planned_time"].iloc[0].startswith("Thu 2026-12-03 07:30")
+    assert out["planned_time"].iloc[1] == "no time given: channel's usual time"
+    assert np.isfinite(out["predicted_rate"]).all()
