@@ -324,6 +324,20 @@ def test_api_score_matches_the_library(client, ws_dir):
     assert json.loads(r.text) == r.json()  # plain JSON, no NaN
 
 
+def test_api_score_drafts_with_and_without_fields(client):
+    """Drafts in one call may differ in which optional fields they carry; what is missing comes back as null."""
+    body = {"drafts": [{"headline": "5 things to know about the makerspace laser cutter", "channel": "newsletter",
+                        "publish_at": "2026-12-03T07:30"},
+                       {"headline": "<script>alert(1)</script> Inside the makerspace", "channel": "newsletter"},
+                       {"headline": "Winter reading starts Monday", "channel": "blog"}]}
+    r = client.post("/api/score", json=body)
+    assert r.status_code == 200, r.text
+    out = r.json()["drafts"]
+    assert [d["publish_at"] for d in out] == ["2026-12-03T07:30", None, None]
+    assert all(d["rate_low"] <= d["predicted_rate"] <= d["rate_high"] for d in out)
+    assert "NaN" not in r.text
+
+
 @pytest.mark.parametrize("body, status, words", [
     ({"drafts": []}, 400, "non-empty list"),
     ({"drafts": [{"channel": "newsletter"}]}, 400, 'draft 1, field "headline"'),

@@ -11,11 +11,10 @@ from __future__ import annotations
 import json
 
 from starlette.requests import Request
-from starlette.responses import JSONResponse
 from starlette.routing import Route
 
 from . import services
-from .common import ApiError, blocking
+from .common import ApiError, ApiResponse, blocking
 
 
 async def _json_body(request: Request):
@@ -29,29 +28,29 @@ async def _json_body(request: Request):
         raise ApiError(f"The body is not valid JSON ({exc}).") from None
 
 
-async def score(request: Request) -> JSONResponse:
+async def score(request: Request) -> ApiResponse:
     payload = await _json_body(request)
     drafts = services.check_drafts_payload(payload)
     state = request.app.state.workspace
     scored, meta = await blocking(services.score, state, drafts, suggest=bool(payload.get("suggest", False)))
-    return JSONResponse({"drafts": scored, **meta})
+    return ApiResponse({"drafts": scored, **meta})
 
 
-async def experiments(request: Request) -> JSONResponse:
+async def experiments(request: Request) -> ApiResponse:
     rows = await blocking(services.experiments_list, request.app.state.workspace)
-    return JSONResponse({"experiments": rows})
+    return ApiResponse({"experiments": rows})
 
 
-async def experiment(request: Request) -> JSONResponse:
+async def experiment(request: Request) -> ApiResponse:
     name = request.path_params["name"]
     state = request.app.state.workspace
     await blocking(services.require_experiment, state, name)
     out = await blocking(services.status, state, name)
     out.pop("_status", None)
-    return JSONResponse(out)
+    return ApiResponse(out)
 
 
-async def next_split(request: Request) -> JSONResponse:
+async def next_split(request: Request) -> ApiResponse:
     name = request.path_params["name"]
     payload = await _json_body(request)
     if not isinstance(payload, dict) or set(payload) - {"impressions", "policy"}:
@@ -63,22 +62,22 @@ async def next_split(request: Request) -> JSONResponse:
     if policy is not None and not isinstance(policy, str):
         raise ApiError('"policy" must be "thompson" or "top-two".')
     out = await blocking(services.allocation, state, name, payload.get("impressions", 1000), policy)
-    return JSONResponse(out)
+    return ApiResponse(out)
 
 
-async def results(request: Request) -> JSONResponse:
+async def results(request: Request) -> ApiResponse:
     name = request.path_params["name"]
     payload = await _json_body(request)
     rows, cumulative = services.check_results_payload(payload)
     state = request.app.state.workspace
     await blocking(services.require_experiment, state, name)
     out = await blocking(services.record, state, name, rows, cumulative)
-    return JSONResponse(out)
+    return ApiResponse(out)
 
 
-async def drivers(request: Request) -> JSONResponse:
+async def drivers(request: Request) -> ApiResponse:
     rows, cautions = await blocking(services.drivers, request.app.state.workspace)
-    return JSONResponse({"drivers": rows, "cautions": cautions})
+    return ApiResponse({"drivers": rows, "cautions": cautions})
 
 
 routes = [

@@ -56,8 +56,37 @@ async def blocking(func: Callable, *args, **kwargs):
     return await run_in_threadpool(func, *args, **kwargs)
 
 
+class ApiResponse(JSONResponse):
+    """JSON whose every value is plain: numpy scalars become numbers, NaN, infinity and pandas' missing become null.
+
+    JSON has no NaN, and a missing cell (a draft sent without ``publish_at``) must not turn a good answer into
+    a server error.
+    """
+
+    def render(self, content: Any) -> bytes:
+        from ..experiments import jsonable
+
+        return super().render(jsonable(_no_missing(content)))
+
+
+def _no_missing(obj: Any) -> Any:
+    if isinstance(obj, dict):
+        return {k: _no_missing(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_no_missing(v) for v in obj]
+    if obj is not None and not isinstance(obj, (str, bool, int, float)):
+        import pandas as pd
+
+        try:
+            if pd.isna(obj):  # pd.NA, pd.NaT
+                return None
+        except (TypeError, ValueError):
+            pass
+    return obj
+
+
 def json_error(message: str, status: int) -> JSONResponse:
-    return JSONResponse({"error": message}, status_code=status)
+    return ApiResponse({"error": message}, status_code=status)
 
 
 def finite(value: Any) -> float | None:
