@@ -1748,6 +1748,21 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
     return ThompsonBandit.from_dict({"format": "contentlab.bandit/1", "params": params, "state": state})
 
 
+def experiment_bandit(ws: Workspace, name: str, *, with_results: bool = True) -> ThompsonBandit:
+    """The bandit `status` and `next` use for experiment ``name`` (its stored prior), with or without its results.
+
+    Without results it is the state before the first result, so a caller can replay the recorded rounds
+    (the web page's probability-of-being-best chart) through exactly the same prior.
+    """
+    bandit = _bandit(ws, _load(ws, name))
+    if with_results:
+        return bandit
+    data = bandit.to_dict()
+    n_arms = len(data["params"]["arms"])
+    data["state"] = {"impressions": [0.0] * n_arms, "clicks": [0.0] * n_arms, "n_updates": 0}
+    return ThompsonBandit.from_dict(data)
+
+
 # --------------------------------------------------------------------------
 # Small helpers.
 # --------------------------------------------------------------------------

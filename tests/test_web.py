@@ -570,3 +570,22 @@ def test_serve_command_on_another_address_prints_and_requires_a_token(ws_dir):
     finally:
         proc.terminate()
         proc.wait(timeout=20)
+
+
+def test_prob_best_timeline_uses_the_experiments_own_prior(template_ws, tmp_path):
+    """With lopsided results (one arm shown 250 times more), the chart's last point must still be the status's
+    P(best): the replay starts from the experiment's stored prior, not from a prior of its own."""
+    from contentlab.experiments import record_results
+    from contentlab.web import insight
+    from contentlab.web.state import WorkspaceState
+
+    target = tmp_path / "ws"
+    shutil.copytree(template_ws, target)
+    with Workspace.open(target, create=False) as ws:
+        results = pd.DataFrame({"arm": ["A", "B"], "impressions": [5000, 20], "clicks": [150, 0],
+                                "at": ["2026-12-06T09:00", "2026-12-06T09:00"]})
+        record_results(ws, "winter-reading", results)
+        st = experiment_status(ws, "winter-reading")
+    last = insight.prob_best_timeline(WorkspaceState(target), "winter-reading", st)["points"][-1]
+    for arm, p in zip(st.arms["arm"], st.arms["prob_best"]):
+        assert last["prob_best"][arm] == pytest.approx(p, abs=0.04)

@@ -191,19 +191,17 @@ def post_detail(state: WorkspaceState, warm: Warm, post_id: str) -> dict:
 def prob_best_timeline(state: WorkspaceState, name: str, status) -> dict:
     """P(best) per arm after each recording round (distinct result time), oldest first."""
     from ..bandit import ThompsonBandit
+    from ..experiments import experiment_bandit
 
-    arms = status.arms
-    names = arms["arm"].tolist()
+    names = status.arms["arm"].tolist()
     with state.open() as ws:
         obs = pd.read_sql_query(
             "SELECT arm, at, impressions, clicks FROM observations WHERE experiment=? ORDER BY at, rowid",
             ws.conn, params=(name,))
-    means = arms["prior_mean"].to_numpy(float)
-    strength = float(arms["prior_strength"].max()) if len(arms) else 0.0
-    use_means = bool(np.all(np.isfinite(means)) and strength > 0)
-    bandit = ThompsonBandit(arms=names, prior_means=list(means) if use_means else None,
-                            prior_strength=strength if use_means else 0.0, n_draws=TIMELINE_DRAWS,
-                            random_state=20261203)
+        # The experiment's own prior (learned from past tests, or the model's), as status uses it.
+        start = experiment_bandit(ws, name, with_results=False).to_dict()
+    start["params"].update(n_draws=TIMELINE_DRAWS, random_state=20261203)
+    bandit = ThompsonBandit.from_dict(start)
     rounds = sorted(obs["at"].unique()) if len(obs) else []
     if len(rounds) > MAX_ROUNDS:
         keep = set(np.linspace(0, len(rounds) - 1, MAX_ROUNDS).round().astype(int))
