@@ -12,13 +12,29 @@ from markupsafe import Markup, escape
 PALETTE = ["#3b5ba5", "#8e5ea2", "#4a4a4a", "#a0662a", "#2a7f99", "#b0447a", "#6b6b2a", "#5a7fd1"]
 
 
+# The same chart is drawn at two sizes and the style sheet shows the one that fits: text stays at 12 px of
+# the drawing, which is 11 px or more on screen whether the chart fills a desktop column or a 390 px phone.
+SIZES = (("wide", 640, 260, 3), ("narrow", 340, 220, 2))
+
+
 def line_chart(series: dict[str, list[tuple[float, float]]], *, y_label: str, x_label: str,
-               y_format=lambda v: f"{v:.0%}", y_max: float | None = None, width: int = 640,
-               height: int = 260, x_ticks: list[tuple[float, str]] | None = None) -> Markup:
+               y_format=lambda v: f"{v:.0%}", y_max: float | None = None,
+               x_ticks: list[tuple[float, str]] | None = None) -> Markup:
     """Lines of (x, y) points, one per named series, with a legend below; empty series are skipped."""
-    points = [p for s in series.values() for p in s]
-    if not points:
+    if not any(series.values()):
         return Markup("")
+    charts = []
+    for size, width, height, per_row in SIZES:
+        ticks = x_ticks
+        if ticks and size == "narrow" and len(ticks) > 3:  # a phone has room for the ends and the middle
+            ticks = [ticks[0], ticks[len(ticks) // 2], ticks[-1]]
+        charts.append(_chart(series, y_label=y_label, x_label=x_label, y_format=y_format, y_max=y_max,
+                             width=width, height=height, per_row=per_row, x_ticks=ticks, size=size))
+    return Markup("".join(charts))
+
+
+def _chart(series, *, y_label, x_label, y_format, y_max, width, height, per_row, x_ticks, size) -> str:
+    points = [p for s in series.values() for p in s]
     left, right, top, bottom = 56, 12, 12, 36
     xs = [p[0] for p in points]
     x0, x1 = min(xs), max(xs)
@@ -33,7 +49,8 @@ def line_chart(series: dict[str, list[tuple[float, float]]], *, y_label: str, x_
     def sy(y):
         return top + h - (y / y1) * h
 
-    parts = [f'<svg class="chart" viewBox="0 0 {width} {height + 22 * ((len(series) + 2) // 3)}" role="img" '
+    rows = (len(series) + per_row - 1) // per_row
+    parts = [f'<svg class="chart {size}" viewBox="0 0 {width} {height + 22 * rows}" role="img" '
              f'aria-label="{escape(y_label)}" xmlns="http://www.w3.org/2000/svg">']
     for i in range(5):
         v = y1 * i / 4
@@ -57,9 +74,14 @@ def line_chart(series: dict[str, list[tuple[float, float]]], *, y_label: str, x_
         parts.append(f'<polyline points="{path}" fill="none" stroke="{colour}" stroke-width="2"/>')
         if len(pts) == 1:
             parts.append(f'<circle cx="{sx(pts[0][0]):.1f}" cy="{sy(pts[0][1]):.1f}" r="3" fill="{colour}"/>')
-        lx = left + (i % 3) * (w / 3)
-        ly = height + 22 * (i // 3) + 8
+        lx = left + (i % per_row) * (w / per_row)
+        ly = height + 22 * (i // per_row) + 8
         parts.append(f'<rect x="{lx:.1f}" y="{ly - 9}" width="12" height="12" fill="{colour}"/>')
-        parts.append(f'<text x="{lx + 18:.1f}" y="{ly + 1}" font-size="12" fill="#222">{escape(name[:40])}</text>')
+        parts.append(f'<text x="{lx + 18:.1f}" y="{ly + 1}" font-size="12" fill="#222">{escape(_fit(name, int((w / per_row - 24) / 7)))}</text>')
     parts.append("</svg>")
-    return Markup("".join(parts))
+    return "".join(parts)
+
+
+def _fit(name: str, chars: int) -> str:
+    """A legend name cut to the room beside its swatch (about 7 units a character at 12 px), marked when cut."""
+    return name if len(name) <= chars else name[: max(chars - 1, 1)] + "…"
