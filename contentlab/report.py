@@ -1953,24 +1953,24 @@ def _call_scoring(mod, ws, ctx, model, queued) -> dict:
     out["drafts_meaning"] = ("The 90% interval is where one post's rate is likely to land, post-to-post luck "
                              "included, so the intervals of drafts in a group nearly always overlap. Whether the top "
                              "draft is truly better than the next is read from the probability beside it (from the "
-                             f"difference of the two predictions): below {LIKELY_AHEAD:.0%} it is a close call, "
+                             f"difference of the two predictions): below {_likely_ahead():.0%} it is a close call, "
                              "which is what an experiment is for; even above it, the ranking is a prediction, "
                              "not a result.")
     out["drafts_cautions"] = [str(c) for c in scored.attrs.get("cautions", [])]
     return out
 
 
-LIKELY_AHEAD = 0.8   # P(truly better than the next draft) from which the report calls a lead "likely" (our choice)
+def _likely_ahead() -> float:
+    from .scoring import LIKELY_AHEAD
+
+    return LIKELY_AHEAD
 
 
 def _lead_verdict(p: float | None) -> str:
-    """How the report words a group leader's lead, from P(truly better than the next draft) alone."""
-    if _is_missing(p):
-        return ""
-    shown = ">99%" if p > 0.995 else f"{100 * p:.0f}%"
-    if p >= LIKELY_AHEAD:
-        return f"likely better than the next draft (P(truly better) {shown}); a test would confirm it"
-    return f"a close call with the next draft (P(truly better) {shown})"
+    """The scoring module's wording of a group leader's lead, so the report and `score` say the same."""
+    from .scoring import lead_verdict
+
+    return "" if _is_missing(p) else lead_verdict(float(p))
 
 
 def _is_missing(v) -> bool:

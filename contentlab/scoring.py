@@ -56,7 +56,9 @@ __all__ = [
 from .readers import MAX_DRAFT_CHARS  # noqa: E402  (one limit for every drafts reader)
 # "Clearly ahead": the model's probability that the top draft is truly better than the next
 # is at least this (the same 90% the intervals use; our choice).
-CLEARLY_AHEAD = 0.9
+# From this P(truly better than the next draft) on, a group's leader is called "likely better" (our choice);
+# below it the lead is a close call, which is what an experiment is for.
+LIKELY_AHEAD = 0.8
 # Past posts with fewer impressions than this are left out of percentiles: their observed
 # rates are mostly binomial noise (common practice; the threshold is ours).
 MIN_PERCENTILE_IMPRESSIONS = 100
@@ -965,21 +967,22 @@ def _rank(eng: _Engine, d: _Design, work: pd.DataFrame) -> dict[str, np.ndarray]
         var = eng.diff_var(d, a, d, b)
         p_next[a] = prob_better(d.eta[a], d.eta[b], var, 0.0, 0.0)
         next_gap[a] = _expit(d.eta[a]) / _expit(d.eta[b]) - 1.0
-        top = order[0]
-        shown = _prob_text(p_next[top])
-        if p_next[top] >= CLEARLY_AHEAD:
-            verdict[top] = f"clearly ahead of the next draft (P(truly better) {shown})"
-        else:
-            verdict[top] = f"within noise of the next draft (P(truly better) {shown})"
+        verdict[order[0]] = lead_verdict(p_next[order[0]])
     return {"group_rank": rank, "p_better_than_next": p_next, "gap_to_next": next_gap, "verdict": verdict}
 
 
-def _prob_text(p: float) -> str:
-    if p > 0.995:
-        return "> 0.99"
-    if p < 0.005:
-        return "< 0.01"
-    return f"= {p:.2f}"
+def lead_verdict(p: float | None) -> str:
+    """How a group's leader is worded everywhere (score, report, web), from P(truly better than the next) alone.
+
+    The drafts' 90% ranges nearly always overlap (they include post-to-post luck), so the lead is judged on
+    the difference of the two predictions, and even a likely lead is a prediction that a test would confirm.
+    """
+    if p is None or not np.isfinite(p):
+        return ""
+    shown = ">99%" if p > 0.995 else "<1%" if p < 0.005 else f"{100 * p:.0f}%"
+    if p >= LIKELY_AHEAD:
+        return f"likely better than the next draft (P(truly better) {shown}); a test would confirm it"
+    return f"a close call with the next draft (P(truly better) {shown})"
 
 
 def _slot_columns(model, work: pd.DataFrame, history: pd.DataFrame | None, tz: str,

@@ -607,7 +607,7 @@ def test_demo_report_next_week_slots_and_drafts(demo_ws, demo_report):
     assert all(r["evidence"] for r in nw["recommendations"])
     # A leader's wording follows its probability of being truly better than the next draft, and never
     # contradicts the section's own rule (overlapping ranges are close calls unless that probability is high).
-    from contentlab.report import LIKELY_AHEAD
+    from contentlab.scoring import LIKELY_AHEAD
 
     for row, (_, d) in zip(sorted(nw["draft_rows"], key=lambda r: (r["group"], r["headline"])),
                            drafts.sort_values(["group", "headline"]).iterrows()):
