@@ -396,6 +396,13 @@ class EngagementModel(_Params):
         Held-out criterion per alpha.
     overdispersion_ : float
         Post-to-post variance of the log-odds that the features do not explain.
+    level_drift_, week_level_variance_ : float
+        How far a later week's channel level strays from the learned one, measured on the time
+        folds (see :func:`level_drift`): variance per week ahead, and the part that no distance
+        explains (kept for reading; the held-out spread already holds it).
+    heldout_weeks_ahead_ : float
+        Mean weeks between a held-out post and its fold's training weeks; a draft further ahead
+        (its ``published_at``) gets ``level_drift_`` per extra week added to its interval.
     boot_coef_ : ndarray of shape (n_bootstrap, n_shared + 1), float32
         Bootstrap coefficients (dense, terms, wording, channels, then the intercept).
     validation_ : dict
