@@ -260,8 +260,9 @@ class _Engine:
         draws = None
         if self.boot_t is not None:
             draws = np.asarray(X @ self.boot_t) + self.boot_b
+        ahead = m._weeks_ahead(frame) if hasattr(m, "_weeks_ahead") else None
         pred = self._predictions(eta, draws, channel, unseen_n, unseen_share, outside, impressions, frame.index,
-                                 shrink)
+                                 shrink, ahead)
         pred["shrink_to_typical"] = shrink
         from .features import clean_headline
 
@@ -269,12 +270,12 @@ class _Engine:
         return _Design(X, channel, eta, draws, unseen_n, unseen_share, outside, texts, pred)
 
     def _predictions(self, eta, draws, channel, unseen_n, unseen_share, outside, impressions, index,
-                     shrink=None) -> pd.DataFrame:
+                     shrink=None, weeks_ahead=None) -> pd.DataFrame:
         """predict_frame's numbers from one design pass (same formulas as EngagementModel.predict_frame)."""
         param_var = np.var(draws, axis=1, ddof=1) if draws is not None else np.zeros(len(eta))
         return _Columns(
             self.model.interval_columns(eta, param_var, unseen_n, unseen_share, outside, channel, impressions,
-                                        shrink=shrink),
+                                        shrink=shrink, weeks_ahead=weeks_ahead),
             index,
         )
 

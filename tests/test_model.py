@@ -395,3 +395,80 @@ def test_fit_steps_run_alone(demo_model):
     fresh.alpha_, fresh.adaptive_ = demo_model.alpha_, demo_model.adaptive_
     X0, X, glm, gidx = fresh._final_fit(data)
     assert X0.shape[1] == fresh.n_shared_ and X.shape[1] == X0.shape[1] + len(gidx)
+
+
+def test_smoothed_penalty_choice_prefers_a_broad_good_region():
+    # One lucky alpha (a spike of held-out accuracy) beside a broad plateau: the raw minimum takes
+    # the spike, the smoothed criterion (a moving average over +-half a decade, worked out by hand
+    # here) takes the plateau. Kernel smoothing of a noisy CV curve is common practice.
+    from contentlab.model import smooth_criterion
+
+    alphas = [1e-1, 10 ** -1.5, 1e-2, 10 ** -2.5, 1e-3, 10 ** -3.5, 1e-4]
+    crit = [-0.60, -0.60, -0.64, -0.64, -0.64, -0.60, -0.66]
+    cv = pd.DataFrame({"alpha": alphas, "adaptive": False, "criterion": crit})
+    out = smooth_criterion(cv)
+    assert out["smoothed"].iloc[3] == pytest.approx(-0.64)  # (-0.64 - 0.64 - 0.64) / 3
+    assert out["smoothed"].iloc[6] == pytest.approx((-0.60 - 0.66) / 2)
+    assert out["alpha"].iloc[out["smoothed"].idxmin()] == pytest.approx(10 ** -2.5)
+    assert out["alpha"].iloc[out["criterion"].idxmin()] == pytest.approx(1e-4)
+    # the variants are smoothed apart
+    both = pd.concat([cv, cv.assign(adaptive=True, criterion=0.0)], ignore_index=True)
+    assert np.allclose(smooth_criterion(both)["smoothed"].to_numpy()[:7], out["smoothed"].to_numpy())
+
+
+def test_bootstrap_refits_rule():
+    from contentlab.model import bootstrap_refits
+
+    assert bootstrap_refits(100, 2_000) == 100      # the demo: all of them
+    assert bootstrap_refits(100, 5_000) == 100
+    assert bootstrap_refits(100, 8_000) == 63       # ceil(100 * 5000 / 8000)
+    assert bootstrap_refits(100, 15_424) == 40      # the archive: the floor
+    assert bootstrap_refits(100, 100_000) == 40
+    assert bootstrap_refits(30, 100_000) == 30      # never more than asked
+    assert bootstrap_refits(0, 100_000) == 0
+
+
+def _random_walk_posts(step_sd: float, weeks: int = 80, per_week: int = 30, seed: int = 3) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)
+    level = -3.5 + np.cumsum(rng.normal(0.0, step_sd, size=weeks))
+    week = np.repeat(np.arange(weeks), per_week)
+    start = pd.Timestamp("2024-01-01")  # a Monday
+    n = np.full(week.size, 20_000)
+    k = rng.binomial(n, 1 / (1 + np.exp(-level[week])))
+    return pd.DataFrame({"_period": [(start + pd.Timedelta(weeks=int(w))).strftime("%Y-%m-%d") for w in week],
+                         "experiment_id": None, "clicks": k, "impressions": n})
+
+
+def test_level_drift_measures_a_random_walk():
+    # A random walk's variance after h steps is h * step_sd^2 (textbook), so the fitted growth per
+    # week ahead should be near step_sd^2 = 0.01 here, and near 0 for a level that never moves.
+    from contentlab.model import _time_blocks, level_drift
+
+    for step_sd, low, high in ((0.1, 0.004, 0.03), (0.0, 0.0, 0.001)):
+        posts = _random_walk_posts(step_sd)
+        k = posts["clicks"].to_numpy(float)
+        n = posts["impressions"].to_numpy(float)
+        eta = np.full(len(posts), np.log(k.sum() / (n.sum() - k.sum())))
+        blocks = _time_blocks(posts, 3)
+        a, b = level_drift(eta, k, n, np.full(len(posts), "blog", dtype=object), posts["_period"].to_numpy(),
+                           blocks, 3, half_life=2.0)
+        assert low <= b <= high, (step_sd, a, b)
+        assert a >= 0.0
+
+
+def test_interval_widens_with_weeks_ahead(demo_model):
+    drafts = pd.DataFrame({"headline": ["Five quiet changes to the reading room"] * 3, "channel": "newsletter"})
+    last = pd.Timestamp("1970-01-01") + pd.Timedelta(days=round(demo_model.last_week_ * 7))  # history's last Monday
+    near = max(int(np.floor(demo_model.heldout_weeks_ahead_)), 1)  # within the held-out folds' distance
+    dates = [(last + pd.Timedelta(weeks=w)).strftime("%Y-%m-%d") for w in (near, near + 10, near + 40)]
+    try:
+        demo_model.level_drift_, saved = 0.01, demo_model.level_drift_
+        pred = demo_model.predict_frame(drafts.assign(published_at=dates), impressions=1000.0)
+        undated = demo_model.predict_frame(drafts, impressions=1000.0)
+    finally:
+        demo_model.level_drift_ = saved
+    width = (pred["rate_high"] - pred["rate_low"]).to_numpy()
+    assert width[0] < width[1] < width[2]
+    # no date: the week after the history
+    assert np.allclose(undated["rate_high"].to_numpy()[0], pred["rate_high"].to_numpy()[0])
+    assert np.allclose(pred["predicted_rate"], undated["predicted_rate"])

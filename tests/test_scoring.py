@@ -70,6 +70,25 @@ def test_fast_path_equals_model_predict_frame_and_contributions(demo):
     np.testing.assert_allclose(ours[theirs.columns].to_numpy(), theirs.to_numpy(), rtol=1e-9, atol=1e-12)
 
 
+def test_fast_path_widens_dated_drafts_like_predict_frame(demo):
+    """A draft dated weeks after the history gets the same (wider) interval on both paths."""
+    model = demo["model"]
+    prepared = scoring.prepare_drafts(drafts_frame(), TIMEZONE).reset_index(drop=True)
+    last = pd.Timestamp("1970-01-01") + pd.Timedelta(days=round(model.last_week_ * 7))
+    prepared["published_at"] = (last + pd.Timedelta(weeks=int(model.heldout_weeks_ahead_) + 30)).strftime("%Y-%m-%d")
+    saved = model.level_drift_
+    try:
+        model.level_drift_ = 0.01
+        ref = model.predict_frame(prepared)
+        eng = scoring._engine(model)
+        ours = eng.design(prepared).pred
+        undated = model.predict_frame(prepared.drop(columns="published_at"))
+    finally:
+        model.level_drift_ = saved
+    np.testing.assert_allclose(np.asarray(ours["rate_high"], float), ref["rate_high"].to_numpy(), rtol=1e-9)
+    assert np.all(ref["rate_high"].to_numpy() > undated["rate_high"].to_numpy())
+
+
 def test_output_keeps_input_columns_one_row_each(demo):
     drafts = drafts_frame()
     drafts["my_note"] = [f"n{i}" for i in range(len(drafts))]
