@@ -1032,7 +1032,8 @@ def _learned_prior(ws: Workspace, inputs) -> LearnedPrior | None:
 
         rate = np.clip(pd.to_numeric(oof["predicted_rate"], errors="coerce").to_numpy(dtype=float), 1e-6, 1 - 1e-6)
         tests = tests.merge(oof.assign(logit=_logit(rate))[["post_id", "logit"]], on="post_id", how="left")
-    key = _digest(tests.to_csv(index=False) + f"\x1e{None if inputs is None else inputs[2]}")
+    cells = [list(tests.columns)] + tests.astype(str).values.tolist()
+    key = _digest(json.dumps(cells) + f"\x1e{None if inputs is None else inputs[2]}")
     for (text,) in ws.conn.execute("SELECT settings FROM experiments ORDER BY created_at DESC LIMIT 50"):
         got = (json.loads(text).get("prior") or {}).get("learned")
         if got and got.get("history_key") == key and got.get("prior_width") == LEARNED_PRIOR_WIDTH:
