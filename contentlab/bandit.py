@@ -82,8 +82,8 @@ FIRST_SPLIT_MAX = 0.6
 # level is estimated (see within_test_prior): about one batch of results.
 DEFAULT_LEVEL_WEIGHT = 200.0
 # With a budget, the temper rises from DEFAULT_TEMPER_START to BUDGET_TEMPER_END
-# as it is spent (budget_temper); chosen by benchmarks/replay_archive.py --tune
-# on the earlier experiments.
+# as it is spent (budget_temper); chosen by an earlier benchmarks/replay_archive.py
+# --tune (which then also replayed budget schedules) on the earlier experiments.
 DEFAULT_TEMPER_START = 2.0
 BUDGET_TEMPER_END = 6.0
 # Stopping rule defaults (ThompsonBandit.decision and the replay's stop figures).

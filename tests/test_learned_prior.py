@@ -102,3 +102,79 @@ def test_cli_new_next_status_explain_the_prior_and_split(capsys, tmp_path):
     assert "Why: No results yet" in out and "at most 60%" in out
     assert main(["experiment", "status", "hours", "--workspace", str(root)]) == 0
     assert "judged against its test's level" in " ".join(capsys.readouterr().out.split())
+
+
+def _model_history(n_tests, real_until, seed=0, slope=1.0):
+    """Past tests with a model's log-odds per arm whose predicted gaps are real (times ``slope``) only in the
+    first ``real_until`` tests; in the later ones arms differ by noise the model does not see (invented data)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for t in range(n_tests):
+        level = special.logit(0.03)
+        for j in range(3):
+            delta = rng.normal(0, 0.4)
+            truth = level + (slope * delta if t < real_until else rng.normal(0, 0.4))
+            n = 4000
+            rows.append({"post_id": f"t{t}-{j}", "experiment_id": f"t{t}", "impressions": n,
+                         "clicks": int(rng.binomial(n, special.expit(truth))), "logit": level + delta})
+    return pd.DataFrame(rows)
+
+
+def test_model_gaps_are_kept_when_they_hold_in_the_latest_tests():
+    from contentlab.experiments import learn_prior_from_tests
+
+    learned = learn_prior_from_tests(_model_history(60, real_until=60))
+    assert learned.model_kept and learned.n_replayed == 30
+    assert learned.slope == pytest.approx(1.0, abs=0.25)  # simulated with slope 1
+    assert "30 earlier past tests" in learned.model_reason and "so the model's gaps are used" in learned.model_reason
+
+
+def test_model_gaps_that_stop_holding_are_dropped_by_the_time_respecting_check():
+    # Real in the first 40 tests, absent in the last 20: fitted on all 60 the slope is still clearly positive,
+    # but fitted on the earlier 30 and replayed on the latest 30 the gaps lose clicks, so they are not used.
+    from contentlab.experiments import learn_prior_from_tests
+
+    learned = learn_prior_from_tests(_model_history(60, real_until=40))
+    assert learned.slope > 0.3
+    assert not learned.model_kept and learned.gain < 0
+    assert "drafts start level with each other" in learned.model_reason
+
+
+def test_too_few_tests_to_check_the_model_in_time_order_keeps_drafts_level():
+    from contentlab.experiments import learn_prior_from_tests
+
+    learned = learn_prior_from_tests(_model_history(8, real_until=8))
+    assert not learned.model_kept and "at least 10 needed" in learned.model_reason
+
+
+def test_the_allocation_prior_is_the_fitted_spread_widened_and_older_experiments_keep_theirs():
+    from contentlab.experiments import LEARNED_PRIOR_WIDTH, learned_prior_sd
+
+    stored = {"logit_sd": 0.2, "model_logit_sd": 0.15, "offsets": None}
+    assert learned_prior_sd(stored) == pytest.approx(0.2)  # created before the width existed: unchanged
+    assert learned_prior_sd({**stored, "prior_width": 2.0}) == pytest.approx(0.4)
+    assert learned_prior_sd({**stored, "prior_width": 2.0, "offsets": [0.1, -0.1]}) == pytest.approx(0.3)
+    assert LEARNED_PRIOR_WIDTH >= 1.0  # a widened prior never holds drafts tighter than the fitted spread
+
+
+def test_new_experiment_uses_the_widened_prior_and_the_floor_is_said(learned_ws, tmp_path):
+    from contentlab.experiments import LEARNED_MIN_SHARE, LEARNED_PRIOR_WIDTH, _bandit, _load
+
+    created = create_experiment(learned_ws, "hours", DRAFTS, seed=3)
+    learned = created.prior.learned
+    assert learned["prior_width"] == LEARNED_PRIOR_WIDTH
+    bandit = _bandit(learned_ws, _load(learned_ws, "hours"))
+    assert bandit.logit_sd == pytest.approx(LEARNED_PRIOR_WIDTH * learned["logit_sd"])
+    assert bandit.min_share == LEARNED_MIN_SHARE
+    # The prior table shows the widened prior: its strength matches logit_sd via the delta method,
+    # Beta variance m(1-m)/(s+1) = (m(1-m) sd)^2 (see bandit.within_test_prior).
+    # m is the test's level before results (the history's level); the table's prior mean adds the flat base.
+    m = learned["level"]
+    s = created.arms["prior_strength"].iloc[0]
+    assert s + 1 == pytest.approx(1.0 / (m * (1 - m) * bandit.logit_sd**2), rel=1e-6)
+    path = tmp_path / "r.csv"
+    path.write_text("arm,impressions,clicks,at\nA,1000,31,2026-12-03T09:00\nB,1000,22,2026-12-03T09:00\n"
+                    "C,1000,35,2026-12-03T09:00\nD,1000,28,2026-12-03T09:00\n", encoding="utf-8")
+    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    why = " ".join(next_allocation(learned_ws, "hours", 1000).why)
+    assert f"at least {100 * LEARNED_MIN_SHARE:g}%" in why
