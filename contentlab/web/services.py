@@ -79,19 +79,28 @@ def prewarm(state: WorkspaceState) -> None:
     drivers(state)
 
 
+MAX_RESULT_ROWS = 10_000
+
+
+def _listed(payload: Any, key: str, option: str, limit: int, unit: str, example: str) -> list:
+    """The body's one list (``key``), checked: a JSON object, no unknown field but ``option``, 1 to ``limit`` items."""
+    if not isinstance(payload, dict) or key not in payload:
+        raise ApiError(f'The body must be a JSON object with "{key}": {example}.')
+    unknown = sorted(set(payload) - {key, option})
+    if unknown:
+        raise ApiError(f"Unknown field(s) {', '.join(unknown)}; the body has \"{key}\" and optionally \"{option}\".")
+    items = payload[key]
+    if not isinstance(items, list) or not items:
+        raise ApiError(f'"{key}" must be a non-empty list of objects.')
+    if len(items) > limit:
+        raise ApiError(f'"{key}" has {len(items)} {unit}; at most {limit:,} per request.')
+    return items
+
+
 def check_drafts_payload(payload: Any) -> list[dict]:
     """The ``drafts`` of a JSON body, checked field by field (messages name the draft and the field)."""
-    if not isinstance(payload, dict) or "drafts" not in payload:
-        raise ApiError('The body must be a JSON object with "drafts": [{"headline": "...", "channel": "...", '
-                       '"publish_at": "..."}].')
-    unknown = sorted(set(payload) - {"drafts", "suggest"})
-    if unknown:
-        raise ApiError(f"Unknown field(s) {', '.join(unknown)}; the body has \"drafts\" and optionally \"suggest\".")
-    drafts = payload["drafts"]
-    if not isinstance(drafts, list) or not drafts:
-        raise ApiError('"drafts" must be a non-empty list of objects.')
-    if len(drafts) > MAX_DRAFTS:
-        raise ApiError(f'"drafts" has {len(drafts)} items; at most {MAX_DRAFTS} per request.')
+    drafts = _listed(payload, "drafts", "suggest", MAX_DRAFTS, "items",
+                     '[{"headline": "...", "channel": "...", "publish_at": "..."}]')
     allowed = {"headline", "channel", "publish_at", "group"}
     clean = []
     for i, d in enumerate(drafts, start=1):
@@ -172,17 +181,8 @@ def record(state: WorkspaceState, name: str, rows: list[dict], cumulative: bool 
 
 
 def check_results_payload(payload: Any) -> tuple[list[dict], bool]:
-    if not isinstance(payload, dict) or "results" not in payload:
-        raise ApiError('The body must be a JSON object with "results": [{"arm": "A", "impressions": 300, '
-                       '"clicks": 5, "at": "2026-12-03T09:00", "event_id": "..."}].')
-    unknown = sorted(set(payload) - {"results", "cumulative"})
-    if unknown:
-        raise ApiError(f"Unknown field(s) {', '.join(unknown)}; the body has \"results\" and optionally \"cumulative\".")
-    rows = payload["results"]
-    if not isinstance(rows, list) or not rows:
-        raise ApiError('"results" must be a non-empty list of objects.')
-    if len(rows) > 10_000:
-        raise ApiError(f'"results" has {len(rows)} rows; at most 10,000 per request.')
+    rows = _listed(payload, "results", "cumulative", MAX_RESULT_ROWS, "rows",
+                   '[{"arm": "A", "impressions": 300, "clicks": 5, "at": "2026-12-03T09:00", "event_id": "..."}]')
     for i, r in enumerate(rows, start=1):
         if not isinstance(r, dict):
             raise ApiError(f"result {i}: must be an object with arm, impressions and clicks.")
