@@ -16,7 +16,7 @@ import pandas as pd
 
 from .errors import ContentlabError
 from .features import clean_headline
-from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, long_cells, read_cells
+from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, file_bytes, long_cells, read_cells
 from .readers import read_bytes, sniff_delimiter  # noqa: F401  (their home is readers; kept importable here)
 from .readers import short as _short
 from .timeparse import parse_datetimes
@@ -74,14 +74,9 @@ def load_mapping(path: Path | None) -> dict[str, str]:
     """Read a TOML column map: ``[columns]`` with ``our_name = "Their Column"``."""
     if path is None:
         return {}
+    raw = file_bytes(Path(path), "the column map's .toml file")
     try:
-        data = tomllib.loads(Path(path).read_text(encoding="utf-8-sig"))  # a BOM some editors add is fine
-    except FileNotFoundError:
-        raise ContentlabError(f"{path}: no such mapping file.") from None
-    except IsADirectoryError:
-        raise ContentlabError(f"{path}: is a folder; give the column map's .toml file.") from None
-    except PermissionError:
-        raise ContentlabError(f"{path}: the column map cannot be read (permission denied).") from None
+        data = tomllib.loads(raw.decode("utf-8-sig"))  # a BOM some editors add is fine
     except UnicodeDecodeError:
         raise ContentlabError(f"{path}: the column map is not UTF-8 text; save it as UTF-8.") from None
     except tomllib.TOMLDecodeError as exc:

@@ -77,6 +77,18 @@ def short(text: str, limit: int = 40) -> str:
 
 # ------------------------------------------------------------------ bytes and structure
 
+def file_bytes(path: Path, instead_of_a_folder: str) -> bytes:
+    """A file's bytes, or one clear line for every input file the tool reads: missing, a folder, unreadable."""
+    try:
+        return path.read_bytes()
+    except FileNotFoundError:
+        raise ContentlabError(f"{path}: no such file. Check the path and try again.") from None
+    except IsADirectoryError:
+        raise ContentlabError(f"{path}: is a folder; give {instead_of_a_folder}.") from None
+    except PermissionError:
+        raise ContentlabError(f"{path}: cannot be read (permission denied).") from None
+
+
 def read_bytes(path: str | Path) -> tuple[bytes, str]:
     """File bytes (gunzipped, BOM removed) and their encoding: UTF-8 if they are valid UTF-8, else cp1252.
 
@@ -84,14 +96,7 @@ def read_bytes(path: str | Path) -> tuple[bytes, str]:
     NUL byte beside every ASCII letter) and refused with a way to fix it.
     """
     path = Path(path)
-    try:
-        raw = path.read_bytes()
-    except FileNotFoundError:
-        raise ContentlabError(f"{path}: no such file. Check the path and try again.") from None
-    except IsADirectoryError:
-        raise ContentlabError(f"{path}: is a folder; give the CSV file inside it.") from None
-    except PermissionError:
-        raise ContentlabError(f"{path}: cannot be read (permission denied).") from None
+    raw = file_bytes(path, "the CSV file inside it")
     if raw[:2] == b"\x1f\x8b":
         try:
             raw = gzip.decompress(raw)
