@@ -114,6 +114,11 @@ WORDING_CAP_FACTOR = 3
 # ones are pulled toward it in proportion (our choice: half a standard deviation beyond the
 # history's extremes already describes a headline unlike any it holds, e.g. "Hello world").
 FAR_DISTANCE = 0.5
+# A draft with at least this share of words the history never used is far from it (by its words).
+FAR_UNSEEN_SHARE = 0.5
+# A draft none of whose words the history used is scored as its channel's typical post: its style alone
+# says little (our choice; pulling drafts with fewer new words too cost ranking accuracy on later real tests).
+UNKNOWN_WORDS_SHARE = 1.0
 DEFAULT_ALPHAS = tuple(float(a) for a in np.geomspace(1e-1, 1e-6, 11))
 # Gauss-Hermite (probabilists') nodes and weights: the mean and variance of a logit-normal rate.
 _GH_NODES, _GH_WEIGHTS = np.polynomial.hermite_e.hermegauss(24)
@@ -1102,7 +1107,6 @@ class EngagementModel(_Params):
             for i in np.flatnonzero(~np.isin(channel, self.channels_)):
                 X[i, off: off + len(mix)] = mix
             X = X.tocsr()
-        X, shrink = self._shrink_far(X, channel, distance)
         unseen_n = np.zeros(len(frame))
         unseen_share = np.zeros(len(frame))
         for i, t in enumerate(fs.text):
@@ -1111,6 +1115,8 @@ class EngagementModel(_Params):
                 miss = sum(tok not in self.term_vocabulary_ for tok in unigrams)
                 unseen_n[i] = miss
                 unseen_share[i] = miss / len(unigrams)
+        # Words can only make a draft far when the model knows words (a model without topic terms has none).
+        X, shrink = self._shrink_far(X, channel, distance, unseen_share if len(self.term_vocabulary_) else None)
         frame["_shrink"] = shrink
         frame["_distance"] = distance
         return X, channel, unseen_n, unseen_share, outside, frame
@@ -1148,15 +1154,21 @@ class EngagementModel(_Params):
             rows.append(row)
         return np.vstack(rows) if rows else np.zeros((0, self.n_shared_))
 
-    def _shrink_far(self, X, channel: np.ndarray, distance: np.ndarray):
+    def _shrink_far(self, X, channel: np.ndarray, distance: np.ndarray, unseen_share: np.ndarray | None = None):
         """Pull far drafts toward their channel's typical post, in proportion to how far they are.
 
         A draft ``d`` standard deviations (summed over features) outside the history's range
         gets the design row ``(1 - w) x + w x_typical`` with ``w = min(1, d / FAR_DISTANCE)``:
         its prediction, contributions and bootstrap spread move toward the channel's typical
-        post, and a draft the model cannot judge at all is scored as a typical one.
+        post, and a draft the model cannot judge at all is scored as a typical one. So is a
+        draft none of whose words the history used (``unseen_share`` 1): its style alone says
+        little about how it would do ("sqa sqa sqa" is short and easy to read, yet nothing
+        like a real post).
         """
         w = np.clip(np.asarray(distance, float) / FAR_DISTANCE, 0.0, 1.0)
+        if unseen_share is not None:
+            by_words = np.asarray(unseen_share, float)
+            w = np.maximum(w, np.where(by_words >= UNKNOWN_WORDS_SHARE, 1.0, 0.0))
         if not np.any(w > 0):
             return X, w
         far = np.flatnonzero(w > 0)
@@ -1271,7 +1283,7 @@ class EngagementModel(_Params):
             "unseen_term_share": unseen_share,
             "n_unseen_terms": unseen_n.astype(int),
             "n_outside_range": outside.astype(int),
-            "far_from_history": (unseen_share >= 0.5) | (outside > 0),
+            "far_from_history": (unseen_share >= FAR_UNSEEN_SHARE) | (outside > 0),
         }
 
     def contributions(self, drafts: pd.DataFrame) -> pd.DataFrame:

@@ -334,7 +334,12 @@ def test_far_drafts_are_flagged_and_widened(demo):
     assert known["logit_se"] == pytest.approx(param_sd[0], rel=1e-6)
     extra = far["logit_se"] ** 2 - param_sd[1] ** 2
     assert model.term_effect_var_ > 0
-    assert extra == pytest.approx(5 * model.term_effect_var_, rel=1e-6)
+    # All its words are new, so it is also scored as the channel's typical post (shrink 1), whose spread
+    # (logit_spread_, the post-to-post spread) is added in proportion to the shrink.
+    shrink = model.predict_frame(prepared)["shrink_to_typical"].iloc[1]
+    assert shrink == pytest.approx(1.0)
+    expected = 5 * model.term_effect_var_ + shrink * model.logit_spread_
+    assert extra == pytest.approx(expected, rel=1e-6)
 
 
 # ------------------------------------------------------------ drafts in
@@ -497,3 +502,14 @@ def test_drafts_with_and_without_a_planned_time_score_together(demo):
     assert out["planned_time"].iloc[0].startswith("Thu 2026-12-03 07:30")
     assert out["planned_time"].iloc[1] == "no time given: channel's usual time"
     assert np.isfinite(out["predicted_rate"]).all()
+
+
+def test_drafts_of_unknown_words_score_as_the_channels_typical_post(demo):
+    """Words the history never used say nothing about a draft: "sqa sqa sqa" is short and easy to read, which the
+    model likes, yet it must not outrank most past posts (issue: far drafts never above the 75th percentile)."""
+    junk = ["sqa sqa sqa sqa sqa sqa sqa", "pbza pbza pbza pbza pbza pbza", "Xyzzy qwop flurb"]
+    result = score(demo, pd.DataFrame({"headline": junk, "channel": "newsletter"}))
+    assert result["far_from_history"].all()
+    assert (result["percentile"] <= 0.75).all(), result[["headline", "percentile"]]
+    assert all("typical post" in r for r in result["reasons"])
+    assert ((result["rate_low"] <= result["predicted_rate"]) & (result["predicted_rate"] <= result["rate_high"])).all()
