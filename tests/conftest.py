@@ -20,6 +20,17 @@ if os.environ.get("CI"):
 REPO = Path(__file__).resolve().parents[1]
 CORPUS = REPO / "corpus"
 
+
+def learned_demo_workspace(path: Path, bootstrap: int) -> Path:
+    """The demo corpus imported and learned through the CLI, as a user would (``bootstrap`` refits)."""
+    from contentlab.cli import main
+
+    assert main(["import", str(CORPUS / "posts.csv"), "--timezone", "Europe/London", "--quiet",
+                 "--workspace", str(path)]) == 0
+    assert main(["learn", "--bootstrap", str(bootstrap), "--quiet", "--workspace", str(path)]) == 0
+    return path
+
+
 GOOD_ROWS = [
     # post_id, published_at, headline, impressions, clicks, channel
     ("p1", "2026-03-02T09:15:00+00:00", "Seven ways to use the library", "1000", "25", "blog"),

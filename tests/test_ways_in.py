@@ -20,7 +20,7 @@ from contentlab.readers import read_drafts, read_results as read_results_file
 from contentlab.timeparse import YEAR_MAX, YEAR_MIN, parse_datetime, parse_datetimes
 from contentlab.workspace import Workspace
 
-from conftest import CORPUS, REPO, workspace_digest
+from conftest import CORPUS, REPO, learned_demo_workspace, workspace_digest
 
 
 def run(capsys, *argv) -> tuple[int, str, str]:
@@ -32,11 +32,7 @@ def run(capsys, *argv) -> tuple[int, str, str]:
 
 @pytest.fixture(scope="module")
 def learned(tmp_path_factory) -> Path:
-    path = tmp_path_factory.mktemp("ways-in") / "contentlab-workspace"
-    assert main(["import", str(CORPUS / "posts.csv"), "--timezone", "Europe/London", "--quiet",
-                 "--workspace", str(path)]) == 0
-    assert main(["learn", "--bootstrap", "0", "--quiet", "--workspace", str(path)]) == 0
-    return path
+    return learned_demo_workspace(tmp_path_factory.mktemp("ways-in") / "contentlab-workspace", bootstrap=0)
 
 
 @pytest.fixture
