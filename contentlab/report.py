@@ -1953,17 +1953,11 @@ def _call_scoring(mod, ws, ctx, model, queued) -> dict:
     out["drafts_meaning"] = ("The 90% interval is where one post's rate is likely to land, post-to-post luck "
                              "included, so the intervals of drafts in a group nearly always overlap. Whether the top "
                              "draft is truly better than the next is read from the probability beside it (from the "
-                             f"difference of the two predictions): below {_likely_ahead():.0%} it is a close call, "
+                             f"difference of the two predictions): below {mod.LIKELY_AHEAD:.0%} it is a close call, "
                              "which is what an experiment is for; even above it, the ranking is a prediction, "
                              "not a result.")
     out["drafts_cautions"] = [str(c) for c in scored.attrs.get("cautions", [])]
     return out
-
-
-def _likely_ahead() -> float:
-    from .scoring import LIKELY_AHEAD
-
-    return LIKELY_AHEAD
 
 
 def _lead_verdict(p: float | None) -> str:
