@@ -7,7 +7,7 @@ because the model's smooth hour and weekday curves say little where the user
 never posted. Each ranked slot is compared with the user's usual slot (the
 most common block in the channel's history): the two predictions differ only
 in the time features, so the lift's interval comes from the uncertainty of
-that difference alone (see :func:`contentlab.scoring.joint_logits`).
+that difference alone (see :func:`contentlab.draftengine.joint_logits`).
 """
 
 from __future__ import annotations
@@ -124,7 +124,7 @@ def plan_slots(
     and block), ``covered``, ``predicted_rate``, ``rate_low``, ``rate_high``;
     ``best`` adds ``lift_vs_usual`` with its interval and ``p_better_than_usual``.
     """
-    from .scoring import joint_logits, prob_better, rate_lift
+    from .draftengine import joint_logits, logistic, prob_better, rate_lift
 
     if not isinstance(min_posts, (int, np.integer)) or min_posts < 1:
         raise ContentlabError(f"min_posts must be a whole number >= 1; got {min_posts!r}")
@@ -154,9 +154,9 @@ def plan_slots(
     z = _z(level)
     se = np.sqrt(np.maximum(np.diag(cov), 0.0))
     n = len(grid)
-    grid["predicted_rate"] = _expit(logit[:n])
-    grid["rate_low"] = _expit(logit[:n] - z * se[:n])
-    grid["rate_high"] = _expit(logit[:n] + z * se[:n])
+    grid["predicted_rate"] = logistic(logit[:n])
+    grid["rate_low"] = logistic(logit[:n] - z * se[:n])
+    grid["rate_high"] = logistic(logit[:n] + z * se[:n])
     grid["slot"] = [f"{WEEKDAYS[w]} {d} {block_label(b, block_hours)}" for w, d, b in
                     zip(grid["weekday"], grid["date"], grid["block"])]
 
@@ -179,7 +179,7 @@ def plan_slots(
     if usual is not None:
         u = n  # the appended usual-slot row
         usual["label"] = f"{WEEKDAYS[usual['weekday']]} {block_label(usual['block'], block_hours)}"
-        usual["predicted_rate"] = float(_expit(logit[u]))
+        usual["predicted_rate"] = float(logistic(logit[u]))
         lifts, lows, highs, probs = [], [], [], []
         for i in best_idx:
             diff = logit[i] - logit[u]
@@ -198,10 +198,6 @@ def plan_slots(
         for c in ("lift_vs_usual", "lift_low", "lift_high", "p_better_than_usual"):
             best[c] = np.nan
     return SlotPlan(grid, best.reset_index(drop=True), usual, notes)
-
-
-def _expit(x):
-    return 1.0 / (1.0 + np.exp(-np.asarray(x, dtype=float)))
 
 
 def _z(level: float) -> float:

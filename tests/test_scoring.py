@@ -19,7 +19,7 @@ import pandas as pd
 import pytest
 from scipy import integrate, stats
 
-from contentlab import scoring, slots
+from contentlab import draftengine, scoring, slots
 from contentlab.demo_corpus import GROUND_TRUTH, TIMEZONE, drafts_frame, make_headline, true_logit
 from contentlab.errors import ContentlabError
 from contentlab.features import HeadlineFeaturizer, topic_tokens
@@ -64,7 +64,7 @@ def test_fast_path_equals_model_predict_frame_and_contributions(demo):
     ref = demo["model"].predict_frame(prepared)
     for column in ("predicted_rate", "rate_low", "rate_high", "expected_low", "expected_high", "logit_se"):
         np.testing.assert_allclose(result[column].to_numpy(), ref[column].to_numpy(), rtol=1e-9, atol=1e-12)
-    eng = scoring._engine(demo["model"])
+    eng = draftengine.engine_for(demo["model"])
     ours = eng.contributions(eng.design(prepared.reset_index(drop=True)))
     theirs = demo["model"].contributions(prepared)
     np.testing.assert_allclose(ours[theirs.columns].to_numpy(), theirs.to_numpy(), rtol=1e-9, atol=1e-12)
@@ -80,7 +80,7 @@ def test_fast_path_widens_dated_drafts_like_predict_frame(demo):
     try:
         model.level_drift_ = 0.01
         ref = model.predict_frame(prepared)
-        eng = scoring._engine(model)
+        eng = draftengine.engine_for(model)
         ours = eng.design(prepared).pred
         undated = model.predict_frame(prepared.drop(columns="published_at"))
     finally:
@@ -281,7 +281,7 @@ def test_interval_coverage_of_held_out_later_posts(demo):
     later = posts[posts["local_date"] >= "2026-05-01"].reset_index(drop=True)
     model = EngagementModel(n_bootstrap=N_BOOT).fit(early)
     drafts = later[["headline", "channel", "local_hour", "local_weekday"]]
-    eng = scoring._engine(model)
+    eng = draftengine.engine_for(model)
     pred = eng.design(drafts, impressions=later["impressions"].to_numpy(float)).pred
     rate = later["clicks"] / later["impressions"]
     inside = (rate >= pred["rate_low"]) & (rate <= pred["rate_high"])
