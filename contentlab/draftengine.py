@@ -104,6 +104,8 @@ class DraftDesign:
     pred: Columns  # predict_frame's columns
     contrib: pd.DataFrame | None = None
     dense: np.ndarray | None = None  # standardised dense columns, filled on first use
+    raw: np.ndarray | None = None  # the drafts' own dense values (before bounding and shrinking), when known
+    shrink: np.ndarray | None = None  # how far each draft was pulled toward its channel's typical post (0-1)
     blocks: dict | None = None  # per text block: each draft's strongest columns, filled on first use
 
 
@@ -200,7 +202,13 @@ class DraftEngine:
         from .features import clean_headline
 
         texts = [clean_headline(t) for t in frame["headline"].tolist()]
-        return DraftDesign(X, channel, eta, draws, unseen_n, unseen_share, outside, texts, pred)
+        raw = None
+        names, values = prepared.attrs.get("raw_dense", (None, None))
+        if names is not None and set(m.dense_columns_) <= set(names):
+            where = {c: j for j, c in enumerate(names)}
+            raw = np.asarray(values, dtype=float)[:, [where[c] for c in m.dense_columns_]]
+        return DraftDesign(X, channel, eta, draws, unseen_n, unseen_share, outside, texts, pred,
+                           raw=raw, shrink=shrink)
 
     def _predictions(self, eta, draws, channel, unseen_n, unseen_share, outside, impressions, index,
                      shrink=None, weeks_ahead=None) -> pd.DataFrame:
@@ -256,12 +264,41 @@ class DraftEngine:
         return frame
 
     def raw_dense(self, d: DraftDesign) -> np.ndarray | None:
-        """The drafts' dense feature values on their own scale (undoing the standardisation)."""
+        """The drafts' own dense feature values ("11 characters"), not the bounded or shrunk design's."""
         if not self.fast:
             return None
+        if d.raw is not None:
+            return d.raw
         if d.dense is None:
             d.dense = d.X[:, : self.n_dense].toarray()
         return d.dense * self.dense_scale + self.dense_mean
+
+    def own_text_columns(self, d: DraftDesign, start: int, size: int):
+        """The drafts' own columns of one text block (CSR), without the typical post's share.
+
+        A far draft's design row is ``(1 - w) x + w x_typical``; the typical row holds every
+        word's average, so the draft's own words are where ``x`` is non-zero. Rows pulled all the
+        way (``w = 1``) have no words of their own left: they are scored as a typical post.
+        """
+        import scipy.sparse as sp
+
+        sub = d.X[:, start:start + size].tocsr()
+        w = np.zeros(sub.shape[0]) if d.shrink is None else np.asarray(d.shrink, dtype=float)
+        far = np.flatnonzero(w > 0)
+        if not len(far):
+            return sub
+        sub = sub.tolil()
+        for i in far.tolist():
+            if w[i] >= 1.0:
+                sub[i] = 0.0
+                continue
+            typical = self.typical.get(d.channel[i])
+            row = sub[i].toarray().ravel()
+            if typical is not None:
+                row = (row - w[i] * typical[start:start + size]) / (1.0 - w[i])
+            row[np.abs(row) < 1e-9] = 0.0
+            sub[i] = row
+        return sp.csr_matrix(sub)
 
     # ------------------------------------------------------ comparisons
     def unseen_terms(self, text: str) -> frozenset[str]:

@@ -1097,6 +1097,7 @@ class EngagementModel(_Params):
                     D[np.ix_(sel, tcols)] = self.channel_time_means_[c]
         T, Wm = self._text_blocks(fs)
         rows = np.arange(len(frame))
+        raw_dense = D.copy()  # the draft's own values, for reasons (the design below is bounded and may be shrunk)
         D, outside, distance = self._bound_dense(D)
         X = self._matrix(D, T, Wm, channel, rows, self.state_)
         if unknown:
@@ -1119,6 +1120,7 @@ class EngagementModel(_Params):
         X, shrink = self._shrink_far(X, channel, distance, unseen_share if len(self.term_vocabulary_) else None)
         frame["_shrink"] = shrink
         frame["_distance"] = distance
+        frame.attrs["raw_dense"] = (names, raw_dense)
         return X, channel, unseen_n, unseen_share, outside, frame
 
     def _bound_dense(self, D: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

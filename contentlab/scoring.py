@@ -216,7 +216,7 @@ def _top_text_columns(eng: DraftEngine, d: DraftDesign, group: str, k: int = 2) 
     """Per draft, the (up to ``k``) columns of a text block with the largest |effect|, vectorised."""
     start = eng.n_dense + (0 if group == "topic terms" else eng.n_terms)
     size = eng.n_terms if group == "topic terms" else eng.n_words
-    sub = d.X[:, start:start + size].tocsr()
+    sub = eng.own_text_columns(d, start, size)
     counts = np.diff(sub.indptr)
     rows = np.repeat(np.arange(sub.shape[0]), counts)
     order = np.lexsort((-np.abs(eng.coef[start + sub.indices]), rows))

@@ -10,6 +10,7 @@ Outside references used here:
 
 from __future__ import annotations
 
+import re
 from datetime import datetime
 from pathlib import Path
 from zoneinfo import ZoneInfo
@@ -513,3 +514,20 @@ def test_drafts_of_unknown_words_score_as_the_channels_typical_post(demo):
     assert (result["percentile"] <= 0.75).all(), result[["headline", "percentile"]]
     assert all("typical post" in r for r in result["reasons"])
     assert ((result["rate_low"] <= result["predicted_rate"]) & (result["predicted_rate"] <= result["rate_high"])).all()
+
+
+def test_a_far_drafts_reasons_name_its_own_words_and_values(demo):
+    """A partly shrunk draft's design row mixes in the typical post, which holds every word's average;
+    its reasons must still quote the draft's own words and its own length, not the typical post's."""
+    model = demo["model"]
+    headline = "Makerspace open"
+    drafts = pd.DataFrame({"headline": [headline], "channel": [model.channels_[0]]})
+    pred = model.predict_frame(drafts)
+    assert 0 < pred["shrink_to_typical"].iloc[0] < 1  # the case under test: pulled part of the way
+    reasons = score(demo, drafts)["reasons"].iloc[0]
+    quoted = [w for group in re.findall(r"(?:wording|topic words) \(([^)]*)\)", reasons)
+              for w in re.findall(r"'([^']+)'", group)]
+    assert quoted, reasons
+    assert all(w.lower() in headline.lower() for w in quoted), reasons
+    for n in re.findall(r"length \((\d+) characters\)", reasons):
+        assert int(n) == len(headline), reasons
