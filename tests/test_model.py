@@ -472,3 +472,12 @@ def test_interval_widens_with_weeks_ahead(demo_model):
     # no date: the week after the history
     assert np.allclose(undated["rate_high"].to_numpy()[0], pred["rate_high"].to_numpy()[0])
     assert np.allclose(pred["predicted_rate"], undated["predicted_rate"])
+
+
+def test_driver_sentences_show_small_effects_with_a_decimal_and_never_minus_zero():
+    from contentlab.drivers import _percent
+
+    assert _percent(-0.004, signed=True) == "-0.4%"  # was "-0%" in "interval -1% to -0%"
+    assert _percent(-0.00004, signed=True) == "0.0%"
+    assert _percent(0.008) == "0.8%"
+    assert _percent(0.123, signed=True) == "+12%"
