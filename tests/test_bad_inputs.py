@@ -162,6 +162,8 @@ def test_empty_workspace_says_import_first(tmp_path, capsys, argv, fragment):
 
 @pytest.mark.parametrize("argv", [
     ["settings", "--timezone", "Nope/Zone"],
+    ["settings", "--timezone", ""],  # an empty zone is refused, not taken as "not given"
+    ["import", str(CORPUS / "posts.csv"), "--timezone", " "],
     ["experiment", "new", "../x", "Draft one here", "Draft two here"],
     ["import", "missing.csv"],
 ])

@@ -82,6 +82,9 @@ def test_demo_drafts_end_to_end(capsys, wsdir, tmp_path):
     assert code == 0 and "8 recorded" in out
     code, out, _ = run(capsys, "record", "mk", "--input", str(results), "--workspace", wsdir)
     assert code == 0 and "0 recorded" in out and "8 already recorded" in out
+    # The file may also come as a plain argument after the name, as with import: the same replay rule.
+    code, out, _ = run(capsys, "record", "mk", str(results), "--workspace", wsdir)
+    assert code == 0 and "0 recorded" in out and "8 already recorded" in out
     code, out, _ = run(capsys, "record", "mk", "--arm", "D", "--impressions", "500", "--clicks", "31",
                        "--at", "2026-12-04T09:00", "--workspace", wsdir)
     assert code == 0 and "identified by its arm, --at and figures" in " ".join(out.split())
@@ -159,6 +162,9 @@ def test_record_argument_errors(capsys, wsdir, tmp_path):
     assert code == 2 and "--impressions" in err
     code, _, err = run(capsys, "record", "e", "--input", str(tmp_path / "x.csv"), "--arm", "A", "--workspace", wsdir)
     assert code == 2 and "not both" in err
+    code, _, err = run(capsys, "record", "e", str(tmp_path / "a.csv"), "--input", str(tmp_path / "b.csv"),
+                       "--workspace", wsdir)
+    assert code == 2 and "two results files" in err
     code, _, err = run(capsys, "record", "nope", "--arm", "A", "--impressions", "1", "--clicks", "0",
                        "--workspace", wsdir)
     assert code == 2 and "No experiment named 'nope'" in err

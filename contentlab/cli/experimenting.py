@@ -172,6 +172,8 @@ def register(subparsers) -> None:
         example="contentlab record makerspace --arm B --impressions 1200 --clicks 31 --at 2026-12-03T09:00",
     )
     p.add_argument("name")
+    p.add_argument("file", nargs="?", metavar="FILE",
+                   help="results CSV (the same as --input FILE): arm, impressions, clicks [, at, event_id]")
     p.add_argument("--input", metavar="FILE", help="results CSV: arm, impressions, clicks [, at, event_id]")
     p.add_argument("--arm")
     p.add_argument("--impressions", metavar="N")
@@ -356,6 +358,11 @@ def cmd_record(args: argparse.Namespace) -> int:
     from ..workspace import Workspace
 
     single = [args.arm, args.impressions, args.clicks]
+    if args.file is not None:
+        if args.input is not None and args.input != args.file:
+            raise ContentlabError(f"two results files given ({args.file} and --input {args.input}); "
+                                  "record one at a time.")
+        args.input = args.file
     if args.input:
         if any(v is not None for v in single + [args.at, args.event_id]):
             raise ContentlabError("give either --input FILE or --arm/--impressions/--clicks, not both.")

@@ -55,16 +55,16 @@ def cmd_import(args: argparse.Namespace) -> int:
     from ..history import import_history
     from ..workspace import check_timezone, opened
 
-    if args.timezone:
+    if args.timezone is not None:
         check_timezone(args.timezone)
     with opened(args.workspace) as ws:  # a first import that fails leaves no empty workspace behind
         previous = ws.timezone
-        if args.timezone:
+        if args.timezone is not None:
             ws.set_setting("timezone", args.timezone)
         try:
             summary = import_history(ws, args.file, args.map, skip_bad=args.skip_bad, progress=not args.quiet)
         except BaseException:
-            if args.timezone and not ws.created and ws.timezone != previous:
+            if args.timezone is not None and not ws.created and ws.timezone != previous:
                 ws.set_setting("timezone", previous)  # a failed import changes nothing
             raise
     print(summary.line())
@@ -83,10 +83,10 @@ def cmd_features(args: argparse.Namespace) -> int:
 def cmd_settings(args: argparse.Namespace) -> int:
     from ..workspace import check_timezone, opened
 
-    if args.timezone:
+    if args.timezone is not None:
         check_timezone(args.timezone)  # before anything is created
     with opened(args.workspace, create=args.timezone is not None) as ws:
-        if args.timezone:
+        if args.timezone is not None:
             ws.set_setting("timezone", args.timezone)
         print(f"workspace: {ws.path}")
         print(f"timezone:  {ws.timezone}")
