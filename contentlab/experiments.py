@@ -1259,6 +1259,7 @@ def record_results(
     frame: pd.DataFrame,
     cumulative: bool = False,
     source_file: str | None = None,
+    by_option: bool | None = None,
 ) -> RecordSummary:
     """Add results to experiment ``name`` in one transaction; all rows land or none.
 
@@ -1280,14 +1281,18 @@ def record_results(
     ``cumulative``: the figures are totals so far per arm, turned into
     increments against what is stored (in time order, then row order); a
     total that goes down is an error.
+
+    ``by_option``: problems name the command-line option (``--clicks``) rather than row and
+    column; by default only for a single row given on the command line.
     """
     from .readers import check_results
 
     exp = _load(ws, name)
     frame = frame.reset_index(drop=True)
-    single = source_file is None and len(frame) == 1 and "digest" not in frame.attrs
+    if by_option is None:  # one row given on the command line: problems name its option (--clicks)
+        by_option = source_file is None and len(frame) == 1 and "digest" not in frame.attrs
     clean = check_results(frame, exp["arms"]["arm"].tolist(), ws.timezone, source=source_file,
-                          options=single, experiment=name)
+                          options=by_option, experiment=name)
     kinds = _event_ids(clean, frame, cumulative, source_file)
     conn = ws.conn
     if conn.in_transaction:
@@ -1297,7 +1302,7 @@ def record_results(
     # locked part is plain Python on lists: it runs once per call, in series.
     conn.begin_immediate()
     try:
-        summary = _record_locked(ws, exp, clean, cumulative, source_file, kinds, single)
+        summary = _record_locked(ws, exp, clean, cumulative, source_file, kinds, by_option)
         conn.commit()
     except BaseException:
         conn.rollback()

@@ -386,6 +386,12 @@ def test_api_results_same_rules_as_record(client, ws_dir):
                       json={"results": [{"arm": "Z", "impressions": 5, "clicks": 9}]})
     assert bad.status_code == 400
     assert "not an arm" in bad.json()["error"] and "more than its 5 impressions" in bad.json()["error"]
+    # An API caller sent no command-line options: a one-row problem names its row and field, not "--clicks".
+    one = client.post("/api/experiments/winter-reading/results",
+                      json={"results": [{"arm": "A", "impressions": 5, "clicks": 9}]})
+    assert one.status_code == 400 and "--" not in one.json()["error"] and "row 1, column 'clicks'" in one.json()["error"]
+    assert client.post("/api/experiments/winter-reading/next", json={"impressions": -3}).json()["error"].startswith(
+        '"impressions"')
     assert totals(ws_dir, "winter-reading") == (before[0] + 400, before[1] + 9)
     assert client.post("/api/experiments/winter-reading/results", json={"rows": []}).status_code == 400
 

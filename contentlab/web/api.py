@@ -71,7 +71,7 @@ async def results(request: Request) -> ApiResponse:
     rows, cumulative = services.check_results_payload(payload)
     state = request.app.state.workspace
     await blocking(services.require_experiment, state, name)
-    out = await blocking(services.record, state, name, rows, cumulative)
+    out = await blocking(services.record, state, name, rows, cumulative, False)
     return ApiResponse(out)
 
 

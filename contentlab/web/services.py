@@ -153,7 +153,7 @@ def status(state: WorkspaceState, name: str) -> dict:
 def allocation(state: WorkspaceState, name: str, impressions: Any, policy: str | None = None) -> dict:
     from ..experiments import next_allocation
 
-    if isinstance(impressions, bool) or not isinstance(impressions, int):
+    if isinstance(impressions, bool) or not isinstance(impressions, int) or impressions < 1:
         raise ApiError(f'"impressions" must be a whole number of at least 1; got {impressions!r}.')
     with state.open() as ws:
         alloc = next_allocation(ws, name, impressions, policy)
@@ -164,8 +164,12 @@ def allocation(state: WorkspaceState, name: str, impressions: Any, policy: str |
 RESULT_FIELDS = ("arm", "impressions", "clicks", "at", "event_id")
 
 
-def record(state: WorkspaceState, name: str, rows: list[dict], cumulative: bool = False) -> dict:
-    """Record result rows through the library (one transaction, replay-protected by event ids)."""
+def record(state: WorkspaceState, name: str, rows: list[dict], cumulative: bool = False,
+           by_option: bool | None = None) -> dict:
+    """Record result rows through the library (one transaction, replay-protected by event ids).
+
+    ``by_option=False`` (the API): problems name row and column, never a command-line option.
+    """
     import pandas as pd
 
     from ..experiments import record_results
@@ -173,7 +177,7 @@ def record(state: WorkspaceState, name: str, rows: list[dict], cumulative: bool 
     frame = pd.DataFrame([{k: ("" if r.get(k) is None else str(r.get(k))) for k in RESULT_FIELDS if k in r}
                           for r in rows])
     with state.open() as ws:
-        summary = record_results(ws, name, frame, cumulative=cumulative)
+        summary = record_results(ws, name, frame, cumulative=cumulative, by_option=by_option)
     return {"experiment": summary.name, "rows_read": summary.rows_read, "recorded": summary.added,
             "already_recorded": summary.duplicates, "unchanged_totals": summary.unchanged,
             "impressions_added": summary.impressions_added, "clicks_added": summary.clicks_added,
