@@ -16,7 +16,7 @@ import pandas as pd
 
 from .errors import ContentlabError
 from .features import clean_headline
-from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, file_bytes, long_cells, read_cells
+from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, file_bytes, header_row, long_cells, read_cells
 from .readers import read_bytes, sniff_delimiter  # noqa: F401  (their home is readers; kept importable here)
 from .readers import short as _short
 from .timeparse import parse_datetimes
@@ -113,7 +113,7 @@ def read_table(path: Path, mapping: dict[str, str]) -> tuple[pd.DataFrame, list[
     repeated = sorted({c for c in frame.columns if list(frame.columns).count(c) > 1})
     if repeated:
         raise ContentlabError(
-            f"{path}: row 1 (header), more than one column would be read as {', '.join(repeated)}. "
+            f"{path}: row {header_row(frame)} (header), more than one column would be read as {', '.join(repeated)}. "
             "Rename or remove the extra column, or map only one of them."
         )
     ignored = [c for c in frame.columns if c not in KNOWN]
@@ -166,7 +166,7 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
         if not has_outcome:
             need.append("an outcome (clicks, engagements, or likes/comments/shares/saves)")
         raise ContentlabError(
-            f"{file}: row 1 (header), missing required column(s): {', '.join(need)}. "
+            f"{file}: row {header_row(frame)} (header), missing required column(s): {', '.join(need)}. "
             f"The file has: {', '.join(frame.columns)}. Rename them, or pass --map MAP.toml."
         )
     step("read")

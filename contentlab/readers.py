@@ -177,10 +177,14 @@ def read_cells(path: str | Path, what: str = "file") -> pd.DataFrame:
     Raises :class:`ContentlabError` naming the line for anything the file's
     structure gets wrong; ``what`` names the kind of file in the message.
     """
-    raw, encoding = read_bytes(path)
-    if not raw.strip():
+    whole, encoding = read_bytes(path)
+    if not whole.strip():
         raise ContentlabError(f"{path}: the file is empty; a {what} needs a header row and at least one row.")
-    delimiter = sniff_delimiter(raw[:65536].decode(encoding, errors="replace"))
+    raw, delimiter, skipped = _excel_separator_line(whole, encoding)
+    if delimiter is None:
+        delimiter = sniff_delimiter(raw[:65536].decode(encoding, errors="replace"))
+    if not raw.strip():
+        raise ContentlabError(f"{path}: holds only a 'sep=' line; a {what} needs a header row and at least one row.")
     try:
         cells = pd.read_csv(
             io.BytesIO(raw), encoding=encoding, encoding_errors="replace", sep=delimiter, header=None,
@@ -197,21 +201,45 @@ def read_cells(path: str | Path, what: str = "file") -> pd.DataFrame:
         key = name.casefold()
         if key in seen:
             raise ContentlabError(
-                f"{path}: row 1 (header), column '{name}' appears twice (columns {seen[key] + 1} and {j + 1}); "
+                f"{path}: row {1 + skipped} (header), column '{name}' appears twice (columns {seen[key] + 1} and {j + 1}); "
                 "rename or remove one of them."
             )
         seen[key] = j
     frame = cells.iloc[1:].reset_index(drop=True)
     frame.columns = header
-    frame.index = pd.Index(_row_lines(raw, encoding, delimiter, len(cells)), dtype=np.int64)[1:]
+    frame.index = pd.Index(_row_lines(raw, encoding, delimiter, len(cells)), dtype=np.int64)[1:] + skipped
     frame = frame.fillna("")
     if len(frame.columns):
         blank = (frame == "").all(axis=1)
         if blank.any():
             frame = frame.loc[~blank.to_numpy()]
     frame.attrs["source"] = str(path)
-    frame.attrs["digest"] = file_digest(raw)
+    frame.attrs["digest"] = file_digest(whole)
+    frame.attrs["header_row"] = 1 + skipped
     return frame
+
+
+def header_row(frame: pd.DataFrame) -> int:
+    """The file line of the header of a frame from :func:`read_cells` (2 after a 'sep=' line)."""
+    return int(frame.attrs.get("header_row", 1))
+
+
+_SEP_LINE = re.compile(rb'^"?sep=(.)"?[ \t]*\r?\n')
+
+
+def _excel_separator_line(raw: bytes, encoding: str) -> tuple[bytes, str | None, int]:
+    """Excel's optional first line ``sep=;`` names the delimiter: use it and read from the next line.
+
+    Returns the bytes from the header on, the delimiter the line names (None without one) and the
+    number of lines skipped. Only comma, semicolon and tab are taken, as everywhere else.
+    """
+    if encoding.lower().replace("-", "") not in ("utf8", "utf8sig", "cp1252", "latin1", "ascii"):
+        return raw, None, 0
+    head = raw[3:] if raw.startswith(b"\xef\xbb\xbf") else raw
+    match = _SEP_LINE.match(head)
+    if not match or match.group(1) not in (b",", b";", b"\t"):
+        return raw, None, 0
+    return head[match.end():], match.group(1).decode("ascii"), 1
 
 
 def _row_lines(raw: bytes, encoding: str, delimiter: str, n_records: int) -> list[int]:
@@ -312,7 +340,8 @@ def _canonical_columns(frame: pd.DataFrame, path, known: Sequence[str], aliases:
         present = [c for c in names if c in frame.columns]
         if len(present) > 1:
             raise ContentlabError(
-                f"{path}: row 1 (header), columns {', '.join(repr(c) for c in present)} all give {target}; keep one."
+                f"{path}: row {header_row(frame)} (header), columns {', '.join(repr(c) for c in present)} all give "
+                f"{target}; keep one."
             )
         if present and present[0] != target:
             frame = frame.rename(columns={present[0]: target})
@@ -328,7 +357,7 @@ def read_drafts(path: str | Path) -> pd.DataFrame:
     frame = _canonical_columns(read_cells(path, "drafts file"), path, DRAFT_COLUMNS, {"publish_at": PUBLISH_ALIASES})
     if "headline" not in frame.columns:
         raise ContentlabError(
-            f"{path}: row 1 (header) has no 'headline' column; it has: {', '.join(frame.columns) or 'nothing'}. "
+            f"{path}: row {header_row(frame)} (header) has no 'headline' column; it has: {', '.join(frame.columns) or 'nothing'}. "
             "A drafts file needs headline and may have channel, publish_at (or time), group and arm."
         )
     if frame.empty:
@@ -447,7 +476,7 @@ def read_results(path: str | Path) -> pd.DataFrame:
     missing = [c for c in ("arm", "impressions", "clicks") if c not in frame.columns]
     if missing:
         raise ContentlabError(
-            f"{path}: row 1 (header), missing column(s): {', '.join(missing)}. A results file has arm, impressions, "
+            f"{path}: row {header_row(frame)} (header), missing column(s): {', '.join(missing)}. A results file has arm, impressions, "
             f"clicks and optionally at and event_id; it has: {', '.join(frame.columns)}."
         )
     if frame.empty:

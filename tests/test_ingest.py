@@ -44,6 +44,20 @@ def test_delimiter_is_taken_from_the_header_not_the_headlines():
     assert sniff_delimiter("a\tb\tc\n1\t2\t3\n") == "\t"
 
 
+def test_an_excel_sep_line_names_the_delimiter_and_rows_keep_their_file_lines(tmp_path):
+    # Excel's "sep=;" first line (written by some spreadsheet exports) names the delimiter; the header is line 2.
+    path = tmp_path / "posts.csv"
+    path.write_bytes(b"\xef\xbb\xbfsep=;\r\npost_id;published_at;headline;impressions;clicks\r\n"
+                     b"p1;2026-01-01;One, two, three;100;5\r\np2;2026-01-02;Four;100;500\r\n")
+    history = read_history(path)
+    assert history.posts["post_id"].tolist() == ["p1"]
+    assert history.posts["headline"].iloc[0] == "One, two, three"
+    assert [(p.row, p.column) for p in history.problems] == [(4, "clicks")]
+    path.write_bytes(b"sep=,\npost_id,published_at,title,impressions,clicks\np1,2026-01-01,Hi,1,0\n")
+    with pytest.raises(ContentlabError, match="row 2 \\(header\\), missing required column"):
+        read_history(path)
+
+
 def test_markup_in_headlines_is_stripped_on_import(write_csv):
     history = read_history(write_csv())
     assert history.posts["headline"].iloc[2] == "New makerspace hours & prices"
