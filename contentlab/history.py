@@ -19,12 +19,15 @@ class ImportSummary:
     unchanged: int
     rejected: int
     rejected_file: str | None = None
+    repeated: int = 0  # rows identical to an earlier row of the same file (same post_id and values)
 
     def line(self) -> str:
         text = (
             f"{self.file}: {self.rows_read} rows read, {self.added} added, {self.updated} updated, "
             f"{self.unchanged} unchanged, {self.rejected} rejected"
         )
+        if self.repeated:
+            text += f", {self.repeated} repeated (identical to an earlier row of the file, counted once)"
         if self.rejected_file:
             text += f" (see {self.rejected_file})"
         return text
@@ -88,8 +91,9 @@ def import_history(
     finally:
         if storing is not None:
             storing.close()
+    repeated = history.rows_read - len(history.posts) - len(history.rejected)
     return ImportSummary(
-        str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file
+        str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file, repeated
     )
 
 

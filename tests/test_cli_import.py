@@ -118,6 +118,18 @@ def test_skip_bad_imports_good_rows_and_writes_rejected_csv(ws_dir, write_csv, c
     assert workspace_digest(ws_dir)[0] == 4
 
 
+def test_identical_repeated_rows_are_counted_once_and_said(ws_dir, write_csv, capsys):
+    # Every row read is accounted for in the summary: a repeat of an identical row is neither lost silently
+    # nor stored twice.
+    path = write_csv([GOOD_ROWS[0], GOOD_ROWS[0], NEW], name="repeats.csv")
+    before = workspace_digest(ws_dir)[0]
+    assert run_import(path, ws_dir, "--quiet") == 0
+    assert capsys.readouterr().out.strip() == (
+        f"{path}: 3 rows read, 1 added, 0 updated, 1 unchanged, 0 rejected, "
+        "1 repeated (identical to an earlier row of the file, counted once)")
+    assert workspace_digest(ws_dir)[0] == before + 1
+
+
 def test_reimport_is_idempotent_and_updates_changed_metrics(ws_dir, write_csv, capsys):
     path = write_csv(name="first.csv")
     before = workspace_digest(ws_dir)
