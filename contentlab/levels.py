@@ -102,6 +102,36 @@ def _typical_logit(eta, n, channel, rows) -> dict[str, float]:
     return dict(zip(p.index, logit(np.clip(p["pn"] / p["n"], 1e-12, 1 - 1e-12))))
 
 
+def _fold_bases(oof, k, n, channel, week, blocks, n_folds: int) -> list[dict]:
+    """Per forward fold what every candidate's forecast needs: held-out rows, weeks ahead, the
+    earlier blocks' weekly levels, and the fold model's typical logit per held-out post."""
+    bases = []
+    for f in range(1, n_folds + 1):
+        tr = np.flatnonzero(blocks < f)
+        te = np.flatnonzero((blocks == f) & np.isfinite(oof))
+        if tr.size == 0 or te.size == 0:
+            continue
+        now = float(week[tr].max())
+        typical = _typical_logit(oof, n, channel, te)
+        bases.append({"rows": te, "now": now, "ahead": np.maximum(week[te] - now, 1.0), "channel": channel[te],
+                      "weekly": weekly_levels(k, n, channel, week, tr),
+                      "typical": np.array([typical[c] for c in channel[te]])})
+    return bases
+
+
+def _forecast_folds(bases: list[dict], n_rows: int, half_life: float, damping: float):
+    offset = np.full(n_rows, np.nan)
+    ahead = np.full(n_rows, np.nan)
+    for b in bases:
+        path = level_path(b["weekly"], b["now"], half_life, damping)
+        lev = np.array([path.get(c, (np.nan, 0.0))[0] for c in b["channel"]])
+        slope = np.array([path.get(c, (np.nan, 0.0))[1] for c in b["channel"]])
+        forecast = lev + slope * damped_steps(damping, b["ahead"]) - b["typical"]
+        offset[b["rows"]] = np.where(np.isfinite(lev), forecast, 0.0)
+        ahead[b["rows"]] = b["ahead"]
+    return offset, ahead
+
+
 def fold_forecasts(oof, k, n, channel, week, blocks, n_folds: int, half_life: float, damping: float):
     """Per history post, the level forecast for it made on forward folds: ``(offset, weeks_ahead)``.
 
@@ -111,25 +141,8 @@ def fold_forecasts(oof, k, n, channel, week, blocks, n_folds: int, half_life: fl
     used), so ``oof + offset`` is the held-out prediction at the forecast level. NaN outside folds.
     """
     oof = np.asarray(oof, float)
-    channel = np.asarray(channel, dtype=object)
-    offset = np.full(len(oof), np.nan)
-    ahead = np.full(len(oof), np.nan)
-    for f in range(1, n_folds + 1):
-        tr = np.flatnonzero(blocks < f)
-        te = np.flatnonzero((blocks == f) & np.isfinite(oof))
-        if tr.size == 0 or te.size == 0:
-            continue
-        now = float(week[tr].max())
-        path = level_path(weekly_levels(k, n, channel, week, tr), now, half_life, damping)
-        typical = _typical_logit(oof, n, channel, te)
-        h = np.maximum(week[te] - now, 1.0)
-        steps = damped_steps(damping, h)
-        lev = np.array([path.get(c, (np.nan, 0.0))[0] for c in channel[te]])
-        slope = np.array([path.get(c, (np.nan, 0.0))[1] for c in channel[te]])
-        typ = np.array([typical[c] for c in channel[te]])
-        offset[te] = np.where(np.isfinite(lev), lev + slope * steps - typ, 0.0)
-        ahead[te] = h
-    return offset, ahead
+    bases = _fold_bases(oof, k, n, np.asarray(channel, dtype=object), week, blocks, n_folds)
+    return _forecast_folds(bases, len(oof), half_life, damping)
 
 
 def recent_levels(oof, eta, k, n, channel, periods, blocks, n_folds: int,
@@ -150,10 +163,11 @@ def recent_levels(oof, eta, k, n, channel, periods, blocks, n_folds: int,
     oof = np.asarray(oof, float)
     channel = np.asarray(channel, dtype=object)
     week = week_number(periods)
+    bases = _fold_bases(oof, k, n, channel, week, blocks, n_folds)
     rows = []
     for h in half_lives:
         for d in dampings:
-            off, _ = fold_forecasts(oof, k, n, channel, week, blocks, n_folds, h, d)
+            off, _ = _forecast_folds(bases, len(oof), h, d)
             use = np.isfinite(off)
             dev = binomial_deviance(k[use], n[use], np.clip(expit(oof[use] + off[use]), 1e-12, 1 - 1e-12))
             rows.append({"half_life_weeks": float(h), "damping": float(d), "deviance": float(dev)})
@@ -219,7 +233,7 @@ def interval_scale(coverage_at: Callable[[float], float], interval: float,
     if coverage_at(high) <= interval:
         return high
     a, b = np.log(low), np.log(high)
-    for _ in range(30):
+    for _ in range(20):  # the factor to within 2^-20 of its log range
         mid = 0.5 * (a + b)
         if coverage_at(float(np.exp(mid))) < interval:
             a = mid

@@ -31,12 +31,17 @@ judged within their experiment (each test's level refitted), because that is
 what the model is used for: choosing between headlines. The held-out
 predictions are kept (``oof_``) for residuals and for the bandit's prior.
 
+Levels: rates drift, so each channel's baseline is set to its level at the history's end (and,
+when the time folds find it helps, a damped slope), see :mod:`contentlab.levels`.
+
 Uncertainty: a bootstrap that resamples whole experiments (and, for posts
 outside experiments, whole weeks) refits the model ``n_bootstrap`` times; it
 gives the drivers' intervals and the parameter part of a draft's interval.
 The post-to-post spread that no feature explains is estimated from the
-held-out residuals, and binomial noise at the post's impressions is added
-on top, so ``rate_low``/``rate_high`` bound the *observed* rate of a post.
+held-out residuals around each week's own level, the level's own error grows
+with the weeks ahead, one factor calibrates both to the nominal coverage on the
+time folds, and binomial noise at the post's impressions is added on top, so
+``rate_low``/``rate_high`` bound the *observed* rate of a post.
 """
 
 from __future__ import annotations
@@ -381,9 +386,10 @@ class EngagementModel(_Params):
     n_jobs : int or None, default 1
         Processes for featurising large histories (passed to the featurizer).
     level : {"recent", "history"}, default "recent"
-        "recent": each channel's baseline follows its recent level, with a half-life chosen
-        on the time folds (see :func:`recent_levels`); rates drift, and a history-wide level
-        predicts later posts too high when they fall. "history": the fitted GLM's own level.
+        "recent": each channel's baseline follows its level at the history's end and, when the
+        time folds find it helps, a damped slope (half-life and damping chosen on the folds; see
+        :mod:`contentlab.levels`); rates drift, and a history-wide level predicts later posts too
+        high when they fall. "history": the fitted GLM's own level.
 
     Attributes
     ----------
@@ -397,18 +403,31 @@ class EngagementModel(_Params):
     oof_ : DataFrame
         Held-out predictions per history post (``post_id, fold, logit,
         predicted_rate``); NaN for the first time block, which no earlier
-        data can predict.
+        data can predict. ``level_offset`` and ``weeks_ahead``: the level forecast the post's
+        fold made for it (added to ``logit`` for the interval checks) and its weeks ahead.
     cv_results_ : DataFrame
         Held-out criterion per alpha.
-    overdispersion_ : float
-        Post-to-post variance of the log-odds that the features do not explain.
+    level_half_life_, level_damping_ : float
+        The level's half-life in weeks (inf: the whole history alike) and the damping of its
+        slope (0: no trend), chosen on the time folds; ``level_cv_`` holds each candidate's deviance.
+    level_offsets_, level_slopes_ : dict
+        Per channel: the log-odds added to the channel's baseline (next week's level against the
+        model's typical prediction), and the level's slope per week (a post ``h`` weeks ahead gets
+        ``slope * (damped_steps(h) - damped_steps(1))`` on top; see ``interval_columns``).
+    post_variance_ : float
+        Held-out post-to-post variance of the log-odds around each week's own level.
     level_drift_, week_level_variance_ : float
-        How far a later week's channel level strays from the learned one, measured on the time
-        folds (see :func:`level_drift`): variance per week ahead, and the part that no distance
-        explains (kept for reading; the held-out spread already holds it).
-    heldout_weeks_ahead_ : float
-        Mean weeks between a held-out post and its fold's training weeks; a draft further ahead
-        (its ``published_at``) gets ``level_drift_`` per extra week added to its interval.
+        How far a later week's channel level strays from the forecast, measured on the time
+        folds (see :func:`contentlab.levels.level_error_variance`): variance per week ahead, and
+        the part that no distance explains.
+    interval_scale_ : float
+        Factor on those variances that gives the folds' held-out posts the nominal coverage.
+    overdispersion_ : float
+        Post-to-post variance added to a draft's parameter variance (the scaled held-out spread
+        minus the parameter part it already holds).
+    heldout_weeks_ahead_, last_week_ : float
+        Mean weeks between a held-out post and its fold's training weeks (for reading), and the
+        history's last week (weeks since 1970), from which a draft's weeks ahead are counted.
     boot_coef_ : ndarray of shape (n_bootstrap, n_shared + 1), float32
         Bootstrap coefficients (dense, terms, wording, channels, then the intercept).
     validation_ : dict
@@ -1254,7 +1273,7 @@ class EngagementModel(_Params):
         The one place the predictive interval is computed; scoring's batch path
         calls it too, so the two can never disagree. ``weeks_ahead``: how many weeks after
         the history's last week each post appears (default 1, the next week); the channel
-        level's drift variance grows with it.
+        level's damped slope and its error variance grow with it.
         """
         from scipy.special import ndtri
 
