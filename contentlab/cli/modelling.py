@@ -133,7 +133,8 @@ def format_learn(model, drivers, model_id: int) -> str:
         )
     cov = v.get("coverage", {})
     if cov.get("n_posts"):
-        lines.append(f"  {cov['nominal']:.0%} intervals held {cov['coverage']:.1%} of {cov['n_posts']} held-out posts' rates")
+        lines.append(f"  {cov['nominal']:.0%} intervals held {cov['coverage']:.1%} of {cov['n_posts']} held-out posts' rates "
+                     "(their width is calibrated on these posts)")
     lines.append("")
     lines.extend(v["messages"])
     lines.append("")
