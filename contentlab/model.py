@@ -16,12 +16,13 @@ impressions, not like a post with 40,000. Design matrix, left to right:
 * **wording**: word 1-3-grams with the small words kept ("this is why",
   "you"), which the topic terms drop but which carry much of how a headline
   is phrased; own multiplier (``wording_penalty``).
+* **channel** one-hot, almost unpenalised: a baseline per channel, so
+  channels with different typical rates are compared fairly.
 * **headline meaning** (``meaning``): one column, a sentence embedding of the headline
   (:mod:`contentlab.meaning`) times ridge weights learned from the differences between arms of
   the same tests; unlike words, it reaches headlines about topics the history never used. Its
-  ridge penalty and weight are chosen on the same forward time folds (weight 0: left out).
-* **channel** one-hot, almost unpenalised: a baseline per channel, so
-  channels with different typical rates are compared fairly.
+  ridge penalty and weight are chosen on the same forward time folds once alpha is (weight 0:
+  left out); the weight is its coefficient, the GLM is not refitted with it.
 * **one effect per A/B experiment**, lightly penalised: the arms of a test
   were shown to randomly split audiences at the same time, so once each
   test has its own level, feature effects are learned from the differences

@@ -120,6 +120,7 @@ def format_learn(model, drivers, model_id: int) -> str:
         f"Penalty chosen on {v['n_held_out']} held-out later posts ({v['n_folds']} forward time folds): "
         f"alpha {model.alpha_:.3g}; {len(model.dense_columns_)} features, {len(model.term_names_)} topic terms, "
         f"{len(model.wording_names_)} wording n-grams.",
+        f"Headline meaning: {getattr(model, 'meaning_note_', 'not used (older model)')}.",
         "",
         "Validation on held-out later posts (deviance; lower is better):",
     ]
