@@ -389,7 +389,8 @@ class EngagementModel(_Params):
     progress : bool, default False
         Show a progress bar on stderr.
     n_jobs : int or None, default 1
-        Processes for featurising large histories (passed to the featurizer).
+        Processes for featurising large histories (passed to the featurizer); also the sentence
+        encoder's threads for the headline-meaning column (None: every core).
     meaning : {"auto", True, False}, default "auto"
         The headline-meaning column (sentence embeddings, see :mod:`contentlab.meaning`): its
         weight is chosen on the time folds among ``MEANING_WEIGHTS`` (0 leaves it out). "auto"
@@ -882,18 +883,22 @@ class EngagementModel(_Params):
             return X0, X, oof
         from .meaning import MODEL_NAME, embed_headlines, group_codes, within_test_ridge
 
-        frame, k, n, blocks = data.frame, data.k, data.n, data.blocks
-        E = embed_headlines(frame["headline"].map(clean_headline).tolist()).astype(float)
+        frame, blocks = data.frame, data.blocks
+        # Only posts in tests are encoded: the ridge learns from them alone, and a post outside
+        # tests counts as of typical meaning (column 0), so the cost follows the tests, not the history.
+        t = np.flatnonzero(data.in_exp)
+        E = embed_headlines(frame["headline"].iloc[t].map(clean_headline).tolist(), threads=self.n_jobs).astype(float)
         image = frame["image_id"].to_numpy(dtype=object) if "image_id" in frame else np.full(len(frame), None)
-        groups = group_codes(data.experiment, image)
+        groups = group_codes(data.experiment[t], image[t])
+        k, n, bt = data.k[t], data.n[t], blocks[t]
         held = np.flatnonzero(blocks >= 1)
-        scores = np.full((len(MEANING_RIDGES), len(frame)), np.nan)
+        scores = np.zeros((len(MEANING_RIDGES), len(frame)))
         for f in range(1, self.n_folds + 1):
-            tr, te = blocks < f, blocks == f
+            tr, te = bt < f, bt == f
             beta = within_test_ridge(E[tr], k[tr], n[tr], groups[tr], MEANING_RIDGES)
-            # Centred on the fold's own history, as the final column is on all of it: the score
+            # Centred on the fold's own tests, as the final column is on all of them: the score
             # orders arms within tests and must not move the level.
-            scores[:, te] = beta @ E[te].T - (beta @ E[tr].T).mean(axis=1, keepdims=True)
+            scores[:, t[te]] = beta @ E[te].T - (beta @ E[tr].T).mean(axis=1, keepdims=True)
         rows = []
         for i, lam in enumerate(MEANING_RIDGES):
             for w in MEANING_WEIGHTS:
@@ -911,11 +916,12 @@ class EngagementModel(_Params):
         self.meaning_weight_ = float(best["weight"])
         self.meaning_ridge_ = float(best["ridge"])
         self.meaning_beta_ = within_test_ridge(E, k, n, groups, [self.meaning_ridge_])[0]
-        column = E @ self.meaning_beta_
-        self.meaning_center_ = float(np.mean(column))
+        self.meaning_center_ = float(np.mean(E @ self.meaning_beta_))
+        column = np.zeros(len(frame))
+        column[t] = E @ self.meaning_beta_ - self.meaning_center_
         self.meaning_note_ = (f"used: {MODEL_NAME} sentence embeddings, ridge {self.meaning_ridge_:g}, "
                               f"weight {self.meaning_weight_:g} (chosen on the time folds)")
-        col = sp.csr_matrix((column - self.meaning_center_)[:, None])
+        col = sp.csr_matrix(column[:, None])
         at = X0.shape[1]
         X0 = sp.hstack([X0, col], format="csr")
         X = sp.hstack([X0, X[:, at:]], format="csr")
