@@ -652,6 +652,7 @@ FEATURE_LABELS: dict[str, str] = {
     "posting time": "posting time",
     "topic terms": "topic words",
     "wording": "wording",
+    "headline meaning": "what the headline is about (meaning)",
 }
 
 

@@ -18,6 +18,11 @@ impressions, not like a post with 40,000. Design matrix, left to right:
   is phrased; own multiplier (``wording_penalty``).
 * **channel** one-hot, almost unpenalised: a baseline per channel, so
   channels with different typical rates are compared fairly.
+* **headline meaning** (``meaning``): one column, a sentence embedding of the headline
+  (:mod:`contentlab.meaning`) times ridge weights learned from the differences between arms of
+  the same tests; unlike words, it reaches headlines about topics the history never used. Its
+  ridge penalty and weight are chosen on the same forward time folds once alpha is (weight 0:
+  left out); the weight is its coefficient, the GLM is not refitted with it.
 * **one effect per A/B experiment**, lightly penalised: the arms of a test
   were shown to randomly split audiences at the same time, so once each
   test has its own level, feature effects are learned from the differences
@@ -126,6 +131,12 @@ FAR_UNSEEN_SHARE = 0.5
 # says little (our choice; pulling drafts with fewer new words too cost ranking accuracy on later real tests).
 UNKNOWN_WORDS_SHARE = 1.0
 DEFAULT_ALPHAS = tuple(float(a) for a in np.geomspace(1e-1, 1e-6, 11))
+# Headline meaning (see _add_meaning): ridge penalties in clicks' units and weights of its score
+# beside the GLM's logit, all chosen on the forward time folds (our grid: on the archive's inner
+# folds the best penalties were 300-3000 and the best weights 1-2).
+MEANING_RIDGES = (100.0, 300.0, 1000.0, 3000.0, 10000.0)
+MEANING_WEIGHTS = (0.0, 0.5, 1.0, 1.5, 2.0, 3.0)
+MEANING_GROUP = "headline meaning"
 # Gauss-Hermite (probabilists') nodes and weights: the mean and variance of a logit-normal rate.
 _GH_NODES, _GH_WEIGHTS = np.polynomial.hermite_e.hermegauss(24)
 _GH_WEIGHTS = _GH_WEIGHTS / _GH_WEIGHTS.sum()
@@ -384,7 +395,14 @@ class EngagementModel(_Params):
     progress : bool, default False
         Show a progress bar on stderr.
     n_jobs : int or None, default 1
-        Processes for featurising large histories (passed to the featurizer).
+        Processes for featurising large histories (passed to the featurizer); also the sentence
+        encoder's threads for the headline-meaning column (None: every core).
+    meaning : {"auto", True, False}, default "auto"
+        The headline-meaning column (sentence embeddings, see :mod:`contentlab.meaning`): its
+        weight is chosen on the time folds among ``MEANING_WEIGHTS`` (0 leaves it out). "auto"
+        tries it when the folds choose alpha by pairwise accuracy (at least 300 clearly different
+        held-out test pairs) and its packages are installed, and says why not in ``meaning_note_``;
+        True requires it (weighed by within-test deviance when the pairs are fewer); False never.
     level : {"recent", "history"}, default "recent"
         "recent": each channel's baseline follows its level at the history's end and, when the
         time folds find it helps, a damped slope (half-life and damping chosen on the folds; see
@@ -457,6 +475,7 @@ class EngagementModel(_Params):
         progress: bool = False,
         n_jobs: int | None = 1,
         level: str = "recent",
+        meaning: bool | str = "auto",
     ) -> None:
         self.dense_features = dense_features
         self.use_time = use_time
@@ -478,6 +497,7 @@ class EngagementModel(_Params):
         self.progress = progress
         self.n_jobs = n_jobs
         self.level = level
+        self.meaning = meaning
 
     # ------------------------------------------------------------------ checks
     def _check_params(self) -> tuple[list[str], np.ndarray]:
@@ -494,6 +514,8 @@ class EngagementModel(_Params):
                 raise ContentlabError(f"{name} must be True or False; got {getattr(self, name)!r}")
         if self.wording not in ("ngrams", "function_words", "none"):
             raise ContentlabError(f"wording must be 'ngrams', 'function_words' or 'none'; got {self.wording!r}")
+        if self.meaning not in ("auto", True, False):
+            raise ContentlabError(f"meaning must be 'auto', True or False; got {self.meaning!r}")
         if self.level not in ("recent", "history"):
             raise ContentlabError(f"level must be 'recent' or 'history'; got {self.level!r}")
         if self.cv_metric not in ("auto", "deviance", "pairwise"):
@@ -695,7 +717,8 @@ class EngagementModel(_Params):
         """Learn from history ``posts`` (the workspace's posts frame). Returns ``self``.
 
         The steps, each a method that can be run and tested alone: ``_design`` (features and
-        time blocks), ``_choose_penalty`` (time folds), ``_final_fit``, ``_bootstrap``,
+        time blocks), ``_choose_penalty`` (time folds), ``_final_fit``, ``_bootstrap``, ``_add_meaning``
+        (the headline-meaning column, weighed on the same folds),
         ``_keep_state`` (what prediction and drivers need, incl. drift levels), ``_predictive_spread``
         (the interval's post-to-post part) and ``_validate`` (held-out figures).
         """
@@ -716,6 +739,7 @@ class EngagementModel(_Params):
         bar.close()
         self.boot_coef_ = boot
         oof = oof_by_alpha[(self.alpha_, self.adaptive_)]
+        X0, X, oof = self._add_meaning(data, X0, X, glm, oof)
         eta_all = self._keep_state(data, X0, gidx, clusters, oof)
         self._predictive_spread(data, X0, X, glm, eta_all, oof)
         self.validation_ = self._validate(data, X0, oof)
@@ -857,6 +881,116 @@ class EngagementModel(_Params):
         self.experiments_ = list(gidx)
         return X0, X, glm, gidx
 
+    def _add_meaning(self, data: "_FitData", X0, X, glm, oof):
+        """The headline-meaning column, its ridge penalty and weight chosen on the forward time folds.
+
+        In each fold a within-test ridge (:func:`contentlab.meaning.within_test_ridge`, tests of
+        the earlier blocks) scores the held-out block; the score times each weight of
+        ``MEANING_WEIGHTS`` is added to the GLM's held-out logit, and the (penalty, weight) with
+        the best held-out criterion (the one alpha was chosen by) is kept; weight 0, no column,
+        wins ties. Then the ridge is refitted on every test and its centred score becomes the
+        last shared column (after the channels, so every other offset stays), with the weight
+        as its coefficient (it has no bootstrap spread of its own). Returns the shared design,
+        the full design and the held-out logits, each with the column's part.
+        """
+        self.meaning_column_ = None
+        self.meaning_weight_ = 0.0
+        self.meaning_ridge_ = float("nan")
+        self.meaning_cv_ = pd.DataFrame(columns=["ridge", "weight", "criterion"])
+        note = self._meaning_unusable(data)
+        if note:
+            self.meaning_note_ = note
+            return X0, X, oof
+        from .meaning import MODEL_NAME, embed_headlines, group_codes, within_test_ridge
+
+        frame, blocks = data.frame, data.blocks
+        # Only posts in tests are encoded: the ridge learns from them alone, and a post outside
+        # tests counts as of typical meaning (column 0), so the cost follows the tests, not the history.
+        t = np.flatnonzero(data.in_exp)
+        E = embed_headlines(frame["headline"].iloc[t].map(clean_headline).tolist(), threads=self.n_jobs).astype(float)
+        image = frame["image_id"].to_numpy(dtype=object) if "image_id" in frame else np.full(len(frame), None)
+        groups = group_codes(data.experiment[t], image[t])
+        k, n, bt = data.k[t], data.n[t], blocks[t]
+        held = np.flatnonzero(blocks >= 1)
+        scores = np.zeros((len(MEANING_RIDGES), len(frame)))
+        for f in range(1, self.n_folds + 1):
+            tr, te = bt < f, bt == f
+            beta = within_test_ridge(E[tr], k[tr], n[tr], groups[tr], MEANING_RIDGES)
+            # Centred on the fold's own tests, as the final column is on all of them: the score
+            # orders arms within tests and must not move the level.
+            scores[:, t[te]] = beta @ E[te].T - (beta @ E[tr].T).mean(axis=1, keepdims=True)
+        rows = []
+        for i, lam in enumerate(MEANING_RIDGES):
+            for w in MEANING_WEIGHTS:
+                if w == 0 and i:
+                    continue
+                rows.append({"ridge": lam, "weight": w,
+                             "criterion": self._held_criterion(data, held, oof[held] + w * scores[i, held])})
+        cv = pd.DataFrame(rows)
+        self.meaning_cv_ = cv
+        best = cv.sort_values(["criterion", "weight", "ridge"], kind="stable").iloc[0]
+        if float(best["weight"]) == 0.0:
+            self.meaning_note_ = f"not used: on the time folds it did not improve the {self.cv_metric_} criterion"
+            return X0, X, oof
+        i = MEANING_RIDGES.index(float(best["ridge"]))
+        self.meaning_weight_ = float(best["weight"])
+        self.meaning_ridge_ = float(best["ridge"])
+        self.meaning_beta_ = within_test_ridge(E, k, n, groups, [self.meaning_ridge_])[0]
+        self.meaning_center_ = float(np.mean(E @ self.meaning_beta_))
+        column = np.zeros(len(frame))
+        column[t] = E @ self.meaning_beta_ - self.meaning_center_
+        self.meaning_note_ = (f"used: {MODEL_NAME} sentence embeddings, ridge {self.meaning_ridge_:g}, "
+                              f"weight {self.meaning_weight_:g} (chosen on the time folds)")
+        col = sp.csr_matrix(column[:, None])
+        at = X0.shape[1]
+        X0 = sp.hstack([X0, col], format="csr")
+        X = sp.hstack([X0, X[:, at:]], format="csr")
+        glm.coef_ = np.insert(glm.coef_, at, self.meaning_weight_)
+        self.glm_.coef_ = np.insert(self.glm_.coef_, at, self.meaning_weight_)
+        if self.glm_.params.get("penalty_weights") is not None:
+            self.glm_.params["penalty_weights"] = np.insert(self.glm_.params["penalty_weights"], at, 0.0)
+            self.glm_.penalty_weights = self.glm_.params["penalty_weights"]
+        self.boot_coef_ = np.insert(self.boot_coef_, at, np.float32(self.meaning_weight_), axis=1)
+        self.meaning_column_ = at
+        self.n_shared_ = X0.shape[1]
+        return X0, X, oof + self.meaning_weight_ * scores[i]
+
+    def _meaning_unusable(self, data: "_FitData") -> str | None:
+        """Why the headline-meaning column is left out (None: try it on the folds)."""
+        if self.meaning is False:
+            return "not used (meaning=False)"
+        if len(pd.unique(data.experiment[data.in_exp])) < 2:
+            return "not used: it learns from the differences between arms of A/B tests, and the history has none"
+        if self.meaning == "auto" and self.cv_metric_ != "pairwise":
+            return (f"not used: the held-out time folds hold fewer than {CV_MIN_PAIRS} clearly different pairs "
+                    "of A/B-test arms, too few to weigh it by")
+        from .meaning import missing_runtime
+
+        why = missing_runtime()
+        if why and self.meaning is True:
+            raise ContentlabError(why)
+        return f"not used: {why}" if why else None
+
+    def _held_criterion(self, data: "_FitData", rows: np.ndarray, eta: np.ndarray) -> float:
+        """The time folds' criterion (smaller is better) of held-out logits ``eta`` of ``rows``."""
+        from .evaluation import pair_accuracy, within_experiment_deviance
+
+        if self.cv_metric_ == "pairwise":
+            return -float(pair_accuracy(data.frame.iloc[rows], eta, data.outcome, n_boot=1)["accuracy"])
+        e = data.in_exp[rows]
+        if not e.any():
+            return 0.0
+        r = rows[e]
+        return float(within_experiment_deviance(eta[e], data.k[r], data.n[r], data.experiment[r])[0])
+
+    def _meaning_values(self, texts) -> np.ndarray | None:
+        """The headline-meaning column for ``texts`` (None when the model has none)."""
+        if getattr(self, "meaning_column_", None) is None:
+            return None
+        from .meaning import embed_headlines
+
+        return embed_headlines(list(texts)).astype(float) @ self.meaning_beta_ - self.meaning_center_
+
     def _bootstrap(self, data: "_FitData", X, glm, bar):
         """Refits on resampled whole experiments (and weeks outside them); returns (coefficients, cluster codes)."""
         from .glm import PenalizedBinomialGLM
@@ -944,6 +1078,9 @@ class EngagementModel(_Params):
         self.glm_.coef_[:chan_off] *= self.spread_
         if boot.shape[0]:
             boot[:, :chan_off] *= np.float32(self.spread_)
+        if self.meaning_column_ is not None:
+            self.glm_.coef_[self.meaning_column_] *= self.spread_
+            boot[:, self.meaning_column_] *= np.float32(self.spread_)
         eta_all = np.asarray(X0 @ self.glm_.coef_[: self.n_shared_]).ravel() + self.glm_.intercept_
         # Levels that follow drift: each channel's level (and damped slope) at the history's end, by a
         # half-life and damping chosen on the time folds (see contentlab.levels).
@@ -1047,7 +1184,9 @@ class EngagementModel(_Params):
         }
         if in_exp[held].any():
             e = held & in_exp
-            d_m, d_b = within_experiment_deviance(oof[e], k[e], n[e], experiment[e])
+            # With the held-out spread factor the final model applies to its differences (one
+            # number fitted on these posts): the arms' rates as the saved model would predict them.
+            d_m, d_b = within_experiment_deviance(self.spread_ * oof[e], k[e], n[e], experiment[e])
             validation["within_experiment"] = {
                 "n_posts": int(e.sum()),
                 "model_deviance": d_m,
@@ -1129,6 +1268,9 @@ class EngagementModel(_Params):
         raw_dense = D.copy()  # the draft's own values, for reasons (the design below is bounded and may be shrunk)
         D, outside, distance = self._bound_dense(D)
         X = self._matrix(D, T, Wm, channel, rows, self.state_)
+        meaning = self._meaning_values(text)
+        if meaning is not None:
+            X = sp.hstack([X, sp.csr_matrix(meaning[:, None])], format="csr")
         if unknown:
             # Unknown channel (evaluation only): the history's channel mix stands in for it.
             off = len(self.state_["dense_idx"]) + len(self.state_["term_idx"]) + len(self.state_["word_idx"])
@@ -1360,6 +1502,8 @@ class EngagementModel(_Params):
             groups["topic terms"] = list(range(d, d + t))
         if w:
             groups["wording"] = list(range(d + t, d + t + w))
+        if getattr(self, "meaning_column_", None) is not None:
+            groups[MEANING_GROUP] = [self.meaning_column_]
         return {k: np.asarray(v, dtype=int) for k, v in groups.items()}
 
     def drivers(self, *, top_terms: int = 15, min_term_posts: int = 10) -> pd.DataFrame:
@@ -1382,6 +1526,7 @@ class EngagementModel(_Params):
             "n_dense": len(self.dense_columns_),
             "n_terms": len(self.term_names_),
             "n_wording": len(self.wording_names_),
+            "meaning": getattr(self, "meaning_note_", "not used (older model)"),
             "overdispersion": self.overdispersion_,
             "n_bootstrap": int(self.boot_coef_.shape[0]),
             "validation": self.validation_,

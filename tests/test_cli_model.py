@@ -40,6 +40,17 @@ def test_learn_prints_validation_and_drivers(workspace, capsys):
     assert "Top drivers" in out and "not proof of cause" in out
 
 
+def test_learn_says_whether_headline_meaning_was_used(workspace, capsys):
+    # The demo's 100 small tests hold too few clearly different held-out pairs to weigh it by.
+    code, out, err = run(capsys, "learn", "--workspace", str(workspace), "--bootstrap", "0", "--quiet")
+    assert code == 0, err
+    assert "Headline meaning: not used: the held-out time folds hold fewer than 300" in out
+    code, out, err = run(capsys, "learn", "--workspace", str(workspace), "--bootstrap", "0", "--quiet",
+                         "--no-meaning", "--format", "json")
+    assert code == 0, err
+    assert json.loads(out)["meaning"] == "not used (meaning=False)"
+
+
 def test_learn_json_and_saved_summary(workspace, capsys):
     code, out, _ = run(capsys, "learn", "--workspace", str(workspace), "--bootstrap", "0", "--quiet",
                        "--format", "json")
