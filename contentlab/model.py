@@ -137,6 +137,11 @@ DEFAULT_ALPHAS = tuple(float(a) for a in np.geomspace(1e-1, 1e-6, 11))
 MEANING_RIDGES = (100.0, 300.0, 1000.0, 3000.0, 10000.0)
 MEANING_WEIGHTS = (0.0, 0.5, 1.0, 1.5, 2.0, 3.0)
 MEANING_GROUP = "headline meaning"
+# At most about this many arms are encoded for the meaning column (whole tests, spread evenly over the
+# history so every time fold keeps some): encoding is most of its cost (about 4 ms a headline on one
+# core), and a 384-dimension ridge is well fitted by a few thousand arms. Our bound: it keeps learn on
+# 100,000 posts near 30 s; the archive's later time cut (about 6,000 arms in varied tests) is under it.
+MEANING_MAX_ARMS = 6000
 # Gauss-Hermite (probabilists') nodes and weights: the mean and variance of a logit-normal rate.
 _GH_NODES, _GH_WEIGHTS = np.polynomial.hermite_e.hermegauss(24)
 _GH_WEIGHTS = _GH_WEIGHTS / _GH_WEIGHTS.sum()
@@ -396,7 +401,8 @@ class EngagementModel(_Params):
         Show a progress bar on stderr.
     n_jobs : int or None, default 1
         Processes for featurising large histories (passed to the featurizer); also the sentence
-        encoder's threads for the headline-meaning column (None: every core).
+        encoder's threads for the headline-meaning column (None: every core). Other than 1, the
+        encoder runs in a child process beside the time folds and bootstrap (where ``fork`` exists).
     meaning : {"auto", True, False}, default "auto"
         The headline-meaning column (sentence embeddings, see :mod:`contentlab.meaning`): its
         weight is chosen on the time folds among ``MEANING_WEIGHTS`` (0 leaves it out). "auto"
@@ -728,6 +734,7 @@ class EngagementModel(_Params):
         dense_names, alphas = self._check_params()
         frame = self._check_posts(posts, outcome)
         data = self._design(frame, outcome, dense_names)
+        encoding = self._start_encoding(data)
         bar = tqdm(total=self.n_folds * len(alphas) + self.n_bootstrap, desc="learn", unit="fit", file=sys.stderr,
                    disable=not self.progress, leave=False)
         # Scipy's L-BFGS-B calls BLAS on tiny vectors; with several BLAS threads on a shared
@@ -739,7 +746,7 @@ class EngagementModel(_Params):
         bar.close()
         self.boot_coef_ = boot
         oof = oof_by_alpha[(self.alpha_, self.adaptive_)]
-        X0, X, oof = self._add_meaning(data, X0, X, glm, oof)
+        X0, X, oof = self._add_meaning(data, X0, X, glm, oof, encoding)
         eta_all = self._keep_state(data, X0, gidx, clusters, oof)
         self._predictive_spread(data, X0, X, glm, eta_all, oof)
         self.validation_ = self._validate(data, X0, oof)
@@ -881,7 +888,63 @@ class EngagementModel(_Params):
         self.experiments_ = list(gidx)
         return X0, X, glm, gidx
 
-    def _add_meaning(self, data: "_FitData", X0, X, glm, oof):
+    def _meaning_rows(self, data: "_FitData") -> np.ndarray:
+        """The posts the meaning column learns from, in time order; every other post counts as 0.
+
+        Arms of a test (and image) that shows at least two different headlines: an arm alone, or
+        arms that share one headline, teach a within-test ridge nothing. Above ``MEANING_MAX_ARMS``
+        such arms, an even share of the tests in time order (whole tests), so learn's time stays
+        bounded and every time fold still has tests before it to learn from.
+        """
+        from .meaning import group_codes
+
+        frame = data.frame
+        rows = np.flatnonzero(data.in_exp)
+        text = frame["headline"].iloc[rows].map(clean_headline).to_numpy(dtype=object)
+        image = frame["image_id"].to_numpy(dtype=object)[rows] if "image_id" in frame else np.full(len(rows), None)
+        groups = group_codes(data.experiment[rows], image)
+        varied = pd.Series(text).groupby(groups).transform("nunique").to_numpy() >= 2
+        rows, groups = rows[varied], groups[varied]
+        if len(rows) > MEANING_MAX_ARMS:
+            # Tests in time order (the frame is), every (1/share)-th one: floor((i + 1) q) > floor(i q).
+            order = pd.Series(rows).groupby(groups).min().sort_values().index.to_numpy()
+            share = MEANING_MAX_ARMS / len(rows)
+            i = np.arange(len(order))
+            keep = order[np.floor((i + 1) * share) > np.floor(i * share)]
+            rows = rows[np.isin(groups, keep)]
+        return rows
+
+    def _meaning_texts(self, data: "_FitData", rows: np.ndarray) -> list[str]:
+        """The headlines of ``rows`` (from :meth:`_meaning_rows`), cleaned as the featurizer cleans them."""
+        return data.frame["headline"].iloc[rows].map(clean_headline).tolist()
+
+    def _start_encoding(self, data: "_FitData"):
+        """Encode the test posts' headlines in a child process while the folds and bootstrap run.
+
+        Encoding is most of what headline meaning adds to ``learn`` (about half a minute for the
+        archive's 8,700 test headlines on one core), and the GLM steps leave a core idle much of
+        the time. Returns a future of the embeddings, or None (encode in ``_add_meaning`` instead)
+        when meaning will not be tried, ``n_jobs=1`` asks for one core, or ``fork`` is missing.
+        """
+        import multiprocessing as mp
+
+        if self.n_jobs == 1 or "fork" not in mp.get_all_start_methods():
+            return None
+        # The same rule _choose_penalty applies (it depends on the held-out blocks alone).
+        self.cv_metric_ = self._cv_metric(data.frame.iloc[np.flatnonzero(data.blocks >= 1)], data.outcome)
+        if self._meaning_unusable(data):
+            return None
+        from concurrent.futures import ProcessPoolExecutor
+
+        from .meaning import embed_headlines
+
+        executor = ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("fork"))
+        try:
+            return executor.submit(embed_headlines, self._meaning_texts(data, self._meaning_rows(data)), 1)
+        finally:
+            executor.shutdown(wait=False)  # the worker exits once the embeddings are sent
+
+    def _add_meaning(self, data: "_FitData", X0, X, glm, oof, encoding=None):
         """The headline-meaning column, its ridge penalty and weight chosen on the forward time folds.
 
         In each fold a within-test ridge (:func:`contentlab.meaning.within_test_ridge`, tests of
@@ -904,10 +967,20 @@ class EngagementModel(_Params):
         from .meaning import MODEL_NAME, embed_headlines, group_codes, within_test_ridge
 
         frame, blocks = data.frame, data.blocks
-        # Only posts in tests are encoded: the ridge learns from them alone, and a post outside
-        # tests counts as of typical meaning (column 0), so the cost follows the tests, not the history.
-        t = np.flatnonzero(data.in_exp)
-        E = embed_headlines(frame["headline"].iloc[t].map(clean_headline).tolist(), threads=self.n_jobs).astype(float)
+        # Only arms of tests are encoded (see _meaning_rows): the ridge learns from them alone, and any
+        # other post counts as of typical meaning (column 0), so the cost follows the tests, not the history.
+        t = self._meaning_rows(data)
+        E = None
+        if encoding is not None:
+            from concurrent.futures.process import BrokenProcessPool
+
+            try:
+                E = encoding.result()
+            except BrokenProcessPool:  # the child died (killed, out of memory): encode here instead
+                E = None
+        if E is None:
+            E = embed_headlines(self._meaning_texts(data, t), threads=self.n_jobs)
+        E = np.asarray(E, dtype=float)
         image = frame["image_id"].to_numpy(dtype=object) if "image_id" in frame else np.full(len(frame), None)
         groups = group_codes(data.experiment[t], image[t])
         k, n, bt = data.k[t], data.n[t], blocks[t]
@@ -915,6 +988,8 @@ class EngagementModel(_Params):
         scores = np.zeros((len(MEANING_RIDGES), len(frame)))
         for f in range(1, self.n_folds + 1):
             tr, te = bt < f, bt == f
+            if not tr.any() or not te.any():
+                continue  # no encoded test before this fold (or in it): its held-out score stays 0
             beta = within_test_ridge(E[tr], k[tr], n[tr], groups[tr], MEANING_RIDGES)
             # Centred on the fold's own tests, as the final column is on all of them: the score
             # orders arms within tests and must not move the level.

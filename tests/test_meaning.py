@@ -180,3 +180,49 @@ def test_meaning_needs_tests_and_its_packages(monkeypatch):
         EngagementModel(n_bootstrap=0, meaning=True).fit(history)
     with pytest.raises(ContentlabError, match="meaning must be"):
         EngagementModel(meaning="yes").fit(history)
+
+
+@needs_runtime
+def test_encoding_beside_the_folds_gives_the_same_model(meaning_data):
+    """With n_jobs other than 1 the encoder runs in a child process while the folds run; the model is the
+    same as with encoding in line (same embeddings, same choices)."""
+    history, later, inline, _ = meaning_data
+    model = EngagementModel(n_bootstrap=5, meaning=True, n_jobs=2)
+    dense_names, _ = model._check_params()
+    data = model._design(model._check_posts(history, "clicks"), "clicks", dense_names)
+    future = model._start_encoding(data)
+    assert future is not None
+    np.testing.assert_allclose(future.result(), meaning.embed_headlines(model._meaning_texts(data, model._meaning_rows(data))), atol=1e-6)
+    beside = model.fit(history)
+    assert beside.meaning_ridge_ == inline.meaning_ridge_ and beside.meaning_weight_ == inline.meaning_weight_
+    np.testing.assert_allclose(beside.meaning_beta_, inline.meaning_beta_, atol=1e-8)
+    np.testing.assert_allclose(beside.predict_frame(later)["logit"].to_numpy(),
+                               inline.predict_frame(later)["logit"].to_numpy(), atol=1e-8)
+    assert EngagementModel(meaning=True, n_jobs=1)._start_encoding(data) is None  # one core asked for: in line
+
+
+def test_meaning_rows_keep_varied_tests_spread_over_time(monkeypatch):
+    """Arms that cannot teach a within-test ridge (alone in their test, or sharing one headline) are not
+    encoded; above the bound, whole tests are kept, spread evenly over time (every fold keeps some)."""
+    from contentlab import model as model_module
+
+    history = _ab_tests(60, range(3), "2024-01-01", 3, "v")
+    model = EngagementModel(n_bootstrap=0)
+    dense_names, _ = model._check_params()
+    data = model._design(model._check_posts(history, "clicks"), "clicks", dense_names)
+    first = data.frame.index[data.in_exp][0]
+    same = data.frame["experiment_id"] == data.frame.loc[first, "experiment_id"]
+    data.frame.loc[same, "headline"] = "One headline for every arm"
+    rows = model._meaning_rows(data)
+    assert not same.to_numpy()[rows].any() and len(rows) == int(data.in_exp.sum() - same.sum())
+    monkeypatch.setattr(model_module, "MEANING_MAX_ARMS", 40)
+    capped = model._meaning_rows(data)
+    assert 36 <= len(capped) <= 44 and set(capped) <= set(rows)  # about the bound (two-arm tests)
+    tests = data.frame["experiment_id"].to_numpy()
+    for t in set(tests[capped]):  # whole tests
+        assert np.isin(rows[tests[rows] == t], capped).all()
+    # Spread over time: each time block with encoded arms keeps about its share of them.
+    blocks = data.blocks
+    for b in np.unique(blocks[rows]):
+        share = np.mean(blocks[capped] == b)
+        assert abs(share - np.mean(blocks[rows] == b)) < 0.15
