@@ -113,6 +113,7 @@ REPLAY_DRAWS = 100
 REPLAY_MAX_TESTS = 300
 # Per-arm test of early against late results; Bonferroni over arms.
 DRIFT_ALPHA = 0.01
+FIRST_ROUND_MINUTES = 5
 POLICY_ALIASES = {"thompson": "thompson", "top-two": "top_two", "top_two": "top_two"}
 RESULT_COLUMNS = ["arm", "impressions", "clicks", "at", "event_id"]
 
@@ -1237,9 +1238,10 @@ def _local_time(utc_text: str, timezone: str) -> str:
 def end_plan(ws: Workspace, exp: dict, now: str | None = None) -> dict | None:
     """The budget a planned end time implies: impressions so far plus their pace times the time left.
 
-    The pace is the impressions recorded after the first result time over the
-    time from it to the latest (with results at one time only: all of them
-    over the time since the test was created). The time left runs from the
+    The pace is the impressions recorded after the first round of results
+    (those within ``FIRST_ROUND_MINUTES`` of the first) over the time from it
+    to the latest (with one round only: all of them over the time since the
+    test was created). The time left runs from the
     latest result to the end (none once the end has passed). Returns None
     without an end time; ``budget`` is None while the pace is unknown.
     """
@@ -1259,14 +1261,15 @@ def end_plan(ws: Workspace, exp: dict, now: str | None = None) -> dict | None:
         return plan
     times = pd.to_datetime(pd.Series([at for at, _ in rows]), utc=True, format="ISO8601")
     counts = np.array([float(n) for _, n in rows])
-    order = np.argsort(times.to_numpy(), kind="stable")
-    times, counts = times.iloc[order].reset_index(drop=True), counts[order]
-    if len(times) >= 2:
-        start, counted = times.iloc[0], float(counts[1:].sum())
+    # Results within a few minutes of the first are one round (arms recorded one command at a time).
+    first_round = (times <= times.min() + pd.Timedelta(minutes=FIRST_ROUND_MINUTES)).to_numpy()
+    if not first_round.all():
+        start, counted = times.min(), float(counts[~first_round].sum())
     else:
         start, counted = pd.Timestamp(exp["created_at"]), spent
-    elapsed = (times.iloc[-1] - start).total_seconds()
-    left = 0.0 if plan["passed"] else max((end_ts - times.iloc[-1]).total_seconds(), 0.0)
+    latest = times.max()
+    elapsed = (latest - start).total_seconds()
+    left = 0.0 if plan["passed"] else max((end_ts - latest).total_seconds(), 0.0)
     total = float(paced_budget(counted, elapsed, left))
     if not math.isfinite(total):
         return plan
@@ -1343,7 +1346,8 @@ def _end_words(bandit: ThompsonBandit, plan: Mapping) -> str:
             "times are in (or one after the test was created), so until then the split keeps its usual balance."
         )
     rise = (f"the power on each draft's probability of being best rises from {float(bandit.temper_start):g} to "
-            f"{float(bandit.temper):g} as the expected impressions are spent (now {bandit.current_temper():.2g})")
+            f"{float(bandit.temper):g} as the expected impressions are spent (now {bandit.current_temper():.2g})"
+            if bandit.policy == "thompson" else "top-two sampling does not change with it")
     if plan["passed"]:
         return (f"The planned end {plan['when']} has passed, so no impressions are expected after the latest results "
                 f"and the split commits to the likely winner ({rise}).")
@@ -1351,8 +1355,8 @@ def _end_words(bandit: ThompsonBandit, plan: Mapping) -> str:
     return (
         f"About {left:,.0f} impressions left before {plan['when']} (at the pace of your results so far, about "
         f"{plan['pace_per_hour']:,.0f} an hour; {plan['spent']:,.0f} recorded), so about "
-        f"{plan['spent'] / plan['budget']:.0%} of the expected {plan['budget']:,} is spent: {rise}, exploring while "
-        "much remains and committing as it runs out."
+        f"{plan['spent'] / plan['budget']:.0%} of the expected {plan['budget']:,} is spent: {rise}"
+        + (", exploring while much remains and committing as it runs out." if bandit.policy == "thompson" else ".")
     )
 
 

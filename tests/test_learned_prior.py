@@ -255,3 +255,18 @@ def test_next_commits_to_the_named_draft_once_the_stopping_rule_fires(learned_ws
     alloc = next_allocation(learned_ws, "hours", 1000)
     assert alloc.arms.set_index("arm")["impressions"].to_dict() == {"A": 0, "B": 1000, "C": 0, "D": 0}
     assert any("The stopping rule fires (B is very likely best" in line for line in alloc.why)
+
+
+def test_results_recorded_a_minute_apart_count_as_one_round_for_the_pace(learned_ws, tmp_path):
+    from contentlab.experiments import end_plan
+
+    create_experiment(learned_ws, "hours", DRAFTS, seed=3, ends_at=_at(48))
+    t0 = pd.Timestamp.now(tz="UTC") - pd.Timedelta(hours=18)
+    times = [t0, t0 + pd.Timedelta(minutes=1), t0 + pd.Timedelta(hours=18)]
+    path = tmp_path / "r.csv"
+    path.write_text("arm,impressions,clicks,at\n" + "".join(
+        f"{arm},400,10,{t:%Y-%m-%dT%H:%M:%S+00:00}\n" for arm, t in zip("ABC", times)), encoding="utf-8")
+    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    exp = {"name": "hours", "created_at": _at(-48), "settings": {"ends_at": _at(48)}}
+    # A and B (a minute apart) are the first round; C's 400 came in the 18 hours after it.
+    assert end_plan(learned_ws, exp)["pace_per_hour"] == pytest.approx(400 / 18, rel=1e-3)
