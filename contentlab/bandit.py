@@ -53,9 +53,9 @@ __all__ = [
     "first_split_cap",
     "fit_arm_spread",
     "fit_prior_strength",
+    "paced_budget",
     "posterior_summary",
     "prior_params",
-    "paced_budget",
     "prob_beta_greater",
     "replay_regret_rows",
     "split_impressions",
@@ -843,6 +843,9 @@ class ThompsonBandit:
         _check_real("temper_start", self.temper_start, low=0.0, open_low=True)
         if self.first_cap is not None:
             _check_real("first_cap", self.first_cap, low=0.0, high=1.0, open_low=True)
+        for name in ("cap_lift", "commit_on_stop"):
+            if not isinstance(getattr(self, name), (bool, np.bool_)):
+                raise ContentlabError(f"{name} must be True or False; got {getattr(self, name)!r}.")
         rs = self.random_state
         if not (rs is None or isinstance(rs, np.random.Generator)):
             if isinstance(rs, bool) or not isinstance(rs, Integral) or rs < 0:

@@ -586,6 +586,28 @@ def test_committing_when_the_rule_fires_matches_the_replay_core(p):
     assert whole[-1] == (p[2] == 0.06) and not whole[0]
 
 
+def test_committing_does_not_change_the_winner_named_or_when():
+    # The named arm and the impressions until the rule first fires are fixed before committing can act, so
+    # the right-winner figures cannot change (each test replayed alone, so no other test's draws interleave).
+    from contentlab.bandit import first_split_cap, replay_regret_rows
+
+    rng = np.random.default_rng(5)
+    p = special.expit(special.logit(0.02) + rng.normal(0, 0.4, size=(12, 3)))
+    spread = {"logit_sd": 0.4, "level": 0.02, "level_weight": 200.0}
+    fired = 0
+    for row in range(len(p)):
+        got = []
+        for commit in (False, True):
+            stops: dict = {}
+            replay_regret_rows(p[row:row + 1], np.array([20_000]), None, None, np.random.default_rng(row),
+                               batch=200, n_draws=200, min_share=0.005, spread=spread, first_cap=first_split_cap(3),
+                               stops=stops, commit_on_stop=commit)
+            got.append((int(stops["named"][0]), int(stops["impressions"][0]), bool(stops["fired"][0])))
+        assert got[0] == got[1]
+        fired += got[0][2]
+    assert fired >= 3  # the check covers tests where the rule fires (and so committing acts)
+
+
 def test_commit_on_stop_follows_the_decision():
     # The arm committed to is the one decision() would stop on, and only while it says stop.
     kw = dict(arms=["a", "b"], min_share=0.01, random_state=4, commit_on_stop=True)
