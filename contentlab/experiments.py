@@ -999,6 +999,11 @@ def create_experiment(
             "A model-informed prior is a starting guess from correlations in past posts, not a causal effect; "
             "results soon outweigh it."
         )
+    if prior.learned is not None:
+        notes.append(
+            "Once the stopping rule fires (experiment status: the leader very likely best, or choosing it costs next "
+            "to nothing), every impression goes to the draft it names until you stop the test."
+        )
     if end is not None:
         notes.append(
             f"Planned end: {_local_time(end, ws.timezone)}. Once results come in, their pace gives the impressions "

@@ -270,3 +270,8 @@ def test_results_recorded_a_minute_apart_count_as_one_round_for_the_pace(learned
     exp = {"name": "hours", "created_at": _at(-48), "settings": {"ends_at": _at(48)}}
     # A and B (a minute apart) are the first round; C's 400 came in the 18 hours after it.
     assert end_plan(learned_ws, exp)["pace_per_hour"] == pytest.approx(400 / 18, rel=1e-3)
+
+
+def test_new_says_the_split_commits_once_the_rule_fires(learned_ws):
+    created = create_experiment(learned_ws, "hours", DRAFTS, seed=3)
+    assert any("every impression goes to the draft it names" in note for note in created.notes)
