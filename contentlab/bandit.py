@@ -53,6 +53,7 @@ __all__ = [
     "first_split_cap",
     "fit_arm_spread",
     "fit_prior_strength",
+    "paced_budget",
     "posterior_summary",
     "prior_params",
     "prob_beta_greater",
@@ -477,6 +478,21 @@ def budget_temper(spent: ArrayLike, budget: ArrayLike, temper: float, temper_sta
     return temper_start + (temper - temper_start) * frac
 
 
+def paced_budget(spent: ArrayLike, elapsed: ArrayLike, left: ArrayLike) -> np.ndarray:
+    """The whole budget a planned end time implies: impressions so far plus the pace so far times the time left.
+
+    ``elapsed`` and ``left`` are in one unit (seconds for a real test,
+    rounds in the replay). Where nothing has been spent or no time has
+    passed the pace is unknown and the answer is NaN (no budget yet).
+    """
+    spent = np.asarray(spent, dtype=float)
+    elapsed = np.asarray(elapsed, dtype=float)
+    left = np.maximum(np.asarray(left, dtype=float), 0.0)
+    known = (spent > 0) & (elapsed > 0)
+    pace = np.divide(spent, elapsed, out=np.zeros_like(spent * elapsed), where=known)
+    return np.where(known, spent + pace * left, np.nan)
+
+
 def stop_rule(prob: np.ndarray, loss: np.ndarray, mean: np.ndarray,
               prob_threshold: float = PROB_STOP, loss_share: float = LOSS_STOP_SHARE) -> tuple[np.ndarray, np.ndarray]:
     """Rows whose leader would be named now (probability of being best, or expected loss small), and the leader.
@@ -508,6 +524,9 @@ def replay_regret_rows(
     first_cap: float | None = None,
     cap_lift: bool = False,
     stops: dict | None = None,
+    round_sizes: np.ndarray | None = None,
+    paced: bool = False,
+    commit_on_stop: bool = False,
 ) -> np.ndarray:
     """Replay past tests whose arm rates ``p`` are taken as the truth; clicks lost per test.
 
@@ -528,10 +547,23 @@ def replay_regret_rows(
     arm more than this share (with ``cap_lift``, except up to that probability).
     ``stops``: filled with ``impressions`` used when the stopping rule first
     fires (the budget if never) and ``named``, the arm it names (else the
-    leader at the end).
+    leader at the end). ``round_sizes`` (tests, rounds): impressions of each
+    round instead of ``batch`` (traffic whose pace varies; each row sums to
+    its budget). ``paced`` (with ``temper_start``): the budget the temper
+    sees is not the real one but :func:`paced_budget` after each round, as
+    with a planned end time (``experiment new --ends-at``): the rounds are the
+    clock, the pace so far times the rounds left the impressions still to come.
+    ``commit_on_stop``: while the stopping rule fires, the round goes wholly
+    to the arm it names (:meth:`ThompsonBandit.committed_arm`).
     """
     gap = p.max(axis=1, keepdims=True) - p
     batch = np.broadcast_to(np.asarray(batch, dtype=np.int64), budget.shape)
+    if round_sizes is not None:
+        round_sizes = np.asarray(round_sizes, dtype=np.int64)
+        n_rounds = (np.cumsum(round_sizes[:, ::-1], axis=1) > 0).sum(axis=1)  # up to the last round with traffic
+    else:
+        n_rounds = -(-budget.astype(np.int64) // np.maximum(batch, 1))
+    done_rounds = 0
     remaining = budget.astype(np.int64).copy()
     impressions = np.zeros_like(p)
     clicks = np.zeros_like(p)
@@ -544,7 +576,10 @@ def replay_regret_rows(
         act = np.flatnonzero(remaining > 0)
         if act.size == 0:
             break
-        n = np.minimum(batch[act], remaining[act])
+        if round_sizes is None:
+            n = np.minimum(batch[act], remaining[act])
+        else:
+            n = np.minimum(round_sizes[act, done_rounds], remaining[act])
         if spread is not None:
             off = None if offsets is None else offsets[act]
             pa0, pb0 = within_test_prior(clicks[act], impressions[act], logit_sd=spread["logit_sd"],
@@ -553,16 +588,23 @@ def replay_regret_rows(
             pa0, pb0 = a0[act], b0[act]
         a = pa0 + clicks[act]
         b = pb0 + (impressions[act] - clicks[act])
-        prob, loss = posterior_summary(a, b, n_draws, rng, with_loss=track)
-        if track:
+        prob, loss = posterior_summary(a, b, n_draws, rng, with_loss=track or commit_on_stop)
+        if track or commit_on_stop:
             spent = impressions[act].sum(axis=1)
-            fire, lead = stop_rule(prob, loss, a / (a + b))
-            fire &= (spent > 0) & (stop_at[act] < 0)
+            now, lead = stop_rule(prob, loss, a / (a + b))
+            now &= spent > 0
+        if track:
+            fire = now & (stop_at[act] < 0)
             stop_at[act[fire]] = spent[fire]
             named[act[fire]] = lead[fire]
         t = temper
         if temper_start is not None:
-            t = budget_temper(impressions[act].sum(axis=1), budget[act], temper, temper_start)[:, None]
+            spent_now = impressions[act].sum(axis=1)
+            planned = budget[act]
+            if paced:
+                planned = paced_budget(spent_now, done_rounds, n_rounds[act] - done_rounds)
+                planned = np.where(np.isfinite(planned), planned, 1.0)  # nothing spent yet: the start temper
+            t = budget_temper(spent_now, planned, temper, temper_start)[:, None]
         cap = None
         if first_cap is not None:
             fresh = impressions[act].sum(axis=1) == 0
@@ -571,6 +613,8 @@ def replay_regret_rows(
                 cap = np.maximum(cap, prob)
             t = np.where(fresh[:, None], 1.0, t)
         share = allocation_shares(prob, policy=policy, temper=t, min_share=min_share, cap=cap)
+        if commit_on_stop and now.any():
+            share[now] = np.eye(p.shape[1])[lead[now]]
         alloc = split_impressions(share, n, rng)
         if trace is not None:
             trace.append(alloc[0].tolist())
@@ -578,6 +622,7 @@ def replay_regret_rows(
         clicks[act] += rng.binomial(alloc, p[act])
         remaining[act] -= n
         regret[act] += (alloc * gap[act]).sum(axis=1)
+        done_rounds += 1
     if track:
         never = stop_at < 0
         if never.any():
@@ -692,6 +737,11 @@ class ThompsonBandit:
     cap_lift : bool, default False
         Let an arm exceed ``first_cap`` up to its prior probability of being
         best (for a prior validated on past tests).
+    commit_on_stop : bool, default False
+        While the stopping rule of :meth:`decision` (default thresholds)
+        fires, every impression goes to the arm it names, as when the test is
+        stopped and the winner shown: the floors and exploration would only
+        lose clicks on arms the rule has ruled out.
     random_state : int, numpy Generator or None, default None
         An int makes every answer a function of the seed and the number of
         updates so far (asking twice gives the same split); a Generator is
@@ -727,6 +777,7 @@ class ThompsonBandit:
         temper_start: float = DEFAULT_TEMPER_START,
         first_cap: float | None = None,
         cap_lift: bool = False,
+        commit_on_stop: bool = False,
         random_state: int | np.random.Generator | None = None,
     ) -> None:
         self.arms = arms
@@ -746,6 +797,7 @@ class ThompsonBandit:
         self.temper_start = temper_start
         self.first_cap = first_cap
         self.cap_lift = cap_lift
+        self.commit_on_stop = commit_on_stop
         self.random_state = random_state
 
     # ---- validation -----------------------------------------------------
@@ -791,6 +843,9 @@ class ThompsonBandit:
         _check_real("temper_start", self.temper_start, low=0.0, open_low=True)
         if self.first_cap is not None:
             _check_real("first_cap", self.first_cap, low=0.0, high=1.0, open_low=True)
+        for name in ("cap_lift", "commit_on_stop"):
+            if not isinstance(getattr(self, name), (bool, np.bool_)):
+                raise ContentlabError(f"{name} must be True or False; got {getattr(self, name)!r}.")
         rs = self.random_state
         if not (rs is None or isinstance(rs, np.random.Generator)):
             if isinstance(rs, bool) or not isinstance(rs, Integral) or rs < 0:
@@ -924,7 +979,12 @@ class ThompsonBandit:
     def _shares(self) -> tuple[list[str], np.ndarray, np.random.Generator]:
         arms, a, b = self._ab()
         rng = self._rng()
-        prob, _ = posterior_summary(a[None], b[None], int(self.n_draws), rng)
+        commit = bool(self.commit_on_stop)
+        prob, loss = posterior_summary(a[None], b[None], int(self.n_draws), rng, with_loss=commit)
+        if commit and self.impressions_.sum() > 0:
+            fire, lead = stop_rule(prob, loss, (a / (a + b))[None])
+            if fire[0]:
+                return arms, np.eye(len(arms))[lead], rng
         cap = None
         temper = self.current_temper()
         if self.first_cap is not None and self.impressions_.sum() == 0:
@@ -943,6 +1003,15 @@ class ThompsonBandit:
             cap=cap,
         )
         return arms, share, rng
+
+    def committed_arm(self) -> str | None:
+        """With ``commit_on_stop``, the arm that gets every next impression because the stopping rule fires; else None."""
+        arms = self._state()
+        if not self.commit_on_stop or self.impressions_.sum() == 0:
+            return None
+        _, share, _ = self._shares()
+        top = int(np.argmax(share[0]))
+        return arms[top] if share[0, top] == 1.0 else None
 
     def shares(self) -> dict[str, float]:
         """Fraction of the next impressions each arm should get (sums to 1)."""
@@ -1059,6 +1128,7 @@ class ThompsonBandit:
                 "temper_start": float(self.temper_start),
                 "first_cap": None if self.first_cap is None else float(self.first_cap),
                 "cap_lift": bool(self.cap_lift),
+                "commit_on_stop": bool(self.commit_on_stop),
                 "random_state": None if self.random_state is None else int(self.random_state),
             },
             "state": {

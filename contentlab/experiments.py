@@ -59,6 +59,7 @@ from .bandit import (
     fit_arm_spread,
     fit_prior_strength,
     first_split_cap,
+    paced_budget,
     prior_params,
     replay_regret_rows,
     wilson_interval,
@@ -112,6 +113,7 @@ REPLAY_DRAWS = 100
 REPLAY_MAX_TESTS = 300
 # Per-arm test of early against late results; Bonferroni over arms.
 DRIFT_ALPHA = 0.01
+FIRST_ROUND_MINUTES = 5
 POLICY_ALIASES = {"thompson": "thompson", "top-two": "top_two", "top_two": "top_two"}
 RESULT_COLUMNS = ["arm", "impressions", "clicks", "at", "event_id"]
 
@@ -580,18 +582,28 @@ def choose_prior_strength(
 # Chosen on an inner time split of the archive's earlier 70% only
 # (benchmarks/replay_archive.py --tune: spread learned on the earlier half of
 # that part, replayed on its later half, where rates had drifted from 2.29% to
-# 1.82% as they drift again later; 2 seeds). The rule, fixed before looking:
-# the lowest clicks lost among settings whose right-winner share is at least
-# the former default's (0.952 there).
-# LEARNED_PRIOR_WIDTH: the prior's spread is twice the fitted one. The fitted
-# spread describes the typical test, whose arms differ little; a normal prior
-# that tight holds back the few arms that truly differ a lot, which is where
-# clicks are lost (width 1: 0.306 of the equal split's clicks lost, 1.5: 0.308,
-# 2: 0.289, 3: 0.305; right winner 0.959, 0.963, 0.980, 0.956).
-# LEARNED_MIN_SHARE: a floor of 0.5% (no floor 0.291 and right winner 0.949,
-# below the former default's; 1%: 0.307). The temper stays DEFAULT_TEMPER
-# (6 lost 0.305). The replay that checks the model's gaps uses this policy and
-# the first-split cap.
+# 1.82% as they drift again later; 6 seeds, 2026-12-02). The rule, fixed
+# before looking: the lowest clicks lost among settings whose right-winner
+# share is at least the former default's (0.956 there; the former default
+# lost 0.313 of the equal split's clicks).
+# LEARNED_PRIOR_WIDTH: the prior's spread is twice the fitted one (width 1.5:
+# 0.306 without and 0.301 with committing on stop, right winner 0.963 and
+# 0.955; 2: 0.304 and 0.303, 0.960 and 0.957; 3: 0.304 and 0.306). The
+# fitted spread describes the typical test, whose arms differ little; a
+# normal prior that tight holds back the few arms that truly differ a lot.
+# The widths differ by less than their seed-to-seed noise (sd 0.005-0.014).
+# A scale mixture of two spreads fitted by empirical Bayes (71% of arms at
+# 0.10, 29% at 0.37 log-odds; far likelier than one spread) lost no fewer
+# clicks in a prototype replay (0.304 at 1.5 times both spreads against 0.309
+# for one spread at twice, 8 seeds, difference -0.004 +- 0.006), so the
+# library keeps the one spread.
+# Committing on stop (ThompsonBandit.commit_on_stop, learned-prior experiments
+# only): -0.0013 +- 0.0044 at width 2 there, -0.0066 +- 0.0027 in the
+# prototype's 8 seeds; it is what following the stopping advice does.
+# LEARNED_MIN_SHARE: a floor of 0.5% (an earlier --tune: no floor 0.291 and
+# right winner 0.949, below the former default's; 1%: 0.307). The temper stays
+# DEFAULT_TEMPER (6 lost 0.305). The replay that checks the model's gaps uses
+# this policy and the first-split cap.
 LEARNED_PRIOR_WIDTH = 2.0
 LEARNED_MIN_SHARE = 0.005
 LEARNED_REPEATS = 5
@@ -790,7 +802,7 @@ def replay_learned(
                     p, budget, None, None, np.random.default_rng([int(seed), k, r]), batch=batch, n_draws=n_draws,
                     min_share=LEARNED_MIN_SHARE, spread=spread,
                     offsets=slope * off if slope else None,
-                    first_cap=first_split_cap(k), cap_lift=bool(slope),
+                    first_cap=first_split_cap(k), cap_lift=bool(slope), commit_on_stop=True,
                 ).sum()
     return {key: v / equal if equal > 0 else np.full(repeats, np.nan) for key, v in out.items()}
 
@@ -870,6 +882,8 @@ def create_experiment(
     source: str | None = None,
     seed: int | None = None,
     budget: int | None = None,
+    ends_at: str | None = None,
+    now: str | None = None,
 ) -> CreatedExperiment:
     """Create experiment ``name`` whose arms are ``drafts``, with priors learned from past tests and the model.
 
@@ -884,7 +898,10 @@ def create_experiment(
     strength :func:`choose_prior_strength` picks, or flat without a model.
 
     ``budget``: total impressions planned; allocation explores more while
-    much of it remains and commits as it runs out. Every new experiment's
+    much of it remains and commits as it runs out. ``ends_at``: the planned
+    end time instead (ISO 8601, read in the workspace's time zone, later than
+    ``now``, default the current time); the pace of the results recorded so
+    far turns it into the impressions still to come (:func:`end_plan`). Every new experiment's
     first split gives no arm more than :func:`bandit.first_split_cap` unless a
     prior validated on past tests justifies more.
     """
@@ -896,6 +913,14 @@ def create_experiment(
         raise ContentlabError(f"prior strength must be a number of at least 0; got {prior_strength!r}.")
     if budget is not None and (isinstance(budget, bool) or not isinstance(budget, (int, np.integer)) or budget < 1):
         raise ContentlabError(f"--budget must be a whole number of impressions, at least 1; got {budget!r}.")
+    end = None
+    if ends_at is not None:
+        if budget is not None:
+            raise ContentlabError(
+                "give --budget N (the impressions the test will get) or --ends-at TIME (when it is planned to end), "
+                "not both."
+            )
+        end = planned_end(ends_at, ws.timezone, now)
     arms = normalise_drafts(drafts, channel=channel, group=group, source=source)
     if ws.conn.execute("SELECT 1 FROM experiments WHERE name=?", (name,)).fetchone():
         raise ContentlabError(
@@ -961,6 +986,8 @@ def create_experiment(
         "prior": prior.to_dict(),
         "first_cap": first_split_cap(len(arms)),
         "budget": None if budget is None else int(budget),
+        "ends_at": end,
+        "commit_on_stop": prior.learned is not None,
         "arm_meta": {
             arm: {"channel": ch, "publish_at": pa}
             for arm, ch, pa in zip(arms["arm"], arms["channel"], arms["publish_at"])
@@ -971,6 +998,16 @@ def create_experiment(
         notes.append(
             "A model-informed prior is a starting guess from correlations in past posts, not a causal effect; "
             "results soon outweigh it."
+        )
+    if prior.learned is not None:
+        notes.append(
+            "Once the stopping rule fires (experiment status: the leader very likely best, or choosing it costs next "
+            "to nothing), every impression goes to the draft it names until you stop the test."
+        )
+    if end is not None:
+        notes.append(
+            f"Planned end: {_local_time(end, ws.timezone)}. Once results come in, their pace gives the impressions "
+            "still to come before then; allocation explores more while many remain and commits as they run out."
         )
     notes.append(TRUTH_CAUTION)
     try:
@@ -1154,7 +1191,8 @@ def next_allocation(
     if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
         raise ContentlabError(f"--impressions must be a whole number of at least 1; got {n!r}.")
     use = _policy(policy or exp["settings"].get("policy", "thompson"))
-    bandit = _bandit(ws, exp, policy=use)
+    plan = end_plan(ws, exp)
+    bandit = _bandit(ws, exp, policy=use, plan=plan)
     counts = bandit.allocate(int(n))
     arms = exp["arms"]
     frame = pd.DataFrame(
@@ -1170,7 +1208,7 @@ def next_allocation(
     if n == 1:
         chosen = next(a for a, c in counts.items() if c == 1)
         notes.append(SINGLE_CAUTION)
-    why = _prior_words(exp["settings"]) + _split_words(bandit, exp["settings"])
+    why = _prior_words(exp["settings"]) + _split_words(bandit, exp["settings"], plan)
     return Allocation(name, use, int(n), frame, chosen, tuple(notes), tuple(why))
 
 
@@ -1191,12 +1229,78 @@ def _prior_words(settings: Mapping) -> list[str]:
     return out
 
 
-def _split_words(bandit: ThompsonBandit, settings: Mapping) -> list[str]:
+def planned_end(value: str, timezone: str, now: str | None = None) -> str:
+    """``--ends-at``: the planned end time as stored UTC text; refused when blank, not ISO 8601 or not after ``now``."""
+    from .timeparse import parse_datetime
+
+    when, _ = parse_datetime(value, timezone, "--ends-at")
+    if when is None:
+        raise ContentlabError("--ends-at: give the time the test is planned to end, e.g. 2026-12-14T18:00.")
+    now_ts = pd.Timestamp(now or now_utc())
+    if when <= now_ts:
+        raise ContentlabError(
+            f"--ends-at {value}: that time ({when:%Y-%m-%d %H:%M} {timezone}) has already passed (now "
+            f"{now_ts.tz_convert(timezone):%Y-%m-%d %H:%M}); give the time the test is planned to end, later than now, "
+            "or leave --ends-at out."
+        )
+    return when.tz_convert("UTC").strftime("%Y-%m-%dT%H:%M:%S+00:00")
+
+
+def _local_time(utc_text: str, timezone: str) -> str:
+    return f"{pd.Timestamp(utc_text).tz_convert(timezone):%Y-%m-%d %H:%M} ({timezone})"
+
+
+def end_plan(ws: Workspace, exp: dict, now: str | None = None) -> dict | None:
+    """The budget a planned end time implies: impressions so far plus their pace times the time left.
+
+    The pace is the impressions recorded after the first round of results
+    (those within ``FIRST_ROUND_MINUTES`` of the first) over the time from it
+    to the latest (with one round only: all of them over the time since the
+    test was created). The time left runs from the
+    latest result to the end (none once the end has passed). Returns None
+    without an end time; ``budget`` is None while the pace is unknown.
+    """
+    end = exp["settings"].get("ends_at")
+    if not end:
+        return None
+    rows = ws.conn.execute(
+        "SELECT at, SUM(impressions) FROM observations WHERE experiment=? AND impressions > 0 GROUP BY at",
+        (exp["name"],),
+    ).fetchall()
+    end_ts = pd.Timestamp(end)
+    now_ts = pd.Timestamp(now or now_utc())
+    spent = float(sum(n for _, n in rows))
+    plan = {"ends_at": end, "when": _local_time(end, ws.timezone), "spent": spent, "pace_per_hour": None,
+            "left": None, "budget": None, "passed": bool(now_ts >= end_ts)}
+    if not rows:
+        return plan
+    times = pd.to_datetime(pd.Series([at for at, _ in rows]), utc=True, format="ISO8601")
+    counts = np.array([float(n) for _, n in rows])
+    # Results within a few minutes of the first are one round (arms recorded one command at a time).
+    first_round = (times <= times.min() + pd.Timedelta(minutes=FIRST_ROUND_MINUTES)).to_numpy()
+    if not first_round.all():
+        start, counted = times.min(), float(counts[~first_round].sum())
+    else:
+        start, counted = pd.Timestamp(exp["created_at"]), spent
+    latest = times.max()
+    elapsed = (latest - start).total_seconds()
+    left = 0.0 if plan["passed"] else max((end_ts - latest).total_seconds(), 0.0)
+    total = float(paced_budget(counted, elapsed, left))
+    if not math.isfinite(total):
+        return plan
+    budget = spent - counted + total
+    plan.update(pace_per_hour=3600.0 * counted / elapsed, left=budget - spent, budget=max(int(round(budget)), 1))
+    return plan
+
+
+def _split_words(bandit: ThompsonBandit, settings: Mapping, plan: Mapping | None = None) -> list[str]:
     """Why the next split is what it is: the cap before results, the temper, the budget, the floors."""
     prob = bandit.prob_best()
     out = []
     budget = []
-    if bandit.budget is not None:
+    if plan is not None:
+        budget.append(_end_words(bandit, plan))
+    elif bandit.budget is not None:
         spent = float(bandit.impressions_.sum())
         budget.append(
             f"Budget: {spent:,.0f} of {int(bandit.budget):,} planned impressions spent ({spent / bandit.budget:.0%}); "
@@ -1223,6 +1327,14 @@ def _split_words(bandit: ThompsonBandit, settings: Mapping) -> list[str]:
                 f"(twice an equal share, at most 60%){lift}, so every draft keeps learning."
             )
         return out + budget
+    committed = bandit.committed_arm()
+    if committed is not None:
+        out.append(
+            f"The stopping rule fires ({committed} is very likely best, or choosing it now costs next to nothing; see "
+            f"experiment status), so every impression goes to {committed}: more traffic to the others would only lose "
+            "clicks. Stop the test and publish it when you are ready (experiment stop)."
+        )
+        return out
     t = bandit.current_temper()
     if bandit.policy == "thompson":
         best = max(prob, key=prob.get)
@@ -1239,6 +1351,28 @@ def _split_words(bandit: ThompsonBandit, settings: Mapping) -> list[str]:
         out.append(f"Every draft still in the running gets at least {100 * float(bandit.min_share):g}% (a draft is in "
                    f"the running while its probability of being best is at least that share).")
     return out
+
+
+def _end_words(bandit: ThompsonBandit, plan: Mapping) -> str:
+    """The planned end time in plain words: impressions left before it and what that does to the split."""
+    if plan["budget"] is None:
+        return (
+            f"Planned end {plan['when']}: the pace of impressions is not known until results from two different "
+            "times are in (or one after the test was created), so until then the split keeps its usual balance."
+        )
+    rise = (f"the power on each draft's probability of being best rises from {float(bandit.temper_start):g} to "
+            f"{float(bandit.temper):g} as the expected impressions are spent (now {bandit.current_temper():.2g})"
+            if bandit.policy == "thompson" else "top-two sampling does not change with it")
+    if plan["passed"]:
+        return (f"The planned end {plan['when']} has passed, so no impressions are expected after the latest results "
+                f"and the split commits to the likely winner ({rise}).")
+    left = plan["left"]
+    return (
+        f"About {left:,.0f} impressions left before {plan['when']} (at the pace of your results so far, about "
+        f"{plan['pace_per_hour']:,.0f} an hour; {plan['spent']:,.0f} recorded), so about "
+        f"{plan['spent'] / plan['budget']:.0%} of the expected {plan['budget']:,} is spent: {rise}"
+        + (", exploring while much remains and committing as it runs out." if bandit.policy == "thompson" else ".")
+    )
 
 
 # --------------------------------------------------------------------------
@@ -1577,7 +1711,8 @@ def experiment_status(
     settings = exp["settings"]
     d = 1.0 if discount is None else discount
     pt = settings.get("prob_threshold", PROB_THRESHOLD) if prob_threshold is None else prob_threshold
-    bandit = _bandit(ws, exp, discount=d)
+    plan = end_plan(ws, exp)
+    bandit = _bandit(ws, exp, discount=d, plan=plan)
     arms = exp["arms"]
     names = arms["arm"].tolist()
     totals = _totals(ws, name, names)
@@ -1656,7 +1791,7 @@ def experiment_status(
         warnings=tuple(warnings),
         prior=settings.get("prior", {}),
         settings=settings,
-        why=tuple(_prior_words(settings) + _split_words(bandit, settings)),
+        why=tuple(_prior_words(settings) + _split_words(bandit, settings, plan)),
     )
 
 
@@ -1744,8 +1879,12 @@ def _prior_ab(exp: dict) -> tuple[np.ndarray, np.ndarray]:
     return prior_params(means, strength, len(arms))
 
 
-def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: float = 1.0) -> ThompsonBandit:
-    """The experiment's bandit with every recorded result, discounted by round (distinct event time) if asked."""
+def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: float = 1.0,
+            plan: Mapping | None = None) -> ThompsonBandit:
+    """The experiment's bandit with every recorded result, discounted by round (distinct event time) if asked.
+
+    With a planned end time the budget is the one its pace implies (``plan``, from :func:`end_plan` when not given).
+    """
     arms = exp["arms"]
     names = arms["arm"].tolist()
     settings = exp["settings"]
@@ -1795,13 +1934,17 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
         "cap_lift": (settings.get("prior") or {}).get("source") in ("model", "past tests + model"),
         "budget": settings.get("budget"),
     }
-    if settings.get("budget") is not None:
+    if settings.get("ends_at"):
+        plan = end_plan(ws, exp) if plan is None else plan
+        params["budget"] = plan["budget"]
+    if params["budget"] is not None:
         params.update(temper=BUDGET_TEMPER_END, temper_start=DEFAULT_TEMPER_START)
     learned = (settings.get("prior") or {}).get("learned")
     if learned:
         off = learned.get("offsets")
         params.update(
             prior_means=None, prior_strength=0.0, min_share=LEARNED_MIN_SHARE, prior_offsets=off,
+            commit_on_stop=bool(settings.get("commit_on_stop", False)),
             logit_sd=learned_prior_sd(learned),
             level=float(learned["level"]), level_weight=float(learned["level_weight"]),
         )

@@ -540,27 +540,107 @@ def test_budget_explores_early_and_commits_late():
     assert early.shares()["a"] < none.shares()["a"] < late.shares()["a"]
 
 
-def test_learned_prior_bandit_matches_the_replay_core():
-    # The class and the vectorised replay give identical allocations with the learned prior, offsets and cap.
-    from contentlab.bandit import first_split_cap, replay_regret_rows
+def _class_and_replay_traces(p, budget, **kw):
+    """Allocations of the vectorised replay and of ThompsonBandit on one simulated 3-arm test, same random stream."""
+    from contentlab.bandit import replay_regret_rows
 
     spread = {"logit_sd": 0.2, "level": 0.015, "level_weight": 200.0}
-    p = np.array([[0.012, 0.015, 0.018]])
-    off = np.array([[0.1, -0.05, -0.05]])
+    p = np.array([p])
+    off = kw.pop("offsets", None)
     trace: list = []
-    replay_regret_rows(p, np.array([650]), None, None, np.random.default_rng(7), batch=200, n_draws=500,
-                       min_share=0.0, spread=spread, offsets=off, first_cap=first_split_cap(3), cap_lift=True,
-                       trace=trace)
+    replay_regret_rows(p, np.array([budget]), None, None, np.random.default_rng(7), batch=200, n_draws=500,
+                       spread=spread, offsets=None if off is None else np.array([off]), trace=trace, **kw)
     rng = np.random.default_rng(7)
-    bandit = ThompsonBandit(arms=list("abc"), min_share=0.0, n_draws=500, random_state=rng, logit_sd=0.2,
-                            level=0.015, prior_offsets=off[0].tolist(), first_cap=first_split_cap(3), cap_lift=True)
-    remaining = 650
-    for step in trace:
+    bandit = ThompsonBandit(arms=list("abc"), n_draws=500, random_state=rng, logit_sd=0.2, level=0.015,
+                            prior_offsets=off, **kw)
+    remaining, got_trace = budget, []
+    for _ in trace:
         alloc = bandit.allocate(min(200, remaining))
-        assert list(alloc.values()) == step
+        step = list(alloc.values())
+        got_trace.append(step)
         got = rng.binomial(step, p[0])
         bandit.update_many({a: (int(c), int(x)) for a, c, x in zip("abc", step, got)})
         remaining -= sum(step)
+    return trace, got_trace
+
+
+def test_learned_prior_bandit_matches_the_replay_core():
+    # The class and the vectorised replay give identical allocations with the learned prior, offsets and cap.
+    from contentlab.bandit import first_split_cap
+
+    trace, got = _class_and_replay_traces([0.012, 0.015, 0.018], 650, min_share=0.0, offsets=[0.1, -0.05, -0.05],
+                                          first_cap=first_split_cap(3), cap_lift=True)
+    assert got == trace
+
+
+@pytest.mark.parametrize("p", [[0.012, 0.015, 0.018], [0.01, 0.012, 0.06]])
+def test_committing_when_the_rule_fires_matches_the_replay_core(p):
+    # With commit_on_stop the class and the replay still allocate identically; where one arm is far ahead
+    # the rule fires and every later impression goes to the arm it names.
+    from contentlab.bandit import first_split_cap
+
+    trace, got = _class_and_replay_traces(p, 2450, min_share=0.005, first_cap=first_split_cap(3), commit_on_stop=True)
+    assert got == trace
+    # Arms close together: never decided, every round keeps every arm; one far ahead: the last rounds are all its.
+    whole = [max(step) == sum(step) for step in trace]
+    assert whole[-1] == (p[2] == 0.06) and not whole[0]
+
+
+def test_committing_does_not_change_the_winner_named_or_when():
+    # The named arm and the impressions until the rule first fires are fixed before committing can act, so
+    # the right-winner figures cannot change (each test replayed alone, so no other test's draws interleave).
+    from contentlab.bandit import first_split_cap, replay_regret_rows
+
+    rng = np.random.default_rng(5)
+    p = special.expit(special.logit(0.02) + rng.normal(0, 0.4, size=(12, 3)))
+    spread = {"logit_sd": 0.4, "level": 0.02, "level_weight": 200.0}
+    fired = 0
+    for row in range(len(p)):
+        got = []
+        for commit in (False, True):
+            stops: dict = {}
+            replay_regret_rows(p[row:row + 1], np.array([20_000]), None, None, np.random.default_rng(row),
+                               batch=200, n_draws=200, min_share=0.005, spread=spread, first_cap=first_split_cap(3),
+                               stops=stops, commit_on_stop=commit)
+            got.append((int(stops["named"][0]), int(stops["impressions"][0]), bool(stops["fired"][0])))
+        assert got[0] == got[1]
+        fired += got[0][2]
+    assert fired >= 3  # the check covers tests where the rule fires (and so committing acts)
+
+
+def test_commit_on_stop_follows_the_decision():
+    # The arm committed to is the one decision() would stop on, and only while it says stop.
+    kw = dict(arms=["a", "b"], min_share=0.01, random_state=4, commit_on_stop=True)
+    decided = ThompsonBandit(**kw).update_many({"a": (5000, 50), "b": (5000, 150)})
+    assert decided.decision().stop and decided.committed_arm() == "b" and decided.shares() == {"a": 0.0, "b": 1.0}
+    open_ = ThompsonBandit(**kw).update_many({"a": (500, 10), "b": (500, 12)})
+    assert not open_.decision().stop and open_.committed_arm() is None and open_.shares()["a"] > 0.01
+    assert ThompsonBandit(**{**kw, "commit_on_stop": False}).update_many(
+        {"a": (5000, 50), "b": (5000, 150)}).committed_arm() is None
+
+
+def test_paced_budget_is_spent_plus_pace_times_time_left():
+    from contentlab.bandit import paced_budget
+
+    assert paced_budget(3000, 10, 20) == pytest.approx(3000 + 300 * 20)
+    assert paced_budget(3000, 10, -5) == pytest.approx(3000)  # the end has passed: nothing more to come
+    assert np.isnan(paced_budget(0, 0, 20)) and np.isnan(paced_budget(100, 0, 20))  # pace unknown
+
+
+def test_replay_with_varying_traffic_spends_each_round_and_the_budget():
+    from contentlab.bandit import replay_regret_rows
+
+    rng = np.random.default_rng(2)
+    p = np.array([[0.02, 0.025], [0.01, 0.03]])
+    sizes = np.array([[300, 0, 900, 800], [50, 450, 0, 0]])
+    trace: list = []
+    for paced in (False, True):
+        regret = replay_regret_rows(p, sizes.sum(axis=1), None, None, rng, batch=200, n_draws=200,
+                                    spread={"logit_sd": 0.3, "level": 0.02, "level_weight": 200.0},
+                                    temper=6.0, temper_start=2.0, round_sizes=sizes, paced=paced, trace=trace)
+        assert np.all(regret >= 0)
+    # The first test's rounds, as given (the trace holds the first row of each round).
+    assert [sum(x) for x in trace[:4]] == [300, 0, 900, 800]
 
 
 def test_stop_rule_figures_in_the_replay():

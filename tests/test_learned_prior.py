@@ -178,3 +178,100 @@ def test_new_experiment_uses_the_widened_prior_and_the_floor_is_said(learned_ws,
     record_results(learned_ws, "hours", read_results(path), source_file=str(path))
     why = " ".join(next_allocation(learned_ws, "hours", 1000).why)
     assert f"at least {100 * LEARNED_MIN_SHARE:g}%" in why
+
+
+def _at(hours_from_now: float) -> str:
+    return (pd.Timestamp.now(tz="UTC") + pd.Timedelta(hours=hours_from_now)).strftime("%Y-%m-%dT%H:%M:%S+00:00")
+
+
+def test_planned_end_time_gives_the_impressions_left_from_the_pace_so_far(learned_ws, tmp_path):
+    from contentlab.bandit import budget_temper
+    from contentlab.experiments import end_plan, experiment_bandit
+
+    create_experiment(learned_ws, "hours", DRAFTS, seed=3, ends_at=_at(96))
+    alloc = next_allocation(learned_ws, "hours", 1000)
+    assert any("pace of impressions is not known" in line for line in alloc.why)
+    assert experiment_bandit(learned_ws, "hours").budget is None  # no pace yet: today's behaviour
+    # 2,000 impressions a day ago and 2,000 now: a pace of 2,000 a day, and 4 days left after the latest results.
+    first, latest = _at(-24), _at(0)
+    rows = [f"{arm},500,{c},{t}" for t in (first, latest) for arm, c in zip("ABCD", (15, 12, 18, 14))]
+    path = tmp_path / "r.csv"
+    path.write_text("arm,impressions,clicks,at\n" + "\n".join(rows) + "\n", encoding="utf-8")
+    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    plan = end_plan(learned_ws, {"name": "hours", "created_at": _at(-48),
+                                 "settings": {"ends_at": _at(96)}}, now=latest)
+    assert plan["pace_per_hour"] == pytest.approx(2000 / 24, rel=1e-3)
+    assert plan["left"] == pytest.approx(8000, rel=2e-3) and plan["budget"] == pytest.approx(12_000, rel=2e-3)
+    bandit = experiment_bandit(learned_ws, "hours")
+    assert bandit.budget == pytest.approx(12_000, rel=2e-3)
+    assert bandit.current_temper() == pytest.approx(budget_temper(4000, 12_000, 6.0, 2.0), rel=1e-2)
+    why = " ".join(next_allocation(learned_ws, "hours", 1000).why)
+    assert "impressions left before" in why and "about 83 an hour" in why and "exploring while much remains" in why
+    assert any("impressions left before" in line for line in experiment_status(learned_ws, "hours").why)
+
+
+def test_end_time_after_it_has_passed_commits(learned_ws):
+    from contentlab.experiments import end_plan
+
+    exp = {"name": "none", "created_at": _at(-48), "settings": {"ends_at": _at(-1)}}
+    assert end_plan(learned_ws, exp)["passed"] and end_plan(learned_ws, exp)["budget"] is None  # no results
+    assert end_plan(learned_ws, {**exp, "settings": {}}) is None
+
+
+@pytest.mark.parametrize("kwargs, words", [
+    ({"ends_at": "2020-01-01T10:00"}, "has already passed"),
+    ({"ends_at": "next friday"}, "--ends-at"),
+    ({"ends_at": "2030-01-01T10:00", "budget": 5000}, "not both"),
+])
+def test_bad_end_times_are_refused_and_nothing_is_created(learned_ws, kwargs, words):
+    from contentlab.errors import ContentlabError
+
+    with pytest.raises(ContentlabError, match=words):
+        create_experiment(learned_ws, "hours", DRAFTS, seed=3, **kwargs)
+    assert learned_ws.conn.execute("SELECT COUNT(*) FROM experiments").fetchone()[0] == 0
+
+
+def test_cli_new_with_an_end_time_says_so(capsys, tmp_path):
+    from contentlab.cli import main
+
+    root = tmp_path / "ws"
+    assert main(["import", str(past_tests_csv(tmp_path / "posts.csv")), "--workspace", str(root)]) == 0
+    end = (pd.Timestamp.now(tz="UTC") + pd.Timedelta(days=3)).strftime("%Y-%m-%dT%H:%M+00:00")
+    capsys.readouterr()
+    assert main(["experiment", "new", "hours", *DRAFTS, "--ends-at", end, "--seed", "2", "--workspace", str(root)]) == 0
+    out = " ".join(capsys.readouterr().out.split())
+    assert "Planned end: " in out and "(UTC)" in out
+    assert main(["experiment", "next", "hours", "--workspace", str(root)]) == 0
+    assert "the pace of impressions is not known" in " ".join(capsys.readouterr().out.split())
+
+
+def test_next_commits_to_the_named_draft_once_the_stopping_rule_fires(learned_ws, tmp_path):
+    create_experiment(learned_ws, "hours", DRAFTS, seed=3)
+    path = tmp_path / "r.csv"
+    path.write_text("arm,impressions,clicks\nA,20000,300\nB,20000,600\nC,20000,310\nD,20000,290\n", encoding="utf-8")
+    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    status = experiment_status(learned_ws, "hours")
+    assert status.decision.stop and status.decision.leader == "B"
+    alloc = next_allocation(learned_ws, "hours", 1000)
+    assert alloc.arms.set_index("arm")["impressions"].to_dict() == {"A": 0, "B": 1000, "C": 0, "D": 0}
+    assert any("The stopping rule fires (B is very likely best" in line for line in alloc.why)
+
+
+def test_results_recorded_a_minute_apart_count_as_one_round_for_the_pace(learned_ws, tmp_path):
+    from contentlab.experiments import end_plan
+
+    create_experiment(learned_ws, "hours", DRAFTS, seed=3, ends_at=_at(48))
+    t0 = pd.Timestamp.now(tz="UTC") - pd.Timedelta(hours=18)
+    times = [t0, t0 + pd.Timedelta(minutes=1), t0 + pd.Timedelta(hours=18)]
+    path = tmp_path / "r.csv"
+    path.write_text("arm,impressions,clicks,at\n" + "".join(
+        f"{arm},400,10,{t:%Y-%m-%dT%H:%M:%S+00:00}\n" for arm, t in zip("ABC", times)), encoding="utf-8")
+    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    exp = {"name": "hours", "created_at": _at(-48), "settings": {"ends_at": _at(48)}}
+    # A and B (a minute apart) are the first round; C's 400 came in the 18 hours after it.
+    assert end_plan(learned_ws, exp)["pace_per_hour"] == pytest.approx(400 / 18, rel=1e-3)
+
+
+def test_new_says_the_split_commits_once_the_rule_fires(learned_ws):
+    created = create_experiment(learned_ws, "hours", DRAFTS, seed=3)
+    assert any("every impression goes to the draft it names" in note for note in created.notes)

@@ -59,7 +59,8 @@ def register(subparsers) -> None:
             "strength checked the same way; flat without a model), and the output says so. Before any results no "
             "draft gets more than twice an equal share of traffic (at most 60%) unless the validated prior "
             "justifies it. --budget N tells the allocation how many impressions the test will get, so it explores "
-            "more while much remains and commits as it runs out.",
+            "more while much remains and commits as it runs out; --ends-at TIME (when the test is planned to end) "
+            "does the same with the impressions still to come estimated from the pace of the results so far.",
         ),
         example='contentlab experiment new laser-cutter "Inside the makerspace laser cutter" '
         '"5 things to know about the makerspace laser cutter" --channel newsletter --budget 20000',
@@ -77,6 +78,10 @@ def register(subparsers) -> None:
     p.add_argument("--budget", type=int, metavar="N",
                    help="impressions the whole test will get: explore more while much remains, commit as it runs "
                         "out (default: no budget, a fixed balance)")
+    p.add_argument("--ends-at", metavar="TIME",
+                   help="when the test is planned to end (ISO 8601, e.g. 2026-12-14T18:00, in the workspace's time "
+                        "zone unless it has an offset): the pace of results so far gives the impressions still to "
+                        "come, used like --budget (not with --budget)")
     add_format_option(p)
     add_workspace_option(p)
     p.set_defaults(handler=cmd_new)
@@ -89,8 +94,10 @@ def register(subparsers) -> None:
             "Propose how to split the next N impressions between the arms, from their posteriors. Each arm's "
             "share follows its probability of being best (estimated from 10,000 posterior draws), with a "
             "minimum share for every arm still in the running so none is starved early. --single names the one "
-            "draft to post next, for channels without traffic splitting. Asking twice without new results "
-            "gives the same answer.",
+            "draft to post next, for channels without traffic splitting. With a prior learned from past tests, "
+            "while the stopping rule of 'experiment status' fires every impression goes to the draft it names. With "
+            "--budget or --ends-at it says how much is left and how that shapes the split. Asking twice without new "
+            "results gives the same answer.",
             POLICY_TEXT,
         ),
         example="contentlab experiment next makerspace --impressions 5000",
@@ -205,7 +212,7 @@ def cmd_new(args: argparse.Namespace) -> int:
         created = create_experiment(
             ws, args.name, drafts, flat_prior=args.flat_prior, channel=args.channel, group=args.group,
             prior_strength=args.prior_strength, policy=args.policy, source=args.drafts, seed=args.seed,
-            budget=args.budget,
+            budget=args.budget, ends_at=args.ends_at,
         )
     frame = created.arms
     if args.format == "json":
