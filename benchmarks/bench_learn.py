@@ -77,7 +77,9 @@ def main(argv: list[str] | None = None) -> int:
           f"{len(model.wording_names_)} wording n-grams, {model.n_experiments_} experiment effects; "
           f"alpha {model.alpha_:.3g} (adaptive {model.adaptive_}) from {model.cv_results_['alpha'].nunique()} candidates x {model.n_folds} folds")
     print(f"  headline meaning: {model.meaning_note_}")
-    print(f"peak resident memory: {peak_rss_gb():.2f} GB (before learn: {rss_before:.2f} GB)")
+    children = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss / 1024 ** 2
+    print(f"peak resident memory: {peak_rss_gb():.2f} GB (before learn: {rss_before:.2f} GB); largest worker "
+          f"process (folds, bootstrap, sentence encoder): {children:.2f} GB")
     print(f"load average now: {os.getloadavg()[0]:.1f} (2 cores; above 2 means other work shares them)")
     print("targets (issue 3): learn < 30 s, < 4 GB on 2 cores; the machine is shared, so times are noisy")
     return 0
