@@ -180,7 +180,7 @@ def run_demo(workspace_dir: str | Path, out_dir: str | Path | None = None, *, bo
     say(f"  2. What to do next week: {recs[0]['text'] if recs else 'see the report'}")
     say(f"  3. The test: the bandit leads with \"{leader_headline}\" at P(best) {status.decision.prob_best:.0%};"
         f" the demo's ground truth says the best draft is \"{best_true}\"."
-        f" Estimated clicks gained against an equal split so far: {status.clicks_gained:+.0f}.")
+        f" Estimated clicks gained against an equal split so far: {int(round(status.clicks_gained)):+d}.")
     say()
     say(f"Demo finished in {elapsed:.0f} s. Try: contentlab score \"Your headline\" --channel newsletter --workspace {path}")
     say(f"Open it in the browser: contentlab serve --workspace {path}   (then http://127.0.0.1:8765/)")

@@ -1698,7 +1698,7 @@ def experiments_section(ws, ctx: _Context, missing: list[str]) -> dict:
         out["items"].append({
             "name": st.name, "status": st.status, "channel": st.channel or "", "colour": colour,
             "sentence": sentence, "decision": d.reason,
-            "gained": (f"{gain:+,.0f} clicks against an equal split so far" if st.impressions else "no results yet"),
+            "gained": (f"{int(round(gain)):+,d} clicks against an equal split so far" if st.impressions else "no results yet"),
             "impressions": count(st.impressions), "clicks": count(st.clicks), "chart": chart_name,
             "leader_headline": lead["headline"] if lead is not None else "",
             "leader": d.leader, "stop": bool(d.stop), "prob_best": d.prob_best, "gain": gain,
@@ -1731,7 +1731,7 @@ def experiments_section(ws, ctx: _Context, missing: list[str]) -> dict:
     ready = [i for i in running if i["stop"]]
     total_gain = sum(i["gain"] for i in out["items"])
     out["idea"] = (f"{len(out['items'])} experiment(s) ({len(running)} running, {len(ready)} ready to stop); "
-                   f"together they earned {total_gain:+,.0f} clicks against an equal split so far.")
+                   f"together they earned {int(round(total_gain)):+,d} clicks against an equal split so far.")
     out["meaning"] = ("Clicks gained is what the adaptive split earned over showing every draft equally, at the "
                       "posterior rates: the price of learning, recovered.")
     if older:

@@ -311,7 +311,7 @@ def cmd_status(args: argparse.Namespace) -> int:
     gained = status.clicks_gained
     if status.impressions:
         print(_wrap(
-            f"Clicks gained against an equal split so far: about {gained:+,.0f} (impressions times each arm's "
+            f"Clicks gained against an equal split so far: about {int(round(gained)):+,d} (impressions times each arm's "
             "posterior mean, against the same impressions at the average arm's)."
         ))
     for w in status.warnings:
