@@ -888,8 +888,9 @@ class EngagementModel(_Params):
         self.experiments_ = list(gidx)
         return X0, X, glm, gidx
 
-    def _meaning_rows(self, data: "_FitData") -> np.ndarray:
-        """The posts the meaning column learns from, in time order; every other post counts as 0.
+    def _meaning_rows(self, data: "_FitData") -> tuple[np.ndarray, np.ndarray]:
+        """The posts the meaning column learns from, in time order (every other post counts as 0), and
+        each one's (test, image) group code.
 
         Arms of a test (and image) that shows at least two different headlines: an arm alone, or
         arms that share one headline, teach a within-test ridge nothing. Above ``MEANING_MAX_ARMS``
@@ -911,8 +912,9 @@ class EngagementModel(_Params):
             share = MEANING_MAX_ARMS / len(rows)
             i = np.arange(len(order))
             keep = order[np.floor((i + 1) * share) > np.floor(i * share)]
-            rows = rows[np.isin(groups, keep)]
-        return rows
+            kept = np.isin(groups, keep)
+            rows, groups = rows[kept], groups[kept]
+        return rows, groups
 
     def _meaning_texts(self, data: "_FitData", rows: np.ndarray) -> list[str]:
         """The headlines of ``rows`` (from :meth:`_meaning_rows`), cleaned as the featurizer cleans them."""
@@ -940,7 +942,7 @@ class EngagementModel(_Params):
 
         executor = ProcessPoolExecutor(max_workers=1, mp_context=mp.get_context("fork"))
         try:
-            return executor.submit(embed_headlines, self._meaning_texts(data, self._meaning_rows(data)), 1)
+            return executor.submit(embed_headlines, self._meaning_texts(data, self._meaning_rows(data)[0]), 1)
         finally:
             executor.shutdown(wait=False)  # the worker exits once the embeddings are sent
 
@@ -964,12 +966,12 @@ class EngagementModel(_Params):
         if note:
             self.meaning_note_ = note
             return X0, X, oof
-        from .meaning import MODEL_NAME, embed_headlines, group_codes, within_test_ridge
+        from .meaning import MODEL_NAME, embed_headlines, within_test_ridge
 
         frame, blocks = data.frame, data.blocks
         # Only arms of tests are encoded (see _meaning_rows): the ridge learns from them alone, and any
         # other post counts as of typical meaning (column 0), so the cost follows the tests, not the history.
-        t = self._meaning_rows(data)
+        t, groups = self._meaning_rows(data)
         E = None
         if encoding is not None:
             from concurrent.futures.process import BrokenProcessPool
@@ -981,8 +983,6 @@ class EngagementModel(_Params):
         if E is None:
             E = embed_headlines(self._meaning_texts(data, t), threads=self.n_jobs)
         E = np.asarray(E, dtype=float)
-        image = frame["image_id"].to_numpy(dtype=object) if "image_id" in frame else np.full(len(frame), None)
-        groups = group_codes(data.experiment[t], image[t])
         k, n, bt = data.k[t], data.n[t], blocks[t]
         held = np.flatnonzero(blocks >= 1)
         scores = np.zeros((len(MEANING_RIDGES), len(frame)))

@@ -192,7 +192,8 @@ def test_encoding_beside_the_folds_gives_the_same_model(meaning_data):
     data = model._design(model._check_posts(history, "clicks"), "clicks", dense_names)
     future = model._start_encoding(data)
     assert future is not None
-    np.testing.assert_allclose(future.result(), meaning.embed_headlines(model._meaning_texts(data, model._meaning_rows(data))), atol=1e-6)
+    rows, _ = model._meaning_rows(data)
+    np.testing.assert_allclose(future.result(), meaning.embed_headlines(model._meaning_texts(data, rows)), atol=1e-6)
     beside = model.fit(history)
     assert beside.meaning_ridge_ == inline.meaning_ridge_ and beside.meaning_weight_ == inline.meaning_weight_
     np.testing.assert_allclose(beside.meaning_beta_, inline.meaning_beta_, atol=1e-8)
@@ -213,10 +214,10 @@ def test_meaning_rows_keep_varied_tests_spread_over_time(monkeypatch):
     first = data.frame.index[data.in_exp][0]
     same = data.frame["experiment_id"] == data.frame.loc[first, "experiment_id"]
     data.frame.loc[same, "headline"] = "One headline for every arm"
-    rows = model._meaning_rows(data)
+    rows, _ = model._meaning_rows(data)
     assert not same.to_numpy()[rows].any() and len(rows) == int(data.in_exp.sum() - same.sum())
     monkeypatch.setattr(model_module, "MEANING_MAX_ARMS", 40)
-    capped = model._meaning_rows(data)
+    capped, _ = model._meaning_rows(data)
     assert 36 <= len(capped) <= 44 and set(capped) <= set(rows)  # about the bound (two-arm tests)
     tests = data.frame["experiment_id"].to_numpy()
     for t in set(tests[capped]):  # whole tests
