@@ -76,8 +76,13 @@ def _quote(arg: str) -> str:
     return f'"{arg}"' if (" " in arg or not arg) else arg
 
 
-def simulate_experiment(ws, name: str, drafts, channel: str, hour: float, *, days: int = 7,
-                        batches_per_day: int = 2, impressions_per_batch: int = 900, seed: int = 7):
+DEMO_TEST_DAYS, DEMO_BATCHES_PER_DAY, DEMO_BATCH_IMPRESSIONS = 7, 2, 900
+DEMO_TEST_IMPRESSIONS = DEMO_TEST_DAYS * DEMO_BATCHES_PER_DAY * DEMO_BATCH_IMPRESSIONS
+
+
+def simulate_experiment(ws, name: str, drafts, channel: str, hour: float, *, days: int = DEMO_TEST_DAYS,
+                        batches_per_day: int = DEMO_BATCHES_PER_DAY,
+                        impressions_per_batch: int = DEMO_BATCH_IMPRESSIONS, seed: int = 7):
     """A simulated week of a live test: allocate, let the invented audience click, record; repeat.
 
     The audience behaves as the demo's ground truth says, so the demo shows the
@@ -153,7 +158,8 @@ def run_demo(workspace_dir: str | Path, out_dir: str | Path | None = None, *, bo
     hour = pd.Timestamp(chosen["publish_at"].iloc[0]).hour
     _step(5, f"A simulated week of an A/B test of the four '{group}' drafts on {channel}")
     with Workspace.open(path, create=False) as ws:
-        created = create_experiment(ws, group, chosen, channel=channel, seed=11)
+        # The demo plans the test for the week's traffic it simulates (twice a day, 900 impressions each).
+        created = create_experiment(ws, group, chosen, channel=channel, seed=11, budget=DEMO_TEST_IMPRESSIONS)
         say(f"Experiment {created.name}: {len(created.arms)} arms, prior: {created.prior.source}.")
         for note in created.notes:
             say(f"  note: {note}")

@@ -582,29 +582,28 @@ def choose_prior_strength(
 # Chosen on an inner time split of the archive's earlier 70% only
 # (benchmarks/replay_archive.py --tune: spread learned on the earlier half of
 # that part, replayed on its later half, where rates had drifted from 2.29% to
-# 1.82% as they drift again later; 6 seeds, 2026-12-02). The rule, fixed
-# before looking: the lowest clicks lost among settings whose right-winner
-# share is at least the former default's (0.956 there; the former default
-# lost 0.313 of the equal split's clicks).
-# LEARNED_PRIOR_WIDTH: the prior's spread is twice the fitted one (width 1.5:
-# 0.306 without and 0.301 with committing on stop, right winner 0.963 and
-# 0.955; 2: 0.304 and 0.303, 0.960 and 0.957; 3: 0.304 and 0.306). The
-# fitted spread describes the typical test, whose arms differ little; a
-# normal prior that tight holds back the few arms that truly differ a lot.
-# The widths differ by less than their seed-to-seed noise (sd 0.005-0.014).
-# A scale mixture of two spreads fitted by empirical Bayes (71% of arms at
-# 0.10, 29% at 0.37 log-odds; far likelier than one spread) lost no fewer
-# clicks in a prototype replay (0.304 at 1.5 times both spreads against 0.309
-# for one spread at twice, 8 seeds, difference -0.004 +- 0.006), so the
-# library keeps the one spread.
-# Committing on stop (ThompsonBandit.commit_on_stop, learned-prior experiments
-# only): -0.0013 +- 0.0044 at width 2 there, -0.0066 +- 0.0027 in the
-# prototype's 8 seeds; it is what following the stopping advice does.
-# LEARNED_MIN_SHARE: a floor of 0.5% (an earlier --tune: no floor 0.291 and
-# right winner 0.949, below the former default's; 1%: 0.307). The temper stays
-# DEFAULT_TEMPER (6 lost 0.305). The replay that checks the model's gaps uses
-# this policy and the first-split cap.
-LEARNED_PRIOR_WIDTH = 2.0
+# 1.82% as they drift again later; 2026-12-02). The rule, fixed before
+# looking: the lowest clicks lost among settings whose right-winner share is
+# at least the former default's (0.956 there; the former default lost 0.313
+# of the equal split's clicks).
+#
+# ALLOCATION "lookahead" (experiments created since): plain Thompson sampling
+# (temper 1, no floor) among the drafts still worth learning about with the
+# impressions left (bandit.worth_learning), the prior at the fitted spread
+# (LEARNED_PRIOR_WIDTH 1). Prototype replays there, 4-8 seeds: 0.285-0.291
+# with each test's budget known, 0.292-0.298 with HORIZON_FACTOR times the
+# typical past test instead (1.5: 0.293, 3: 0.296); width 1.5: 0.279-0.293,
+# 0.75: 0.285; temper 2 among the kept drafts: 0.286; committing on stop on
+# top: 0.282; the index's value halved or doubled: 0.294, 0.296; the
+# knowledge-gradient index alone (all traffic to the highest index): 0.291.
+# Right winner 0.961-0.969. The policy before it (twice the spread, temper 4,
+# floor 0.5%, committing on stop; kept for experiments created with it) lost
+# 0.304 there.
+LEARNED_PRIOR_WIDTH = 1.0
+ALLOCATION = "lookahead"
+HORIZON_FACTOR = 2.0
+# The policy before "lookahead" (still used by experiments created with it).
+PREVIOUS_PRIOR_WIDTH = 2.0
 LEARNED_MIN_SHARE = 0.005
 LEARNED_REPEATS = 5
 
@@ -628,6 +627,7 @@ class LearnedPrior:
     model_reason: str = ""
     history_key: str = ""  # which history and model it was learned from (to reuse it)
     prior_width: float = 1.0  # the allocation prior's spread over the fitted one (LEARNED_PRIOR_WIDTH)
+    typical_impressions: float = 0.0  # median impressions of one past test (its drafts together)
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -706,7 +706,8 @@ def learn_prior_from_tests(
     k = h["clicks"].to_numpy(dtype=np.int64)
     spread = fit_arm_spread(h["experiment_id"], n, k)
     base = dict(logit_sd=spread.logit_sd, level=spread.level, level_weight=DEFAULT_LEVEL_WEIGHT,
-                n_tests=spread.n_tests, n_arms=spread.n_arms, prior_width=LEARNED_PRIOR_WIDTH)
+                n_tests=spread.n_tests, n_arms=spread.n_arms, prior_width=LEARNED_PRIOR_WIDTH,
+                typical_impressions=typical_test_impressions(h))
     if "logit" not in h.columns:
         return LearnedPrior(**base, model_reason="no model, so drafts start level with each other")
     logit = pd.to_numeric(h["logit"], errors="coerce")
@@ -747,7 +748,8 @@ def learn_prior_from_tests(
     width = LEARNED_PRIOR_WIDTH
     ratios = replay_learned(last, {"without model": (width * early_plain.logit_sd, 0.0),
                                    "with model": (width * early_model.logit_sd, early_model.slope)},
-                            level=early_plain.level, repeats=repeats, rounds=rounds, n_draws=n_draws, seed=seed)
+                            level=early_plain.level, horizon=HORIZON_FACTOR * typical_test_impressions(e),
+                            repeats=repeats, rounds=rounds, n_draws=n_draws, seed=seed)
     gains = ratios["without model"] - ratios["with model"]
     se = float(gains.std(ddof=1) / math.sqrt(len(gains))) if len(gains) > 1 else float("inf")
     kept = bool(gains.mean() > 2 * se)
@@ -766,11 +768,18 @@ def learn_prior_from_tests(
                         n_replayed=n_late, model_reason=words)
 
 
+def typical_test_impressions(tests: pd.DataFrame) -> float:
+    """Median impressions of one past test (its drafts together): what a new test without a budget is expected to get."""
+    totals = tests.groupby("experiment_id")["impressions"].sum()
+    return float(totals.median()) if len(totals) else 0.0
+
+
 def replay_learned(
     tests: pd.DataFrame,
     variants: Mapping[str, tuple[float, float]],
     *,
     level: float,
+    horizon: float | None = None,
     repeats: int = LEARNED_REPEATS,
     rounds: int = REPLAY_ROUNDS,
     n_draws: int = REPLAY_DRAWS,
@@ -779,8 +788,10 @@ def replay_learned(
     """Clicks lost (share of an equal split's) per run by the new default policy under each ``(logit_sd, slope)``.
 
     ``tests`` has ``experiment_id, impressions, clicks`` and ``offset`` (the
-    model's predicted gap per arm). The runs of every variant share seeds, so
-    run ``i`` of each saw the same random streams (paired).
+    model's predicted gap per arm). ``horizon``: the impressions a test is
+    expected to get (:data:`HORIZON_FACTOR` times the typical past test's, as
+    for a new experiment without a budget). The runs of every variant share
+    seeds, so run ``i`` of each saw the same random streams (paired).
     """
     tests = tests.assign(rate=(tests["clicks"] / tests["impressions"]).to_numpy(dtype=float))
     sizes = tests.groupby("experiment_id", sort=False)["rate"].transform("size")
@@ -800,9 +811,9 @@ def replay_learned(
             for r in range(repeats):
                 out[key][r] += replay_regret_rows(
                     p, budget, None, None, np.random.default_rng([int(seed), k, r]), batch=batch, n_draws=n_draws,
-                    min_share=LEARNED_MIN_SHARE, spread=spread,
-                    offsets=slope * off if slope else None,
-                    first_cap=first_split_cap(k), cap_lift=bool(slope), commit_on_stop=True,
+                    temper=1.0, min_share=0.0, spread=spread, offsets=slope * off if slope else None,
+                    first_cap=first_split_cap(k), cap_lift=bool(slope),
+                    horizon=budget if horizon is None or horizon <= 0 else horizon,
                 ).sum()
     return {key: v / equal if equal > 0 else np.full(repeats, np.nan) for key, v in out.items()}
 
@@ -987,7 +998,7 @@ def create_experiment(
         "first_cap": first_split_cap(len(arms)),
         "budget": None if budget is None else int(budget),
         "ends_at": end,
-        "commit_on_stop": prior.learned is not None,
+        "allocation": ALLOCATION if prior.learned is not None else None,
         "arm_meta": {
             arm: {"channel": ch, "publish_at": pa}
             for arm, ch, pa in zip(arms["arm"], arms["channel"], arms["publish_at"])
@@ -1001,8 +1012,9 @@ def create_experiment(
         )
     if prior.learned is not None:
         notes.append(
-            "Once the stopping rule fires (experiment status: the leader very likely best, or choosing it costs next "
-            "to nothing), every impression goes to the draft it names until you stop the test."
+            "Once results are in, a draft gets traffic only while learning more about it could still pay back what "
+            f"showing it costs over the impressions left ({_horizon_words(prior.learned, budget, end)}); the drafts "
+            "still in the running share the traffic by their probability of being best."
         )
     if end is not None:
         notes.append(
@@ -1073,7 +1085,8 @@ def _learned_prior(ws: Workspace, inputs) -> LearnedPrior | None:
     key = _digest(cells + f"\x1e{None if inputs is None else inputs[2]}")
     for (text,) in ws.conn.execute("SELECT settings FROM experiments ORDER BY created_at DESC LIMIT 50"):
         got = (json.loads(text).get("prior") or {}).get("learned")
-        if got and got.get("history_key") == key and got.get("prior_width") == LEARNED_PRIOR_WIDTH:
+        if (got and got.get("history_key") == key and got.get("prior_width") == LEARNED_PRIOR_WIDTH
+                and got.get("typical_impressions")):
             known = {f.name for f in fields(LearnedPrior)}
             return LearnedPrior(**{k: v for k, v in got.items() if k in known})
     learned = learn_prior_from_tests(tests)
@@ -1208,7 +1221,7 @@ def next_allocation(
     if n == 1:
         chosen = next(a for a, c in counts.items() if c == 1)
         notes.append(SINGLE_CAUTION)
-    why = _prior_words(exp["settings"]) + _split_words(bandit, exp["settings"], plan)
+    why = _prior_words(exp["settings"]) + _split_words(bandit, exp["settings"], plan, int(n))
     return Allocation(name, use, int(n), frame, chosen, tuple(notes), tuple(why))
 
 
@@ -1293,12 +1306,69 @@ def end_plan(ws: Workspace, exp: dict, now: str | None = None) -> dict | None:
     return plan
 
 
-def _split_words(bandit: ThompsonBandit, settings: Mapping, plan: Mapping | None = None) -> list[str]:
-    """Why the next split is what it is: the cap before results, the temper, the budget, the floors."""
+def _horizon_words(learned: Mapping, budget: int | None, ends_at: str | None) -> str:
+    """Where a lookahead experiment's expected impressions come from, in a few words."""
+    if budget is not None:
+        return f"your budget of {int(budget):,} impressions"
+    if ends_at:
+        return "the impressions your results' pace implies before the planned end"
+    typical = float(learned.get("typical_impressions") or 0.0)
+    times = "twice" if HORIZON_FACTOR == 2 else f"{HORIZON_FACTOR:g} times"
+    return (f"without a budget or end time, {times} your typical past test, about "
+            f"{HORIZON_FACTOR * typical:,.0f} impressions; give --budget or --ends-at to say otherwise")
+
+
+def _lookahead_words(bandit: ThompsonBandit, settings: Mapping, n: int, plan: Mapping | None) -> list[str]:
+    """Why a lookahead split is what it is: the impressions left, the drafts dropped and the sampling among the rest."""
+    prob = bandit.prob_best()
+    keep = bandit.worth_learning(n)
+    left = bandit.impressions_left(n)
+    learned = (settings.get("prior") or {}).get("learned") or {}
+    source = _horizon_words(learned, settings.get("budget"), settings.get("ends_at"))
+    spent = float(bandit.impressions_.sum())
+    dropped = [a for a, k in keep.items() if not k]
+    kept = [a for a, k in keep.items() if k]
+    if left is None:
+        return [f"Planned end {plan['when'] if plan else 'set'}: the impressions left are not known until results "
+                "from two different times are in (or one after the test was created), so every draft stays in the "
+                "split, by its probability of being best (plain Thompson sampling)."]
+    if plan is not None and plan.get("budget") is not None:
+        source = (f"at the pace of your results so far, about {plan['pace_per_hour']:,.0f} an hour, before "
+                  f"{plan['when']}" if not plan["passed"] else f"the planned end {plan['when']} has passed")
+    expected = float(bandit.horizon)
+    if spent >= expected:
+        out = [f"{spent:,.0f} impressions recorded, at or past the {expected:,.0f} this test was expected to get "
+               f"({source}): little is left to learn for, so the split commits to the leader and any draft still "
+               "close to it."]
+    else:
+        out = [f"About {expected - spent:,.0f} impressions left of the {expected:,.0f} this test is expected to get "
+               f"({source}; {spent:,.0f} recorded)."]
+    if dropped:
+        out.append(
+            f"{_list(dropped)} {'gets' if len(dropped) == 1 else 'get'} no traffic now: even the most that could be "
+            f"learnt about {'it' if len(dropped) == 1 else 'them'} over the impressions left would not pay back the "
+            "clicks that showing them costs against the leader (they come back if the leader slips)."
+        )
+    best = max(prob, key=prob.get)
+    if len(kept) == 1:
+        out.append(f"So every impression goes to {kept[0]}, the likely best ({prob[best]:.0%} probability of being "
+                   f"best): the split has settled. You can stop the test and publish {kept[0]} now, or keep it "
+                   "running to firm up the evidence (the stopping rule in experiment status says how far it is).")
+    else:
+        out.append(f"{_list(kept)} share the traffic by their probability of being best (plain Thompson sampling; "
+                   f"{best} leads with {prob[best]:.0%}). With fewer impressions left, fewer drafts stay in.")
+    return out
+
+
+def _split_words(bandit: ThompsonBandit, settings: Mapping, plan: Mapping | None = None, n: int = 1) -> list[str]:
+    """Why the next split is what it is: the cap before results, the drafts still worth learning about (or the temper, the budget and the floors)."""
     prob = bandit.prob_best()
     out = []
     budget = []
-    if plan is not None:
+    lookahead = settings.get("allocation") == "lookahead"
+    if lookahead:
+        pass  # the impressions left are part of the lookahead's own words
+    elif plan is not None:
         budget.append(_end_words(bandit, plan))
     elif bandit.budget is not None:
         spent = float(bandit.impressions_.sum())
@@ -1326,7 +1396,14 @@ def _split_words(bandit: ThompsonBandit, settings: Mapping, plan: Mapping | None
                 f"Thompson sampling, not sharpened), and no draft gets more than {cap:.0%} of the first impressions "
                 f"(twice an equal share, at most 60%){lift}, so every draft keeps learning."
             )
+        if lookahead:
+            learned = (settings.get("prior") or {}).get("learned") or {}
+            out.append("Once results are in, only the drafts still worth learning about over the impressions left ("
+                       f"{_horizon_words(learned, settings.get('budget'), settings.get('ends_at'))}) share the "
+                       "traffic.")
         return out + budget
+    if lookahead:
+        return out + _lookahead_words(bandit, settings, n, plan)
     committed = bandit.committed_arm()
     if committed is not None:
         out.append(
@@ -1948,6 +2025,11 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
             logit_sd=learned_prior_sd(learned),
             level=float(learned["level"]), level_weight=float(learned["level_weight"]),
         )
+        if settings.get("allocation") == "lookahead":
+            horizon = params["budget"]
+            if horizon is None and not settings.get("ends_at"):
+                horizon = HORIZON_FACTOR * float(learned.get("typical_impressions") or 0.0) or None
+            params.update(temper=1.0, temper_start=1.0, min_share=0.0, budget=None, horizon=horizon)
     state = {"impressions": n.tolist(), "clicks": k.tolist(), "n_updates": int(n_updates)}
     return ThompsonBandit.from_dict({"format": "contentlab.bandit/1", "params": params, "state": state})
 

@@ -59,7 +59,7 @@ def test_prior_learned_from_past_tests_is_stored_and_explained(learned_ws):
     why = " ".join(alloc.why)
     assert "judged against its test's level" in why and "No results yet" in why
     status = experiment_status(learned_ws, "hours")
-    assert any("Budget: 0 of 20,000" in line for line in status.why)
+    assert any("your budget of 20,000 impressions" in line for line in status.why)
 
 
 def test_without_past_tests_the_former_prior_is_used_and_said(tmp_path):
@@ -157,27 +157,44 @@ def test_the_allocation_prior_is_the_fitted_spread_widened_and_older_experiments
     assert LEARNED_PRIOR_WIDTH >= 1.0  # a widened prior never holds drafts tighter than the fitted spread
 
 
-def test_new_experiment_uses_the_widened_prior_and_the_floor_is_said(learned_ws, tmp_path):
-    from contentlab.experiments import LEARNED_MIN_SHARE, LEARNED_PRIOR_WIDTH, _bandit, _load
+def test_new_experiment_samples_among_drafts_worth_learning_about(learned_ws, tmp_path):
+    from contentlab.experiments import HORIZON_FACTOR, LEARNED_PRIOR_WIDTH, _bandit, _load
 
     created = create_experiment(learned_ws, "hours", DRAFTS, seed=3)
     learned = created.prior.learned
     assert learned["prior_width"] == LEARNED_PRIOR_WIDTH
+    # The typical past test: the median of the simulated tests' totals (3 arms of 2,000-4,000 impressions).
+    posts = pd.read_csv(past_tests_csv(tmp_path / "again.csv"))
+    assert learned["typical_impressions"] == pytest.approx(posts.groupby("experiment_id")["impressions"].sum().median())
     bandit = _bandit(learned_ws, _load(learned_ws, "hours"))
     assert bandit.logit_sd == pytest.approx(LEARNED_PRIOR_WIDTH * learned["logit_sd"])
-    assert bandit.min_share == LEARNED_MIN_SHARE
-    # The prior table shows the widened prior: its strength matches logit_sd via the delta method,
+    assert bandit.min_share == 0.0 and bandit.temper == 1.0 and bandit.budget is None
+    assert bandit.horizon == pytest.approx(HORIZON_FACTOR * learned["typical_impressions"])
+    # The prior table shows the prior: its strength matches logit_sd via the delta method,
     # Beta variance m(1-m)/(s+1) = (m(1-m) sd)^2 (see bandit.within_test_prior).
     # m is the test's level before results (the history's level); the table's prior mean adds the flat base.
     m = learned["level"]
     s = created.arms["prior_strength"].iloc[0]
     assert s + 1 == pytest.approx(1.0 / (m * (1 - m) * bandit.logit_sd**2), rel=1e-6)
+    assert any("worth learning about" in note or "pay back" in note for note in created.notes)
+    # B trails far behind on 3,000 impressions each: it is dropped; with the few impressions the typical
+    # test leaves (about 6,000) only the leader C stays, with a budget of 200,000 its close rivals stay too.
     path = tmp_path / "r.csv"
-    path.write_text("arm,impressions,clicks,at\nA,1000,31,2026-12-03T09:00\nB,1000,22,2026-12-03T09:00\n"
-                    "C,1000,35,2026-12-03T09:00\nD,1000,28,2026-12-03T09:00\n", encoding="utf-8")
-    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
-    why = " ".join(next_allocation(learned_ws, "hours", 1000).why)
-    assert f"at least {100 * LEARNED_MIN_SHARE:g}%" in why
+    path.write_text("arm,impressions,clicks\nA,3000,93\nB,3000,40\nC,3000,99\nD,3000,90\n", encoding="utf-8")
+    for name, budget in (("hours", None), ("long", 200_000)):
+        if budget:
+            create_experiment(learned_ws, name, DRAFTS, seed=3, budget=budget)
+        record_results(learned_ws, name, read_results(path), source_file=str(path))
+    alloc = next_allocation(learned_ws, "hours", 1000)
+    assert alloc.arms.set_index("arm")["impressions"].to_dict() == {"A": 0, "B": 0, "C": 1000, "D": 0}
+    why = " ".join(alloc.why)
+    assert "impressions left" in why and "A, B and D get no traffic now" in why and "every impression goes to C" in why
+    assert "twice your typical past test" in why and HORIZON_FACTOR == 2
+    alloc = next_allocation(learned_ws, "long", 1000)
+    got = alloc.arms.set_index("arm")["impressions"]
+    assert got["B"] == 0 and got.sum() == 1000 and (got[["A", "C"]] > 0).all()
+    why = " ".join(alloc.why)
+    assert "B gets no traffic now" in why and "share the traffic" in why and "your budget of 200,000" in why
 
 
 def _at(hours_from_now: float) -> str:
@@ -185,13 +202,12 @@ def _at(hours_from_now: float) -> str:
 
 
 def test_planned_end_time_gives_the_impressions_left_from_the_pace_so_far(learned_ws, tmp_path):
-    from contentlab.bandit import budget_temper
     from contentlab.experiments import end_plan, experiment_bandit
 
     create_experiment(learned_ws, "hours", DRAFTS, seed=3, ends_at=_at(96))
     alloc = next_allocation(learned_ws, "hours", 1000)
-    assert any("pace of impressions is not known" in line for line in alloc.why)
-    assert experiment_bandit(learned_ws, "hours").budget is None  # no pace yet: today's behaviour
+    assert any("before the planned end" in line for line in alloc.why)
+    assert experiment_bandit(learned_ws, "hours").horizon is None  # no pace yet: every draft stays in
     # 2,000 impressions a day ago and 2,000 now: a pace of 2,000 a day, and 4 days left after the latest results.
     first, latest = _at(-24), _at(0)
     rows = [f"{arm},500,{c},{t}" for t in (first, latest) for arm, c in zip("ABCD", (15, 12, 18, 14))]
@@ -203,11 +219,11 @@ def test_planned_end_time_gives_the_impressions_left_from_the_pace_so_far(learne
     assert plan["pace_per_hour"] == pytest.approx(2000 / 24, rel=1e-3)
     assert plan["left"] == pytest.approx(8000, rel=2e-3) and plan["budget"] == pytest.approx(12_000, rel=2e-3)
     bandit = experiment_bandit(learned_ws, "hours")
-    assert bandit.budget == pytest.approx(12_000, rel=2e-3)
-    assert bandit.current_temper() == pytest.approx(budget_temper(4000, 12_000, 6.0, 2.0), rel=1e-2)
+    assert bandit.horizon == pytest.approx(12_000, rel=2e-3)
+    assert bandit.impressions_left(1000) == pytest.approx(8000, rel=5e-3)
     why = " ".join(next_allocation(learned_ws, "hours", 1000).why)
-    assert "impressions left before" in why and "about 83 an hour" in why and "exploring while much remains" in why
-    assert any("impressions left before" in line for line in experiment_status(learned_ws, "hours").why)
+    assert "About 8,0" in why and "impressions left" in why and "about 83 an hour" in why
+    assert any("impressions left" in line for line in experiment_status(learned_ws, "hours").why)
 
 
 def test_end_time_after_it_has_passed_commits(learned_ws):
@@ -242,10 +258,10 @@ def test_cli_new_with_an_end_time_says_so(capsys, tmp_path):
     out = " ".join(capsys.readouterr().out.split())
     assert "Planned end: " in out and "(UTC)" in out
     assert main(["experiment", "next", "hours", "--workspace", str(root)]) == 0
-    assert "the pace of impressions is not known" in " ".join(capsys.readouterr().out.split())
+    assert "before the planned end" in " ".join(capsys.readouterr().out.split())
 
 
-def test_next_commits_to_the_named_draft_once_the_stopping_rule_fires(learned_ws, tmp_path):
+def test_next_gives_everything_to_the_leader_once_no_other_draft_is_worth_learning_about(learned_ws, tmp_path):
     create_experiment(learned_ws, "hours", DRAFTS, seed=3)
     path = tmp_path / "r.csv"
     path.write_text("arm,impressions,clicks\nA,20000,300\nB,20000,600\nC,20000,310\nD,20000,290\n", encoding="utf-8")
@@ -254,7 +270,7 @@ def test_next_commits_to_the_named_draft_once_the_stopping_rule_fires(learned_ws
     assert status.decision.stop and status.decision.leader == "B"
     alloc = next_allocation(learned_ws, "hours", 1000)
     assert alloc.arms.set_index("arm")["impressions"].to_dict() == {"A": 0, "B": 1000, "C": 0, "D": 0}
-    assert any("The stopping rule fires (B is very likely best" in line for line in alloc.why)
+    assert any("every impression goes to B" in line for line in alloc.why)
 
 
 def test_results_recorded_a_minute_apart_count_as_one_round_for_the_pace(learned_ws, tmp_path):
@@ -272,6 +288,26 @@ def test_results_recorded_a_minute_apart_count_as_one_round_for_the_pace(learned
     assert end_plan(learned_ws, exp)["pace_per_hour"] == pytest.approx(400 / 18, rel=1e-3)
 
 
-def test_new_says_the_split_commits_once_the_rule_fires(learned_ws):
+def test_new_says_how_drafts_leave_the_split(learned_ws):
     created = create_experiment(learned_ws, "hours", DRAFTS, seed=3)
-    assert any("every impression goes to the draft it names" in note for note in created.notes)
+    assert any("could still pay back what showing it costs" in note for note in created.notes)
+
+
+def test_experiments_created_before_the_lookahead_keep_their_policy(learned_ws):
+    # Settings stored by the previous default (no "allocation"; twice the spread; committing on stop).
+    import json
+
+    from contentlab.experiments import LEARNED_MIN_SHARE, _bandit, _load
+
+    create_experiment(learned_ws, "hours", DRAFTS, seed=3)
+    exp = _load(learned_ws, "hours")
+    settings = dict(exp["settings"])
+    settings.pop("allocation")
+    settings["commit_on_stop"] = True
+    settings["prior"] = {**settings["prior"], "learned": {**settings["prior"]["learned"], "prior_width": 2.0}}
+    learned_ws.conn.execute("UPDATE experiments SET settings=? WHERE name='hours'", (json.dumps(settings),))
+    learned_ws.conn.commit()
+    bandit = _bandit(learned_ws, _load(learned_ws, "hours"))
+    assert bandit.horizon is None and bandit.commit_on_stop and bandit.temper == 4.0
+    assert bandit.min_share == LEARNED_MIN_SHARE
+    assert bandit.logit_sd == pytest.approx(2.0 * settings["prior"]["learned"]["logit_sd"])

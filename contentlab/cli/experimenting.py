@@ -52,7 +52,10 @@ def register(subparsers) -> None:
             "publish_at, group columns, or headlines as arguments). When your history holds past tests (posts "
             "sharing an experiment_id), the prior is learned from them: how far drafts of one test usually sit "
             "from their test's level (empirical Bayes), so an early gap is judged against the gaps you usually "
-            "see; the prior allows twice that spread, so a draft that truly differs a lot breaks away sooner. The "
+            "see. Once results are in, a draft gets traffic only while learning more about it could still pay back, "
+            "over the impressions the test has left, what showing it costs; the drafts still in the running share "
+            "the traffic by Thompson sampling. The impressions left come from --budget, --ends-at, or else twice your "
+            "typical past test. The "
             "model's predicted gaps between the drafts join the prior only if, fitted on your earlier past tests, "
             "they lose fewer clicks in a replay of your latest ones than the same prior without them, by more than "
             "two standard errors; the evidence is printed. Without past tests the former prior is used (the model's predicted rates, at a "
@@ -60,7 +63,8 @@ def register(subparsers) -> None:
             "draft gets more than twice an equal share of traffic (at most 60%) unless the validated prior "
             "justifies it. --budget N tells the allocation how many impressions the test will get, so it explores "
             "more while much remains and commits as it runs out; --ends-at TIME (when the test is planned to end) "
-            "does the same with the impressions still to come estimated from the pace of the results so far.",
+            "does the same with the impressions still to come estimated from the pace of the results so far. "
+            "Experiments created by an earlier version keep the policy they were created with.",
         ),
         example='contentlab experiment new laser-cutter "Inside the makerspace laser cutter" '
         '"5 things to know about the makerspace laser cutter" --channel newsletter --budget 20000',
@@ -77,7 +81,7 @@ def register(subparsers) -> None:
     p.add_argument("--seed", type=int, help="random seed for the allocations, 0 to 2147483647 (default: a fresh one, stored)")
     p.add_argument("--budget", type=int, metavar="N",
                    help="impressions the whole test will get: explore more while much remains, commit as it runs "
-                        "out (default: no budget, a fixed balance)")
+                        "out (default: twice your typical past test with past tests; else no budget, a fixed balance)")
     p.add_argument("--ends-at", metavar="TIME",
                    help="when the test is planned to end (ISO 8601, e.g. 2026-12-14T18:00, in the workspace's time "
                         "zone unless it has an offset): the pace of results so far gives the impressions still to "
@@ -95,9 +99,10 @@ def register(subparsers) -> None:
             "share follows its probability of being best (estimated from 10,000 posterior draws), with a "
             "minimum share for every arm still in the running so none is starved early. --single names the one "
             "draft to post next, for channels without traffic splitting. With a prior learned from past tests, "
-            "while the stopping rule of 'experiment status' fires every impression goes to the draft it names. With "
-            "--budget or --ends-at it says how much is left and how that shapes the split. Asking twice without new "
-            "results gives the same answer.",
+            "only the drafts still worth learning about with the impressions left share the traffic (by plain "
+            "Thompson sampling, no minimum share), and it says how many impressions are left, where that number "
+            "comes from and which drafts are out. With --budget or --ends-at it says how much is left and how that "
+            "shapes the split. Asking twice without new results gives the same answer.",
             POLICY_TEXT,
         ),
         example="contentlab experiment next makerspace --impressions 5000",
