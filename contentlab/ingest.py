@@ -227,10 +227,11 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
         given = (raw_cost != "").to_numpy()
         bad_cost = given & ~np.isfinite(parsed)
         for i in np.flatnonzero(bad_cost):
-            found.append((i, "cost", f"'{_short(raw_cost.iat[i])}' is not a finite number"))
+            found.append((i, "cost", f"'{_short(raw_cost.iat[i])}' is not a finite number; write the cost as a plain "
+                                     "number without a currency sign (e.g. 12.50), or leave the cell empty"))
         neg = given & np.isfinite(parsed) & (parsed < 0)
         for i in np.flatnonzero(neg):
-            found.append((i, "cost", f"{raw_cost.iat[i]} is negative"))
+            found.append((i, "cost", f"{_short(raw_cost.iat[i])} is negative; a cost cannot be below 0"))
         cost = np.where(given & ~bad_cost & ~neg, parsed, np.nan)
 
     clean = pd.DataFrame(

@@ -31,6 +31,7 @@ import hashlib
 import io
 import math
 import re
+import zlib
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -100,8 +101,14 @@ def read_bytes(path: str | Path) -> tuple[bytes, str]:
     if raw[:2] == b"\x1f\x8b":
         try:
             raw = gzip.decompress(raw)
-        except (OSError, EOFError) as exc:
-            raise ContentlabError(f"{path}: looks gzip-compressed but cannot be read ({exc}).") from None
+        except (OSError, EOFError, zlib.error) as exc:  # zlib.error: a damaged compressed block
+            raise ContentlabError(
+                f"{path}: looks gzip-compressed but cannot be read ({exc}); the file is damaged or was cut short. "
+                "Copy or download it again, or give the uncompressed CSV."
+            ) from None
+    kind = _not_a_csv(raw)
+    if kind:
+        raise ContentlabError(f"{path}: is {kind}, not a CSV file; save or export it as CSV UTF-8 and try again.")
     if raw.startswith(b"\xef\xbb\xbf"):
         return raw[3:], "utf-8"
     wide = _wide_encoding(raw)
@@ -118,6 +125,22 @@ def read_bytes(path: str | Path) -> tuple[bytes, str]:
             "or not a CSV file. Export it again as CSV."
         )
     return raw, "utf-8" if _is_utf8(raw) else "cp1252"
+
+
+# Leading bytes of files people pick by mistake instead of the CSV (their formats' published signatures).
+_SIGNATURES = (
+    (b"PK\x03\x04", "a ZIP archive (an Excel .xlsx workbook is one too)"),
+    (b"PK\x05\x06", "an empty ZIP archive"),
+    (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1", "an Excel 97-2003 (.xls) workbook or another Office file"),
+    (b"%PDF-", "a PDF document"),
+    (b"PAR1", "a Parquet file"),
+    (b"SQLite format 3\x00", "an SQLite database"),
+)
+
+
+def _not_a_csv(raw: bytes) -> str | None:
+    """What a file is when its first bytes say it is a known non-CSV format, else None."""
+    return next((kind for magic, kind in _SIGNATURES if raw.startswith(magic)), None)
 
 
 def _wide_encoding(raw: bytes) -> str | None:
@@ -213,10 +236,39 @@ def read_cells(path: str | Path, what: str = "file") -> pd.DataFrame:
         blank = (frame == "").all(axis=1)
         if blank.any():
             frame = frame.loc[~blank.to_numpy()]
+    _check_one_delimiter(path, frame, delimiter)
     frame.attrs["source"] = str(path)
     frame.attrs["digest"] = file_digest(whole)
     frame.attrs["header_row"] = 1 + skipped
     return frame
+
+
+_DELIMITER_NAMES = {",": "commas", ";": "semicolons", "\t": "tabs"}
+
+
+def _check_one_delimiter(path, frame: pd.DataFrame, delimiter: str) -> None:
+    """Refuse a file whose rows use another delimiter than its header (all of a row's cells land in its first).
+
+    Read as it is, such a row would be reported as empty dates and counts, which sends the user to the
+    wrong fix.
+    """
+    width = frame.shape[1]
+    if width < 2 or frame.empty:
+        return
+    lone = frame.iloc[:, 1:].eq("").all(axis=1).to_numpy()
+    if not lone.any():
+        return
+    first = frame.iloc[:, 0].astype(str)
+    for other, name in _DELIMITER_NAMES.items():
+        if other == delimiter:
+            continue
+        split = lone & (first.str.count(re.escape(other)).to_numpy() >= width - 1)
+        if split.any():
+            line = int(frame.index[np.flatnonzero(split)[0]])
+            raise ContentlabError(
+                f"{path}: row {line} separates its cells with {name} but the header row uses "
+                f"{_DELIMITER_NAMES[delimiter]}; export the file again with one delimiter throughout."
+            )
 
 
 def header_row(frame: pd.DataFrame) -> int:
@@ -309,9 +361,9 @@ def count_cells(cells: pd.Series, column: str) -> tuple[np.ndarray, np.ndarray, 
     for i in np.flatnonzero(named_nan):
         problems.append((i, column, "is NaN; write the real count"))
     for i in np.flatnonzero(nonnum):
-        problems.append((i, column, f"'{short(raw.iat[i])}' is not a number"))
+        problems.append((i, column, f"'{short(raw.iat[i])}' is not a number; {_count_hint(raw.iat[i])}"))
     for i in np.flatnonzero(infinite):
-        problems.append((i, column, f"'{short(raw.iat[i])}' is infinite"))
+        problems.append((i, column, f"'{short(raw.iat[i])}' is infinite; write the real count"))
     for i in np.flatnonzero(negative):
         problems.append((i, column, f"{short(raw.iat[i])} is negative; counts cannot be below 0"))
     for i in np.flatnonzero(fractional):
@@ -321,6 +373,15 @@ def count_cells(cells: pd.Series, column: str) -> tuple[np.ndarray, np.ndarray, 
     bad = empty | named_nan | nonnum | infinite | negative | fractional | too_large
     clean = np.where(bad, 0, np.nan_to_num(values, nan=0, posinf=0, neginf=0)).astype(np.int64)
     return clean, bad, problems
+
+
+def _count_hint(text: str) -> str:
+    """What to write instead of a count that is not a number."""
+    if text.endswith("%"):
+        return "give the count itself, not a percentage"
+    if re.fullmatch(r"[+-]?\d{1,3}([,.' \u00a0\u202f]\d{3})+", text):
+        return "write it without thousands separators (e.g. 1234)"
+    return "write a whole number in digits (e.g. 1234)"
 
 
 def long_cells(cells: pd.Series, column: str, limit: int, noun: str) -> list[tuple[int, str, str]]:

@@ -2096,7 +2096,7 @@ class ReportFiles:
 
 def write_report(report: WeeklyReport, out_dir: str | Path = "reports") -> ReportFiles:
     """Write ``<out>/contentlab-report-<period>.html`` and the tables behind it as CSV (neutralised)."""
-    from .safety import write_csv
+    from .safety import write_csv, write_text
 
     out = Path(out_dir)
     try:
@@ -2118,9 +2118,7 @@ def write_report(report: WeeklyReport, out_dir: str | Path = "reports") -> Repor
     for old in folder.glob("*.csv"):  # tables of an earlier run of the same period that this one did not write
         if old not in written:
             old.unlink()
-    tmp = path.with_suffix(".html.tmp")
-    tmp.write_text(html, encoding="utf-8")
-    tmp.replace(path)
+    write_text(path, html)  # whole or not at all, also when interrupted
     return ReportFiles(path, written)
 
 

@@ -113,7 +113,7 @@ CASES = [
     ("report on a week in the future", {}, ["report", "--week", "2199-W02", "--out", "{tmp}/out"],
      "nothing to report: week 2199-W02 has not begun yet"),
     ("record: non-numeric clicks", {"r.csv": b"arm,impressions,clicks\nA,10,x\n"},
-     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'clicks': 'x' is not a number; nothing was recorded."),
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'clicks': 'x' is not a number; write a whole number in digits (e.g. 1234); nothing was recorded."),
     ("record: unknown arm", {"r.csv": b"arm,impressions,clicks\nQ,10,1\n"},
      ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'arm': 'Q' is not an arm of laser"),
     ("record: event id reused with other values", {},

@@ -174,6 +174,13 @@ def test_stop_with_a_winner(client, ws_dir):
     assert re.search(r'id="state">stopped<', page.text)
     refused = client.post("/api/experiments/to-stop/next", json={"impressions": 100})
     assert refused.status_code == 409 and "was stopped" in refused.json()["error"]
+    # Stopping it again changes nothing (was: stopped again with the leader, overwriting B and the stop time).
+    again = client.post("/experiments/to-stop/stop", data={"csrf_token": csrf(client)}, follow_redirects=False)
+    assert again.status_code == 409 and "nothing changed" in again.text
+    with Workspace.open(ws_dir, create=False) as ws:
+        from contentlab.experiments import _load
+
+        assert _load(ws, "to-stop")["settings"]["winner"] == "B"
 
 
 def test_history_filters_are_checked(client):
@@ -237,6 +244,19 @@ def test_import_rejects_bad_rows_with_a_table_and_writes_nothing(client, ws_dir,
     assert "<td>clicks</td>" in table and "<td>published_at</td>" in table
     assert "&lt;img src=x onerror=alert(1)&gt;.csv" in r.text and "<img" not in r.text
     assert "/tmp" not in r.text and "contentlab-upload" not in r.text  # no server path shown
+    assert digest(ws_dir) == before
+
+
+@pytest.mark.parametrize("kind, data, words", [
+    ("damaged gzip", b"\x1f\x8b\x08\x00" + b"\xff" * 60, "looks gzip-compressed but cannot be read"),  # was a 500
+    ("ZIP or .xlsx", b"PK\x03\x04" + bytes(range(200)), "is a ZIP archive (an Excel .xlsx workbook is one too)"),
+    ("PDF", b"%PDF-1.7\n" + bytes(range(200)), "is a PDF document, not a CSV file"),
+])
+def test_import_upload_that_is_not_a_csv(client, ws_dir, digest, kind, data, words):
+    before = digest(ws_dir)
+    r = client.post("/import", data={"csrf_token": csrf(client)}, files={"export": ("posts.csv", data, "text/csv")})
+    assert r.status_code == 400, r.text[:300]
+    assert words in r.text.replace("&#39;", "'") and "Something went wrong" not in r.text
     assert digest(ws_dir) == before
 
 
@@ -353,9 +373,29 @@ def test_api_score_errors(client, body, status, words):
     assert words in r.json()["error"]
 
 
-def test_api_invalid_json(client):
-    r = client.post("/api/score", content=b"{not json", headers={"content-type": "application/json"})
-    assert r.status_code == 400 and "not valid JSON" in r.json()["error"]
+@pytest.mark.parametrize("path, raw, words", [
+    ("/api/score", b"{not json", "not valid JSON"),
+    ("/api/score", b"", "not valid JSON"),
+    ("/api/score", b'{"drafts": [{"headline": "caf\xe9"}]}', "not valid JSON"),  # not UTF-8
+    ("/api/score", b'{"drafts":' + b"[" * 100_000 + b"]" * 100_000 + b"}", "nested too deeply"),  # was a 500
+    ("/api/experiments/winter-reading/next", b'{"impressions": NaN}', "NaN is not a JSON value"),  # RFC 8259
+    ("/api/experiments/winter-reading/next", b'{"impressions": -Infinity}', "-Infinity is not a JSON value"),
+    ("/api/experiments/winter-reading/results",
+     b'{"results": [{"arm": "A", "impressions": Infinity, "clicks": 1}]}', "Infinity is not a JSON value"),
+])
+def test_api_invalid_json(client, ws_dir, path, raw, words):
+    """Every body that is not JSON (RFC 8259) gets 400 and a reason, never a 500; nothing is written."""
+    before = totals(ws_dir, "winter-reading")
+    r = client.post(path, content=raw, headers={"content-type": "application/json"})
+    assert r.status_code == 400 and words in r.json()["error"], r.text[:300]
+    assert totals(ws_dir, "winter-reading") == before
+
+
+@pytest.mark.parametrize("impressions", [10**30, 2**53 + 1, -(10**30), 0])
+def test_api_next_impressions_outside_any_count(client, impressions):
+    """A whole number beyond what a count can hold is a 400 (was an OverflowError and a 500)."""
+    r = client.post("/api/experiments/winter-reading/next", json={"impressions": impressions})
+    assert r.status_code == 400 and "whole number from 1 to 2^53" in r.json()["error"]
 
 
 def test_api_experiments_status_next(client):

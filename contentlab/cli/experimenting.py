@@ -205,6 +205,9 @@ def cmd_new(args: argparse.Namespace) -> int:
         raise ContentlabError("give drafts either as --drafts FILE or as headlines on the command line, not both.")
     if not args.drafts and not args.headlines:
         raise ContentlabError('give the drafts: --drafts drafts.csv, or headlines as arguments ("Draft one" "Draft two").')
+    if args.flat_prior and args.prior_strength is not None:
+        raise ContentlabError("give --flat-prior (every arm starts at Beta(1, 1)) or --prior-strength S (the model's "
+                              "predictions with strength S), not both.")
     if args.seed is not None and not 0 <= args.seed < 2**31:
         raise ContentlabError(f"--seed must be a whole number from 0 to {2**31 - 1}; got {args.seed}.")
     drafts = read_drafts(args.drafts) if args.drafts else list(args.headlines)
@@ -350,6 +353,10 @@ def cmd_stop(args: argparse.Namespace) -> int:
     with Workspace.open(args.workspace, create=False) as ws:
         out = stop_experiment(ws, args.name, winner=args.winner)
     d = out["decision"]
+    if "winner_before" in out:
+        print(f"{out['experiment']} was stopped already; its winner is now {out['winner']} "
+              f"(was {out['winner_before'] or 'none'}).")
+        return 0
     print(f"Stopped {out['experiment']}; winner: {out['winner']}.")
     if out["stopped_early"]:
         print(_wrap("Note: the evidence did not yet meet the stopping rule: " + d.reason))

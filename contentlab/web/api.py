@@ -23,9 +23,16 @@ async def _json_body(request: Request):
         raise ApiError("Send the body as JSON with the header Content-Type: application/json.", 415)
     raw = await request.body()
     try:
-        return json.loads(raw)
+        return json.loads(raw, parse_constant=_no_constant)
     except (ValueError, UnicodeDecodeError) as exc:
         raise ApiError(f"The body is not valid JSON ({exc}).") from None
+    except RecursionError:
+        raise ApiError("The body is not valid JSON for this API: its lists or objects are nested too deeply.") from None
+
+
+def _no_constant(name: str):
+    """NaN, Infinity and -Infinity are not JSON (RFC 8259), though Python's reader takes them."""
+    raise ValueError(f"{name} is not a JSON value; send a number or null")
 
 
 async def score(request: Request) -> ApiResponse:

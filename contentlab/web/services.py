@@ -152,9 +152,11 @@ def status(state: WorkspaceState, name: str) -> dict:
 
 def allocation(state: WorkspaceState, name: str, impressions: Any, policy: str | None = None) -> dict:
     from ..experiments import next_allocation
+    from ..readers import MAX_COUNT
 
-    if isinstance(impressions, bool) or not isinstance(impressions, int) or impressions < 1:
-        raise ApiError(f'"impressions" must be a whole number of at least 1; got {impressions!r}.')
+    if isinstance(impressions, bool) or not isinstance(impressions, int) or not 1 <= impressions <= MAX_COUNT:
+        shown = repr(impressions) if len(repr(impressions)) <= 40 else repr(impressions)[:39] + "…"
+        raise ApiError(f'"impressions" must be a whole number from 1 to 2^53 ({MAX_COUNT:,}); got {shown}.')
     with state.open() as ws:
         alloc = next_allocation(ws, name, impressions, policy)
     return {"experiment": alloc.name, "policy": alloc.policy, "impressions": alloc.impressions,
