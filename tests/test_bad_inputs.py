@@ -51,6 +51,10 @@ def run(capsys, argv: list[str]) -> tuple[int, str, str]:
     return code, out, err
 
 
+# A gzip header followed by a compressed block of an invalid type (zlib: "invalid block type").
+DAMAGED_GZIP = b"\x1f\x8b\x08\x00\x00\x00\x00\x00\x00\x03" + b"\xff" * 40
+
+
 def big_id() -> str:
     return "x" * 100_000
 
@@ -121,6 +125,35 @@ CASES = [
      "--event-id: event id 'b1' is already recorded with different values (A: 300 impressions, 5 clicks)"),
     ("demo over a user's workspace", {}, ["demo", "--workspace", "{ws}", "--out", "{tmp}/out"],
      "holds a contentlab workspace that the demo did not create"),
+    # A damaged gzip stream raises zlib.error, not OSError: it was an "unexpected error" for every reader.
+    ("damaged gzip export", {"f.csv.gz": DAMAGED_GZIP}, ["import", "{tmp}/f.csv.gz"],
+     "f.csv.gz: looks gzip-compressed but cannot be read"),
+    ("damaged gzip results", {"r.csv.gz": DAMAGED_GZIP}, ["record", "laser", "--input", "{tmp}/r.csv.gz"],
+     "r.csv.gz: looks gzip-compressed but cannot be read"),
+    ("damaged gzip drafts", {"d.csv.gz": DAMAGED_GZIP}, ["score", "--input", "{tmp}/d.csv.gz"],
+     "d.csv.gz: looks gzip-compressed but cannot be read"),
+    ("workbook (.xlsx is a ZIP) given as the export", {"f.xlsx": b"PK\x03\x04" + bytes(range(256)) * 4},
+     ["import", "{tmp}/f.xlsx"], "is a ZIP archive (an Excel .xlsx workbook is one too), not a CSV file"),
+    ("Excel 97-2003 workbook as results", {"r.xls": b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1" + bytes(500)},
+     ["record", "laser", "--input", "{tmp}/r.xls"], "is an Excel 97-2003 (.xls) workbook"),
+    ("PDF given as drafts", {"d.pdf": b"%PDF-1.7\n%\xe2\xe3\xcf\xd3\n1 0 obj\n"}, ["score", "--input", "{tmp}/d.pdf"],
+     "is a PDF document, not a CSV file"),
+    # Read as they are, such rows gave "published_at is empty" and "write 0": the wrong fix.
+    ("rows split by semicolons under a comma header", {"f.csv": (HEAD + GOOD.replace(",", ";")).encode()},
+     ["import", "{tmp}/f.csv"], "row 2 separates its cells with semicolons but the header row uses commas"),
+    ("rows split by commas under a semicolon header", {"r.csv": b"arm;impressions;clicks\nA,10,1\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2 separates its cells with commas but the header row uses semicolons"),
+    ("count with a thousands separator", {"f.csv": (HEAD + 'p1,2026-03-02,Hello,"1,234",1,blog\n').encode()},
+     ["import", "{tmp}/f.csv"], "'1,234' is not a number; write it without thousands separators (e.g. 1234)"),
+    ("count given as a percentage", {"r.csv": b"arm,impressions,clicks\nA,100,12%\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "'12%' is not a number; give the count itself, not a percentage"),
+    ("cost with a currency sign", {"f.csv": (HEAD.strip() + ",cost\n" + GOOD.strip() + ",$12\n").encode()},
+     ["import", "{tmp}/f.csv"], "'$12' is not a finite number; write the cost as a plain number without a currency sign"),
+    ("flat prior and a prior strength together", {},
+     ["experiment", "new", "both", "Draft one here", "Draft two here", "--flat-prior", "--prior-strength", "50"],
+     "give --flat-prior (every arm starts at Beta(1, 1)) or --prior-strength S"),
+    ("bootstrap refits beyond any use", {}, ["learn", "--bootstrap", "100000000"],  # was "ran out of memory"
+     "--bootstrap must be from 0 to 5,000; got 100,000,000"),
 ]
 
 
@@ -208,6 +241,93 @@ def test_corrupt_or_truncated_database_is_not_a_usable_workspace(base, tmp_path,
     assert code == 2 and "Traceback" not in err
     assert "is not a usable workspace" in err
     assert db.read_bytes() == before
+
+
+# What can be damaged inside a readable database (a crash of another tool, a hand edit, an older time-zone
+# database), the SQL that simulates it, and the words of the message; every command that reads it must say
+# what is wrong and how to recover, never "unexpected error", and change nothing.
+DAMAGED_STATE = [
+    ("model summary not JSON", "UPDATE models SET summary = '{not json'",
+     "The model saved in the workspace at {ws} is damaged (what it stored is not valid JSON"),
+    ("experiment settings not JSON", "UPDATE experiments SET settings = '{broken'",
+     "Experiment laser in the workspace at {ws} is damaged (what it stored is not valid JSON"),
+    ("experiment settings a JSON list", "UPDATE experiments SET settings = '[]'",
+     "Experiment laser in the workspace at {ws} is damaged (what it stored is a JSON list, not an object)"),
+    ("time zone this computer does not know", "UPDATE meta SET value = 'Mars/Olympus' WHERE key = 'timezone'",
+     "has the time zone 'Mars/Olympus', which this computer does not know"),
+    ("schema version not a number", "UPDATE meta SET value = 'two' WHERE key = 'schema_version'",
+     "is not a usable workspace: {ws}/workspace.sqlite cannot be read as a contentlab database (its schema version 'two' is not a number)"),
+    ("stored post time unreadable", "UPDATE posts SET published_at = 'garbage' WHERE post_id = (SELECT MIN(post_id) FROM posts)",
+     "post(s) whose stored time cannot be read"),
+]
+DAMAGED_READERS = {
+    "model summary not JSON": [["score", "A new reading room", "--channel", "newsletter"], ["drivers"]],
+    "experiment settings not JSON": [["experiment", "status", "laser"], ["experiment", "next", "laser"],
+                                     ["experiment", "list"], ["record", "laser", "--arm", "A", "--impressions", "5",
+                                                              "--clicks", "1"]],
+    "experiment settings a JSON list": [["experiment", "status", "laser"], ["report", "--out", "{tmp}/out"]],
+    "time zone this computer does not know": [["settings"], ["learn", "--bootstrap", "0", "--quiet"],
+                                              ["record", "laser", "--arm", "A", "--impressions", "5", "--clicks", "1"],
+                                              ["score", "A new reading room", "--channel", "newsletter"]],
+    "schema version not a number": [["settings"], ["drivers"], ["experiment", "list"]],
+    "stored post time unreadable": [["features", "--quiet"], ["learn", "--bootstrap", "0", "--quiet"],
+                                    ["report", "--out", "{tmp}/out"]],
+}
+
+
+@pytest.mark.parametrize("kind, sql, words, argv", [
+    (kind, sql, words, argv) for kind, sql, words in DAMAGED_STATE for argv in DAMAGED_READERS[kind]
+], ids=[f"{kind}: {' '.join(argv[:2])}" for kind, _, _ in DAMAGED_STATE for argv in DAMAGED_READERS[kind]])
+def test_damaged_workspace_state_says_what_and_how_to_recover(ws, tmp_path, capsys, kind, sql, words, argv):
+    conn = sqlite3.connect(ws / "workspace.sqlite")
+    conn.execute(sql)
+    conn.commit()
+    conn.close()
+    before = workspace_digest(ws)
+    args = [a.replace("{tmp}", str(tmp_path)) for a in argv] + ["--workspace", str(ws)]
+    code, _, err = run(capsys, args)
+    assert code == 2, err
+    assert "unexpected error" not in err and "Traceback" not in err
+    assert words.replace("{ws}", str(ws)) in " ".join(err.split()), err
+    assert any(fix in err for fix in ("`contentlab learn` again", "Restore", "restore", "settings --timezone", "Import the export"))
+    assert workspace_digest(ws) == before
+
+
+def test_unknown_time_zone_is_repaired_by_setting_it_again(ws, capsys):
+    conn = sqlite3.connect(ws / "workspace.sqlite")
+    conn.execute("UPDATE meta SET value = 'Mars/Olympus' WHERE key = 'timezone'")
+    conn.commit()
+    conn.close()
+    code, out, err = run(capsys, ["settings", "--timezone", "Europe/London", "--workspace", str(ws)])
+    assert code == 0 and "Europe/London" in out, err
+    assert run(capsys, ["experiment", "status", "laser", "--workspace", str(ws)])[0] == 0
+
+
+def test_stopping_a_stopped_experiment_keeps_its_winner_and_time(ws, capsys):
+    """A second stop used to overwrite the winner the user chose with the current leader, and the stop time."""
+    assert run(capsys, ["experiment", "stop", "laser", "--winner", "B", "--workspace", str(ws)])[0] == 0
+    before = workspace_digest(ws)
+    code, _, err = run(capsys, ["experiment", "stop", "laser", "--workspace", str(ws)])
+    assert code == 2 and "was stopped on" in err and "with B as the winner; nothing changed" in err, err
+    assert workspace_digest(ws) == before
+    code, out, _ = run(capsys, ["experiment", "stop", "laser", "--winner", "A", "--workspace", str(ws)])
+    assert code == 0 and "its winner is now A (was B)" in out
+    from contentlab.experiments import _load
+    from contentlab.workspace import Workspace
+
+    with Workspace.open(ws, create=False) as opened_ws:
+        settings = _load(opened_ws, "laser")["settings"]
+    assert settings["winner"] == "A" and settings["winner_before"] == "B" and "stopped_at" in settings
+
+
+def test_results_after_a_stop_are_kept_and_the_summary_says_so(ws, capsys):
+    """Real results are never dropped: a late batch of a stopped test is recorded, with a note."""
+    assert run(capsys, ["experiment", "stop", "laser", "--winner", "B", "--workspace", str(ws)])[0] == 0
+    code, out, err = run(capsys, ["record", "laser", "--arm", "A", "--impressions", "40", "--clicks", "2",
+                                  "--event-id", "late-1", "--workspace", str(ws)])
+    assert code == 0, err
+    assert "1 recorded (+40 impressions, +2 clicks)" in out
+    assert "laser was stopped with B as the winner; these results are added to its totals" in " ".join(out.split())
 
 
 def test_experiment_list_with_mixed_channels(ws, capsys):

@@ -251,7 +251,7 @@ def test_import_rejects_bad_rows_with_a_table_and_writes_nothing(client, ws_dir,
     ("damaged gzip", b"\x1f\x8b\x08\x00" + b"\xff" * 60, "looks gzip-compressed but cannot be read"),  # was a 500
     ("ZIP or .xlsx", b"PK\x03\x04" + bytes(range(200)), "is a ZIP archive (an Excel .xlsx workbook is one too)"),
     ("PDF", b"%PDF-1.7\n" + bytes(range(200)), "is a PDF document, not a CSV file"),
-])
+], ids=["damaged gzip", "ZIP or xlsx", "PDF"])
 def test_import_upload_that_is_not_a_csv(client, ws_dir, digest, kind, data, words):
     before = digest(ws_dir)
     r = client.post("/import", data={"csrf_token": csrf(client)}, files={"export": ("posts.csv", data, "text/csv")})
@@ -382,7 +382,7 @@ def test_api_score_errors(client, body, status, words):
     ("/api/experiments/winter-reading/next", b'{"impressions": -Infinity}', "-Infinity is not a JSON value"),
     ("/api/experiments/winter-reading/results",
      b'{"results": [{"arm": "A", "impressions": Infinity, "clicks": 1}]}', "Infinity is not a JSON value"),
-])
+], ids=["malformed", "empty", "not UTF-8", "nested 100,000 deep", "NaN", "-Infinity", "Infinity in results"])
 def test_api_invalid_json(client, ws_dir, path, raw, words):
     """Every body that is not JSON (RFC 8259) gets 400 and a reason, never a 500; nothing is written."""
     before = totals(ws_dir, "winter-reading")
