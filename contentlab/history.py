@@ -7,6 +7,7 @@ from pathlib import Path
 
 from .errors import ContentlabError
 from .ingest import READ_STEPS, History, format_problems, read_history
+from .readers import short
 from .workspace import Workspace
 
 
@@ -20,6 +21,7 @@ class ImportSummary:
     rejected: int
     rejected_file: str | None = None
     repeated: int = 0  # rows identical to an earlier row of the same file (same post_id and values)
+    unused: tuple[str, ...] = ()  # columns of the file that contentlab does not read
 
     def line(self) -> str:
         text = (
@@ -30,6 +32,9 @@ class ImportSummary:
             text += f", {self.repeated} repeated (identical to an earlier row of the file, counted once)"
         if self.rejected_file:
             text += f" (see {self.rejected_file})"
+        if self.unused:
+            shown = ", ".join(f"'{short(c)}'" for c in self.unused[:8]) + (" ..." if len(self.unused) > 8 else "")
+            text += f"; not read: column(s) {shown} (the README lists the columns contentlab reads)"
         return text
 
 
@@ -93,7 +98,8 @@ def import_history(
             storing.close()
     repeated = history.rows_read - len(history.posts) - len(history.rejected)
     return ImportSummary(
-        str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file, repeated
+        str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file, repeated,
+        tuple(history.ignored_columns),
     )
 
 

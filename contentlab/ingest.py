@@ -16,7 +16,8 @@ import pandas as pd
 
 from .errors import ContentlabError
 from .features import clean_headline
-from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, file_bytes, header_row, long_cells, read_cells
+from .readers import (MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, file_bytes, header_row, known_names,
+                      long_cells, read_cells, unused_columns)
 from .readers import read_bytes, sniff_delimiter  # noqa: F401  (their home is readers; kept importable here)
 from .readers import short as _short
 from .timeparse import parse_datetimes
@@ -108,16 +109,14 @@ def read_table(path: Path, mapping: dict[str, str]) -> tuple[pd.DataFrame, list[
             )
         rename[theirs] = ours
     frame = frame.rename(columns=rename)
-    lowered = {c: c.lower() for c in frame.columns if c not in rename.values() and c.lower() in KNOWN}
-    frame = frame.rename(columns=lowered)
+    frame = frame.rename(columns=known_names([c for c in frame.columns if c not in rename.values()], KNOWN))
     repeated = sorted({c for c in frame.columns if list(frame.columns).count(c) > 1})
     if repeated:
         raise ContentlabError(
             f"{path}: row {header_row(frame)} (header), more than one column would be read as {', '.join(repeated)}. "
             "Rename or remove the extra column, or map only one of them."
         )
-    ignored = [c for c in frame.columns if c not in KNOWN]
-    return frame, ignored
+    return frame, unused_columns(frame.columns, KNOWN)
 
 
 # --------------------------------------------------------------- validation

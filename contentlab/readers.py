@@ -59,6 +59,7 @@ __all__ = [
     "check_results",
     "count_cells",
     "file_digest",
+    "known_names",
     "long_cells",
     "prepare_drafts",
     "read_bytes",
@@ -67,6 +68,7 @@ __all__ = [
     "read_results",
     "short",
     "sniff_delimiter",
+    "unused_columns",
 ]
 
 
@@ -393,9 +395,36 @@ def long_cells(cells: pd.Series, column: str, limit: int, noun: str) -> list[tup
 
 # ------------------------------------------------------------------ drafts
 
+def _name_key(name: object) -> str:
+    return re.sub(r"[\s_\-.]+", "", str(name).casefold())
+
+
+def known_names(columns: Sequence[str], known: Sequence[str]) -> dict[str, str]:
+    """``{header: contentlab name}`` for headers that name a known column in another spelling.
+
+    Case, spaces, ``-``, ``_`` and ``.`` do not matter: ``Event ID``, ``event-id`` and ``EventId`` are
+    ``event_id``. Such a column used to be skipped without a word (and with it, say, every row's event id).
+    """
+    keys = {_name_key(k): k for k in known}
+    return {c: keys[_name_key(c)] for c in columns if _name_key(c) in keys and c != keys[_name_key(c)]}
+
+
+def unused_columns(columns: Sequence[str], known: Sequence[str]) -> list[str]:
+    """Headers contentlab does not read (a blank header read as '(unnamed column N)' is not listed)."""
+    return [c for c in columns if c not in known and c != "row" and not str(c).startswith("(unnamed column")]
+
+
 def _canonical_columns(frame: pd.DataFrame, path, known: Sequence[str], aliases: dict[str, Sequence[str]]) -> pd.DataFrame:
-    """Lower-case known column names and map aliases; refuse two columns that mean the same."""
-    rename = {c: c.lower() for c in frame.columns if c.lower() in known or any(c.lower() in a for a in aliases.values())}
+    """Known column names in any spelling (:func:`known_names`) and aliases; refuse two columns that mean the same."""
+    names = list(known) + [a for group in aliases.values() for a in group]
+    rename = known_names(frame.columns, names)
+    for target in set(rename.values()):
+        same = [c for c in frame.columns if c == target or rename.get(c) == target]
+        if len(same) > 1:
+            raise ContentlabError(
+                f"{path}: row {header_row(frame)} (header), columns {', '.join(repr(c) for c in same)} are all read "
+                f"as {target}; keep one."
+            )
     frame = frame.rename(columns=rename)
     for target, names in aliases.items():
         present = [c for c in names if c in frame.columns]

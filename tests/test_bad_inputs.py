@@ -330,6 +330,52 @@ def test_results_after_a_stop_are_kept_and_the_summary_says_so(ws, capsys):
     assert "laser was stopped with B as the winner; these results are added to its totals" in " ".join(out.split())
 
 
+@pytest.mark.parametrize("header, cells", [
+    ("Arm,Impressions,Clicks,Event ID", "A,40,2,batch-9"),
+    ("arm,impressions,clicks,event-id", "A,40,2,batch-9"),
+    ("ARM,IMPRESSIONS,CLICKS,EventId", "A,40,2,batch-9"),
+])
+def test_known_column_in_another_spelling_is_read_not_skipped(ws, tmp_path, capsys, header, cells):
+    """'Event ID' was skipped without a word, and with it the id that makes a replay harmless."""
+    path = tmp_path / "r.csv"
+    path.write_text(f"{header}\n{cells}\n", encoding="utf-8")
+    assert run(capsys, ["record", "laser", "--input", str(path), "--workspace", str(ws)])[0] == 0
+    path.write_text(f"{header}\n{cells}\n\n", encoding="utf-8")  # other bytes, same event id: recorded once
+    code, out, _ = run(capsys, ["record", "laser", "--input", str(path), "--workspace", str(ws)])
+    assert code == 0 and "0 recorded" in out and "1 already recorded" in out
+
+
+@pytest.mark.parametrize("files, argv, fragment", [
+    ({"r.csv": "arm,impressions,clicks,event_id,Event ID\nA,1,0,e,e\n"}, ["record", "laser", "--input", "{tmp}/r.csv"],
+     "columns 'event_id', 'Event ID' are all read as event_id; keep one"),
+    ({"d.csv": "headline,Head-line\nA draft,Another\n"}, ["score", "--input", "{tmp}/d.csv"],
+     "columns 'headline', 'Head-line' are all read as headline; keep one"),
+    ({"f.csv": "post_id,Post ID,published_at,headline,impressions,clicks\np1,p1,2026-03-02,Hello,10,1\n"},
+     ["import", "{tmp}/f.csv"], "more than one column would be read as post_id"),
+])
+def test_two_spellings_of_one_column_are_refused(ws, tmp_path, capsys, files, argv, fragment):
+    for name, text in files.items():
+        (tmp_path / name).write_text(text, encoding="utf-8")
+    before = workspace_digest(ws)
+    code, _, err = run(capsys, [a.replace("{tmp}", str(tmp_path)) for a in argv] + ["--workspace", str(ws)])
+    assert code == 2 and fragment in err, err
+    assert workspace_digest(ws) == before
+
+
+def test_columns_not_read_are_named(ws, tmp_path, capsys):
+    """Nothing a user gave is dropped without a word: columns contentlab does not read are listed."""
+    export = tmp_path / "f.csv"
+    export.write_text("Post ID,Published At,Headline,Impressions,Clicks,Link clicks\np1,2026-03-02,Hello there,10,1,1\n",
+                      encoding="utf-8")
+    code, out, err = run(capsys, ["import", str(export), "--quiet", "--workspace", str(ws)])
+    assert code == 0, err
+    assert "1 added" in out and "not read: column(s) 'Link clicks'" in out
+    results = tmp_path / "r.csv"
+    results.write_text("arm,impressions,clicks,note\nA,10,1,from the newsletter tool\n", encoding="utf-8")
+    code, out, err = run(capsys, ["record", "laser", "--input", str(results), "--workspace", str(ws)])
+    assert code == 0 and "not read: column(s) 'note'" in out, err
+
+
 def test_experiment_list_with_mixed_channels(ws, capsys):
     """Drafts on two channels give an experiment without one channel: the list shows '-' (was a TypeError)."""
     d = ws.parent / "d.csv"

@@ -369,6 +369,7 @@ def cmd_record(args: argparse.Namespace) -> int:
 
     from ..errors import ContentlabError
     from ..experiments import read_results, record_results
+    from ..readers import RESULT_COLUMNS, unused_columns
     from ..workspace import Workspace
 
     single = [args.arm, args.impressions, args.clicks]
@@ -386,6 +387,7 @@ def cmd_record(args: argparse.Namespace) -> int:
         if args.input:
             frame = read_results(args.input)
             summary = record_results(ws, args.name, frame, cumulative=args.cumulative, source_file=args.input)
+            unused = unused_columns(frame.columns, RESULT_COLUMNS)
         else:
             row = {"arm": args.arm, "impressions": args.impressions, "clicks": args.clicks}
             if args.at is not None:
@@ -395,6 +397,9 @@ def cmd_record(args: argparse.Namespace) -> int:
             summary = record_results(ws, args.name, pd.DataFrame([row]), cumulative=args.cumulative)
     print(summary.line())
     if not args.quiet:
+        if args.input and unused:
+            print(_wrap(f"Note: not read: column(s) {', '.join(repr(c) for c in unused[:8])} of {args.input} (a "
+                        "results file has arm, impressions, clicks, at and event_id)."))
         for note in summary.notes:
             print(_wrap("Note: " + note))
         if summary.added:
