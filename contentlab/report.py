@@ -300,7 +300,8 @@ def noise_check(frame: pd.DataFrame, period: Period) -> dict:
         return out
     sd = float(np.std(ref, ddof=1))
     out["sd"] = sd
-    out["z"] = float(current / sd) if sd > 0 else float("inf") * np.sign(current)
+    # No spread at all: any change is beyond it, no change is not (inf * 0 would be NaN and a RuntimeWarning).
+    out["z"] = float(current / sd) if sd > 0 else (float(np.sign(current)) * float("inf") if current else 0.0)
     out["share"] = float(np.mean(np.abs(ref) >= abs(current)))
     out["beyond"] = bool(abs(out["z"]) >= NOISE_Z)
     out["verdict"] = "beyond normal noise" if out["beyond"] else "within normal noise"
