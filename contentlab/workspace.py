@@ -235,6 +235,13 @@ class Workspace:
             )
         if db.exists() and not db.is_file():
             raise ContentlabError(f"{db} is not a file, so {path} is not a usable workspace.")
+        if db.is_file() and _empty_database(db):
+            # SQLite would take an empty file for a new database: a workspace cut to nothing would quietly
+            # start again, empty. Say so instead; only the user may decide to start afresh.
+            raise ContentlabError(
+                f"{path} is not a usable workspace: {db} is empty (0 bytes), as a copy or a crash that cut it short "
+                "leaves it. Restore it from a backup; to start a new workspace in this folder, delete that file first."
+            )
         created = False
         if not db.exists():
             if not create:
@@ -541,6 +548,17 @@ def not_usable(path: Path, exc: BaseException) -> str:
 def _is_corrupt(exc: sqlite3.DatabaseError) -> bool:
     text = str(exc).lower()
     return any(k in text for k in ("not a database", "malformed", "corrupt", "no such table", "file is encrypted"))
+
+
+def _empty_database(db: Path) -> bool:
+    """A database file of 0 bytes with no write-ahead log holding pages for it."""
+    try:
+        if db.stat().st_size:
+            return False
+        wal = db.with_name(db.name + "-wal")
+        return not (wal.exists() and wal.stat().st_size)
+    except OSError:
+        return False
 
 
 def _writable(path: Path, db: Path) -> bool:

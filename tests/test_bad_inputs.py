@@ -213,6 +213,18 @@ def test_refused_command_leaves_no_new_workspace(tmp_path, capsys, argv):
     assert not target.exists()
 
 
+@pytest.mark.parametrize("argv", [["drivers"], ["import", str(CORPUS / "posts.csv"), "--quiet"], ["settings", "--timezone", "UTC"]])
+def test_empty_database_file_is_not_taken_for_a_new_workspace(tmp_path, capsys, argv):
+    """A workspace.sqlite cut to 0 bytes was silently made a fresh, empty workspace (SQLite's default)."""
+    folder = tmp_path / "ws"
+    folder.mkdir()
+    (folder / "workspace.sqlite").write_bytes(b"")
+    code, _, err = run(capsys, argv + ["--workspace", str(folder)])
+    assert code == 2 and "is empty (0 bytes)" in err and "Restore it from a backup" in err, err
+    assert (folder / "workspace.sqlite").read_bytes() == b""
+    assert sorted(p.name for p in folder.iterdir()) == ["workspace.sqlite"]
+
+
 def test_workspace_path_that_is_a_file(tmp_path, capsys):
     path = tmp_path / "a-file"
     path.write_text("not a folder")
