@@ -120,6 +120,19 @@ def test_drafts_error_is_shown_in_place(client):
     assert "not a channel in your history" in r.text
 
 
+def test_more_drafts_than_the_page_takes_are_refused_not_cut(client, ws_dir):
+    """The drafts box used to score the first 200 lines and drop the rest without a word."""
+    lines = "\n".join(f"Opening hours for branch number {i}" for i in range(250))
+    r = client.post("/drafts/score", data={"headlines": lines, "channel": "newsletter"},
+                    headers={"HX-Request": "true", "X-CSRF-Token": csrf(client)})
+    assert r.status_code == 200 and "250 headlines: this page scores at most 200 at a time" in r.text
+    assert 'data-field="predicted_rate"' not in r.text
+    r = client.post("/drafts/experiment", data={"csrf_token": csrf(client), "name": "too-many", "headlines": lines,
+                                                "channel": "newsletter"}, follow_redirects=False)
+    assert r.status_code == 400 and "got 250" in r.text
+    assert client.get("/api/experiments/too-many").status_code == 404
+
+
 def test_turn_a_group_into_an_experiment(client, ws_dir):
     r = client.post("/drafts/experiment", data={"csrf_token": csrf(client), "name": "from-drafts",
                                                 "headlines": "\n".join(DRAFTS), "channel": "newsletter",
@@ -137,7 +150,7 @@ def test_experiment_next_split_sums_to_n(client):
     counts = [int(x.replace(",", "")) for x in re.findall(r'<td class="num">([\d,]+)</td>', r.text)]
     assert sum(counts) == 2000
     bad = client.get("/experiments/winter-reading?impressions=-3")
-    assert "whole number of at least 1" in bad.text
+    assert "whole number from 1 to 999,999,999" in bad.text
 
 
 def test_record_form_errors_beside_the_field_and_nothing_written(client, ws_dir):
