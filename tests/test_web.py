@@ -546,6 +546,20 @@ def test_serve_help_and_refusals(tmp_path, capsys):
     assert cli(["serve", "--token", "short", "--no-browser", "--workspace", str(tmp_path)]) == 2
 
 
+def test_serve_on_a_taken_port_is_one_line_and_exit_2(ws_dir, capsys):
+    """The server used to print the address, then stop with its own log line and exit code 3."""
+    import socket
+
+    with socket.socket() as holder:
+        holder.bind(("127.0.0.1", 0))
+        holder.listen()
+        port = holder.getsockname()[1]
+        code = cli(["serve", "--port", str(port), "--no-browser", "--workspace", str(ws_dir)])
+    out, err = capsys.readouterr()
+    assert code == 2 and f"port {port} on 127.0.0.1 is in use by another program" in err and "--port" in err
+    assert "Open http" not in out
+
+
 def test_workspace_without_a_model_says_what_to_do(tmp_path, write_csv):
     ws_path = tmp_path / "fresh"
     with Workspace.open(ws_path) as ws:
