@@ -25,7 +25,7 @@ from typing import Iterable, Iterator
 import numpy as np
 import pandas as pd
 
-from .errors import ContentlabError
+from .errors import ContentlabError, WorkspaceBusy, WorkspaceReadOnly
 
 DEFAULT_DIR = "contentlab-workspace"
 DB_NAME = "workspace.sqlite"
@@ -146,7 +146,7 @@ class WaitingConnection(sqlite3.Connection):
 
     def begin_immediate(self) -> None:
         if self.read_only:
-            raise ContentlabError(read_only_message(self.workspace_path))
+            raise WorkspaceReadOnly(read_only_message(self.workspace_path))
         limit = lock_wait_seconds()
         start = time.monotonic()
         told = False
@@ -164,7 +164,7 @@ class WaitingConnection(sqlite3.Connection):
                 self.execute(f"PRAGMA busy_timeout={int(LOCK_NOTICE_SECONDS * 1000)}")
             waited = time.monotonic() - start
             if waited >= limit:
-                raise ContentlabError(
+                raise WorkspaceBusy(
                     f"the workspace at {self.workspace_path} is busy: another contentlab command has been writing to "
                     f"it for over {limit:.0f} s. Nothing was written; try again when it has finished."
                 )

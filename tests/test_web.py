@@ -461,6 +461,33 @@ def test_unknown_api_path_and_method(client):
     assert r.status_code == 405 and "error" in r.json()
 
 
+def test_busy_or_read_only_workspace_is_not_called_bad_input(ws_dir, monkeypatch):
+    """Both were 400 ("your request is wrong"); a client should retry on 503 and stop on 403. Nothing is written."""
+    import sqlite3
+
+    import contentlab.workspace as workspace
+
+    monkeypatch.setenv("CONTENTLAB_LOCK_WAIT", "0.5")
+    body = {"results": [{"arm": "A", "impressions": 10, "clicks": 1, "event_id": "fault-1"}]}
+    before = totals(ws_dir, "winter-reading")
+    with TestClient(create_app(ws_dir), base_url="http://127.0.0.1", raise_server_exceptions=False) as c:
+        holder = sqlite3.connect(ws_dir / "workspace.sqlite")
+        holder.execute("BEGIN IMMEDIATE")
+        try:
+            r = c.post("/api/experiments/winter-reading/results", json=body)
+        finally:
+            holder.rollback()
+            holder.close()
+        assert r.status_code == 503 and "is busy" in r.json()["error"] and r.headers["retry-after"] == "5"
+    monkeypatch.setattr(workspace, "_writable", lambda path, db: False)
+    with TestClient(create_app(ws_dir), base_url="http://127.0.0.1", raise_server_exceptions=False) as c:
+        r = c.post("/api/experiments/winter-reading/results", json=body)
+        assert r.status_code == 403 and "is read-only" in r.json()["error"]
+        assert c.get("/api/experiments/winter-reading").status_code == 200
+    monkeypatch.undo()
+    assert totals(ws_dir, "winter-reading") == before
+
+
 def test_unexpected_error_is_json_without_trace(ws_dir, monkeypatch):
     from contentlab.web import services
 

@@ -2,8 +2,9 @@
 
 Every error is ``{"error": message}`` with 400 (bad input), 404 (no such
 experiment), 409 (conflicts with the workspace's state, e.g. a stopped
-experiment), 413 (body too large), 415 (not JSON) or 401 (no access token);
-never a stack trace. Writes take ``Content-Type: application/json``.
+experiment), 413 (body too large), 415 (not JSON), 401 (no access token),
+403 (read-only workspace) or 503 (workspace busy, with Retry-After); never a
+stack trace. Writes take ``Content-Type: application/json``.
 """
 
 from __future__ import annotations

@@ -242,7 +242,10 @@ def _records(frame) -> list[dict]:
 
 
 def user_error(exc: ContentlabError) -> ApiError:
-    """A library refusal as an API error: 409 when it conflicts with the workspace's state, else 400."""
+    """A library refusal as an API error: 409 when it conflicts with the workspace's state, 503 when another
+    command holds the workspace (try again), 403 when it is read-only, else 400."""
     text = str(exc)
+    if exc.http_status != 400:
+        return ApiError(text, exc.http_status)
     conflict = ("exists already" in text or "was stopped" in text)
     return ApiError(text, 409 if conflict else 400)
