@@ -80,10 +80,11 @@ def import_history(
     out_file = None
     if skip_bad and len(history.rejected):
         # Written before the transaction, so a file we cannot write leaves the workspace as it was.
-        out = rejected_path(path)
         from .safety import write_csv
 
+        out = rejected_path(path)
         try:
+            out = _unclobbered(out, history.rejected)
             write_csv(history.rejected, out)
         except OSError as exc:
             raise ContentlabError(f"{out}: cannot write the rejected rows ({exc.strerror}); nothing was imported.") from None
@@ -101,6 +102,26 @@ def import_history(
         str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file, repeated,
         tuple(history.ignored_columns),
     )
+
+
+def _unclobbered(out: Path, rejected) -> Path:
+    """``out``, unless a different file holds that name (rows the user is fixing, say): then the first free
+    ``NAME-2.csv``, ``NAME-3.csv``, ... An identical earlier file (the same import again) is simply rewritten."""
+    import io
+
+    from .safety import write_csv
+
+    if not out.exists():
+        return out
+    text = io.StringIO()
+    write_csv(rejected, text)
+    if out.is_file() and out.read_bytes() == text.getvalue().encode("utf-8"):
+        return out
+    stem = out.name[: -len(".csv")]
+    n = 2
+    while out.with_name(f"{stem}-{n}.csv").exists():
+        n += 1
+    return out.with_name(f"{stem}-{n}.csv")
 
 
 # Files above this size show progress bars (about 30,000 posts).
