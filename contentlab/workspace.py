@@ -175,7 +175,14 @@ class WaitingConnection(sqlite3.Connection):
 
 
 def resolve_dir(directory: str | os.PathLike | None) -> Path:
-    """``--workspace`` if given, else ``$CONTENTLAB_WORKSPACE``, else ./contentlab-workspace."""
+    """``--workspace`` if given, else ``$CONTENTLAB_WORKSPACE``, else ./contentlab-workspace.
+
+    An empty ``--workspace ""`` (an unset shell variable, say) is refused rather than taken for the default
+    folder, where it would quietly make or change another workspace.
+    """
+    if directory is not None and not str(directory).strip():
+        raise ContentlabError('--workspace is empty: give the workspace folder, or leave the option out for '
+                              '$CONTENTLAB_WORKSPACE or ./contentlab-workspace.')
     if directory:
         return Path(directory)
     env = os.environ.get("CONTENTLAB_WORKSPACE")

@@ -225,6 +225,17 @@ def test_empty_database_file_is_not_taken_for_a_new_workspace(tmp_path, capsys, 
     assert sorted(p.name for p in folder.iterdir()) == ["workspace.sqlite"]
 
 
+@pytest.mark.parametrize("argv", [["import", str(CORPUS / "posts.csv"), "--quiet", "--workspace", ""],
+                                  ["--workspace", "", "settings", "--timezone", "UTC"],
+                                  ["demo", "--workspace", " "]])
+def test_empty_workspace_option_is_refused_not_taken_for_the_default(tmp_path, capsys, monkeypatch, argv):
+    """--workspace "$UNSET" used to fall back to ./contentlab-workspace (or ./demo-workspace) and write there."""
+    monkeypatch.chdir(tmp_path)
+    code, _, err = run(capsys, argv)
+    assert code == 2 and "--workspace is empty" in err, err
+    assert list(tmp_path.iterdir()) == []
+
+
 def test_workspace_path_that_is_a_file(tmp_path, capsys):
     path = tmp_path / "a-file"
     path.write_text("not a folder")

@@ -129,7 +129,7 @@ def explain_failure(exc: Exception, workspace=None) -> tuple[str, int]:
 
     from ..workspace import not_usable, read_only_message, resolve_dir
 
-    where = resolve_dir(workspace)
+    where = resolve_dir(workspace or None)
     text = str(exc)
     if isinstance(exc, sqlite3.OperationalError):
         low = text.lower()
