@@ -31,6 +31,7 @@ import hashlib
 import io
 import math
 import re
+import unicodedata
 import zlib
 from collections.abc import Sequence
 from pathlib import Path
@@ -396,7 +397,10 @@ def long_cells(cells: pd.Series, column: str, limit: int, noun: str) -> list[tup
 # ------------------------------------------------------------------ drafts
 
 def _name_key(name: object) -> str:
-    return re.sub(r"[\s_\-.]+", "", str(name).casefold())
+    """A header as compared: no case, spaces, '_', '-', '.', nor invisible format characters (a zero-width
+    space or a stray byte-order mark pasted in with the name)."""
+    text = "".join(ch for ch in str(name) if unicodedata.category(ch) != "Cf")
+    return re.sub(r"[\s_\-.]+", "", text.casefold())
 
 
 def known_names(columns: Sequence[str], known: Sequence[str]) -> dict[str, str]:

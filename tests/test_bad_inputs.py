@@ -357,6 +357,7 @@ def test_results_after_a_stop_are_kept_and_the_summary_says_so(ws, capsys):
     ("Arm,Impressions,Clicks,Event ID", "A,40,2,batch-9"),
     ("arm,impressions,clicks,event-id", "A,40,2,batch-9"),
     ("ARM,IMPRESSIONS,CLICKS,EventId", "A,40,2,batch-9"),
+    ("arm\u200b,impressions,clicks,\ufeffevent_id", "A,40,2,batch-9"),  # invisible characters pasted in with names
 ])
 def test_known_column_in_another_spelling_is_read_not_skipped(ws, tmp_path, capsys, header, cells):
     """'Event ID' was skipped without a word, and with it the id that makes a replay harmless."""
