@@ -45,6 +45,7 @@ MIN_BASE_BLOCKS = 2          # a past comparison needs posts in at least 2 of it
 MIN_NOISE_REF = 8            # fewer past changes than this: too little history to judge noise
 NOISE_Z = 2.0                # |z| >= 2 counts as beyond normal noise (common practice)
 TREND_BLOCKS = 26            # weeks shown in the trend chart
+MAX_RANGE_DAYS = 731         # longest --from/--to range: two years (its 56 earlier blocks stay on the calendar)
 PRIOR_BLOCKS = 52            # history used for the empirical-Bayes prior of each channel
 RESIDUAL_BLOCKS = 26         # history used for the no-model fallback prediction and its spread
 RESIDUAL_Z = 2.5             # |z| >= 2.5 flags a post or day as unusual (common practice: 2 to 3)
@@ -155,6 +156,10 @@ def resolve_period(
         b = end if isinstance(end, date) else parse_day(end, "--to")
         if b < a:
             raise ContentlabError(f"--to {b} is before --from {a}; swap them.")
+        if (b - a).days + 1 > MAX_RANGE_DAYS:  # the period is compared with up to 56 like it before it
+            raise ContentlabError(
+                f"--from {a} --to {b} spans {(b - a).days + 1:,} days; a report covers at most {MAX_RANGE_DAYS} days "
+                "(two years), because it compares the period with the ones before it. Choose a shorter range.")
         if a.isoweekday() == 1 and (b - a).days == 6:
             return Period(a, b, iso_label(a), "week", "the dates you asked for (one ISO week)")
         return Period(a, b, f"{a.isoformat()}_to_{b.isoformat()}", "range", "the dates you asked for")

@@ -100,6 +100,8 @@ CASES = [
     ("day/month date in report --from", {}, ["report", "--from", "03/12/2026", "--to", "2026-12-09", "--out", "{tmp}/out"],
      "--from: '03/12/2026' is a day/month form"),
     ("year 2300 in report --week", {}, ["report", "--week", "2300-W02", "--out", "{tmp}/out"], "year 2300 is outside"),
+    ("report range of centuries", {}, ["report", "--from", "2026-01-01", "--to", "2199-01-01", "--out", "{tmp}/out"],
+     "spans 63,188 days; a report covers at most 731 days (two years)"),  # was OverflowError, "unexpected error"
     ("column map that is a folder", {"map.toml/keep": b""}, ["import", str(CORPUS / "posts.csv"), "--map", "{tmp}/map.toml"],
      "is a folder; give the column map's .toml file"),
     ("column map that is not UTF-8", {"map.toml": b'[columns]\npost_id = "Ident\xe9"\n'},
