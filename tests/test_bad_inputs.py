@@ -544,3 +544,35 @@ def test_any_time_text_is_read_or_refused_with_a_reason(text):
         assert pd.Timestamp(parsed.stored[0]).year in range(1969, 2202)  # a local time near a year's edge may cross it in UTC
     else:
         assert text.strip()[:20] in parsed.errors[0] or len(text.strip()) > 40
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(header=st.lists(st.sampled_from(["arm", "Arm", "impressions", "clicks", "at", "event_id", "Event ID", "note",
+                                        "headline", "channel", "publish_at", "time", "group", "", "arm"]),
+                       min_size=0, max_size=6),
+       rows=st.lists(st.lists(CELL, min_size=0, max_size=7), min_size=0, max_size=5),
+       delimiter=st.sampled_from([",", ";", "\t"]),
+       wrap=st.sampled_from(["plain", "gzip", "damaged gzip", "bom", "utf-16"]))
+def test_any_results_or_drafts_file_is_read_or_refused_with_a_message(tmp_path_factory, header, rows, delimiter, wrap):
+    """Results and drafts files, like exports: rows or a ContentlabError, never another exception."""
+    import gzip
+
+    from contentlab.errors import ContentlabError
+    from contentlab.readers import check_results, prepare_drafts, read_drafts, read_results
+
+    text = "\n".join([delimiter.join(header)] + [delimiter.join(r) for r in rows])
+    raw = text.encode("utf-16") if wrap == "utf-16" else text.encode("utf-8", errors="replace")
+    if wrap == "bom":
+        raw = b"\xef\xbb\xbf" + raw
+    elif wrap == "gzip":
+        raw = gzip.compress(raw)
+    elif wrap == "damaged gzip":
+        raw = gzip.compress(raw)[:10] + b"\xff" * 20  # a valid header, then a block zlib cannot read
+    path = tmp_path_factory.mktemp("fuzz-files") / "f.csv"
+    path.write_bytes(raw)
+    for read, check in ((read_results, lambda f: check_results(f, ["A", "B"], "Europe/London", source=str(path))),
+                        (read_drafts, lambda f: prepare_drafts(f, "Europe/London", source=str(path)))):
+        try:
+            check(read(path))
+        except ContentlabError as exc:
+            assert str(exc)

@@ -689,3 +689,29 @@ def test_prob_best_timeline_uses_the_experiments_own_prior(template_ws, tmp_path
     last = insight.prob_best_timeline(WorkspaceState(target), "winter-reading", st)["points"][-1]
     for arm, p in zip(st.arms["arm"], st.arms["prob_best"]):
         assert last["prob_best"][arm] == pytest.approx(p, abs=0.04)
+
+
+# ------------------------------------------------------------------ built for the kind, not the case
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+JSON_LEAF = st.one_of(st.none(), st.booleans(), st.integers(min_value=-(10**30), max_value=10**30),
+                      st.floats(allow_nan=False, allow_infinity=False), st.text(max_size=30),
+                      st.sampled_from(["A", "B", "", "newsletter", "2026-12-03T09:00", "03/12/2026", "1,234", "9e999"]))
+JSON_VALUE = st.recursive(JSON_LEAF, lambda inner: st.one_of(
+    st.lists(inner, max_size=4), st.dictionaries(st.sampled_from(
+        ["drafts", "results", "impressions", "policy", "suggest", "cumulative", "headline", "channel", "publish_at",
+         "group", "arm", "clicks", "at", "event_id", "x"]), inner, max_size=5)), max_leaves=12)
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(path=st.sampled_from(["/api/score", "/api/experiments/winter-reading/next",
+                             "/api/experiments/winter-reading/results"]), body=JSON_VALUE)
+def test_any_json_body_gets_an_answer_or_a_4xx_never_a_500(client, path, body):
+    """Whatever JSON a client sends, the API answers it or says what is wrong: never a 500 or a trace."""
+    r = client.post(path, content=json.dumps(body).encode(), headers={"content-type": "application/json"})
+    assert r.status_code < 500, (body, r.text[:300])
+    payload = r.json()
+    assert (r.status_code == 200) != ("error" in payload), payload
+    assert "Traceback" not in r.text
