@@ -258,9 +258,11 @@ def _check_one_delimiter(path, frame: pd.DataFrame, delimiter: str) -> None:
     width = frame.shape[1]
     if width < 2 or frame.empty:
         return
-    lone = frame.iloc[:, 1:].eq("").all(axis=1).to_numpy()
+    lone = frame.iloc[:, 1].to_numpy() == ""  # the second cell first: on a good file this settles it
     if not lone.any():
         return
+    if width > 2:
+        lone &= frame.iloc[:, 2:].eq("").all(axis=1).to_numpy()
     first = frame.iloc[:, 0].astype(str)
     for other, name in _DELIMITER_NAMES.items():
         if other == delimiter:
