@@ -453,6 +453,36 @@ def test_disk_full_says_so_and_writes_nothing(ws, tmp_path, capsys, monkeypatch)
     assert workspace_digest(ws) == before  # ...and rolled back
 
 
+@pytest.mark.parametrize("target, argv", [
+    ("contentlab.workspace.Workspace.upsert_posts", ["import", "{tmp}/f.csv", "--quiet"]),
+    ("contentlab.workspace.Workspace.record_import", ["import", "{tmp}/f.csv", "--quiet"]),
+    ("contentlab.experiments._sync_posts", ["record", "laser", "--arm", "A", "--impressions", "9", "--clicks", "1"]),
+    ("contentlab.modelfile.dumps", ["learn", "--bootstrap", "0", "--no-meaning", "--quiet"]),
+])
+def test_ctrl_c_inside_a_write_leaves_the_workspace_as_it_was(ws, tmp_path, capsys, monkeypatch, target, argv):
+    """Simulated: KeyboardInterrupt raised after part of the write was done inside its transaction."""
+    import importlib
+
+    module_name, _, attr = target.rpartition(".")
+    try:
+        owner = importlib.import_module(module_name)
+    except ModuleNotFoundError:  # a class: module.Class.method
+        module_name, _, cls = module_name.rpartition(".")
+        owner = getattr(importlib.import_module(module_name), cls)
+    real = getattr(owner, attr)
+
+    def interrupted(*args, **kwargs):
+        real(*args, **kwargs)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(owner, attr, interrupted)
+    (tmp_path / "f.csv").write_text(HEAD + GOOD.replace("p1", "new1"), encoding="utf-8")
+    before = workspace_digest(ws)
+    code, _, err = run(capsys, [a.replace("{tmp}", str(tmp_path)) for a in argv] + ["--workspace", str(ws)])
+    assert code == 130 and "interrupted; nothing more was written" in err
+    assert workspace_digest(ws) == before
+
+
 def test_locked_workspace_waits_visibly_then_gives_a_clear_error(ws, capsys, monkeypatch):
     monkeypatch.setenv("CONTENTLAB_LOCK_WAIT", "1.5")
     holder = sqlite3.connect(ws / "workspace.sqlite")
