@@ -116,7 +116,7 @@ def read_table(path: Path, mapping: dict[str, str]) -> tuple[pd.DataFrame, list[
             f"{path}: row {header_row(frame)} (header), more than one column would be read as {', '.join(repeated)}. "
             "Rename or remove the extra column, or map only one of them."
         )
-    return frame, unused_columns(frame.columns, KNOWN)
+    return frame, unused_columns(frame, KNOWN)
 
 
 # --------------------------------------------------------------- validation

@@ -136,7 +136,6 @@ _SIGNATURES = (
     (b"PK\x05\x06", "an empty ZIP archive"),
     (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1", "an Excel 97-2003 (.xls) workbook or another Office file"),
     (b"%PDF-", "a PDF document"),
-    (b"PAR1", "a Parquet file"),
     (b"SQLite format 3\x00", "an SQLite database"),
 )
 
@@ -415,9 +414,17 @@ def known_names(columns: Sequence[str], known: Sequence[str]) -> dict[str, str]:
     return {c: keys[_name_key(c)] for c in columns if _name_key(c) in keys and c != keys[_name_key(c)]}
 
 
-def unused_columns(columns: Sequence[str], known: Sequence[str]) -> list[str]:
-    """Headers contentlab does not read (a blank header read as '(unnamed column N)' is not listed)."""
-    return [c for c in columns if c not in known and c != "row" and not str(c).startswith("(unnamed column")]
+def unused_columns(frame: pd.DataFrame, known: Sequence[str]) -> list[str]:
+    """Columns of ``frame`` contentlab does not read; a column without a header ('(unnamed column N)') only when
+    it holds something (an export's trailing delimiter makes an empty one)."""
+    out = []
+    for j, c in enumerate(frame.columns):
+        if c in known or c == "row":
+            continue
+        if str(c).startswith("(unnamed column") and not (frame.iloc[:, j].astype(str).str.strip() != "").any():
+            continue
+        out.append(str(c))
+    return out
 
 
 def _canonical_columns(frame: pd.DataFrame, path, known: Sequence[str], aliases: dict[str, Sequence[str]]) -> pd.DataFrame:

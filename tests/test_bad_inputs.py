@@ -391,11 +391,12 @@ def test_two_spellings_of_one_column_are_refused(ws, tmp_path, capsys, files, ar
 def test_columns_not_read_are_named(ws, tmp_path, capsys):
     """Nothing a user gave is dropped without a word: columns contentlab does not read are listed."""
     export = tmp_path / "f.csv"
-    export.write_text("Post ID,Published At,Headline,Impressions,Clicks,Link clicks\np1,2026-03-02,Hello there,10,1,1\n",
-                      encoding="utf-8")
+    export.write_text("Post ID,Published At,Headline,Impressions,Clicks,Link clicks,,\n"
+                      "p1,2026-03-02,Hello there,10,1,1,,\np2,2026-03-02,Hello again,10,1,1,kept?,\n", encoding="utf-8")
     code, out, err = run(capsys, ["import", str(export), "--quiet", "--workspace", str(ws)])
     assert code == 0, err
-    assert "1 added" in out and "not read: column(s) 'Link clicks'" in out
+    # A column without a header is named only when it holds something (a trailing delimiter makes an empty one).
+    assert "2 added" in out and "not read: column(s) 'Link clicks', '(unnamed column 7)' (" in out
     results = tmp_path / "r.csv"
     results.write_text("arm,impressions,clicks,note\nA,10,1,from the newsletter tool\n", encoding="utf-8")
     code, out, err = run(capsys, ["record", "laser", "--input", str(results), "--workspace", str(ws)])

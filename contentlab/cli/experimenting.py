@@ -387,7 +387,7 @@ def cmd_record(args: argparse.Namespace) -> int:
         if args.input:
             frame = read_results(args.input)
             summary = record_results(ws, args.name, frame, cumulative=args.cumulative, source_file=args.input)
-            unused = unused_columns(frame.columns, RESULT_COLUMNS)
+            unused = unused_columns(frame, RESULT_COLUMNS)
         else:
             row = {"arm": args.arm, "impressions": args.impressions, "clicks": args.clicks}
             if args.at is not None:
