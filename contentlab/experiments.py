@@ -1155,8 +1155,6 @@ def stop_experiment(ws: Workspace, name: str, *, winner: str | None = None) -> d
     status = experiment_status(ws, name)
     if winner is None:
         winner = status.decision.leader
-    elif winner not in arms:
-        raise ContentlabError(f"Unknown arm '{winner}' for experiment {name}; its arms are: {', '.join(arms)}.")
     settings = dict(exp["settings"])
     settings.update(
         winner=winner, stopped_at=now_utc(), stop_reason=status.decision.reason,
