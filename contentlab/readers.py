@@ -91,6 +91,9 @@ def file_bytes(path: Path, instead_of_a_folder: str) -> bytes:
         raise ContentlabError(f"{path}: is a folder; give {instead_of_a_folder}.") from None
     except PermissionError:
         raise ContentlabError(f"{path}: cannot be read (permission denied).") from None
+    except OSError as exc:  # a symbolic-link loop, a name too long, a device that fails to read...
+        raise ContentlabError(f"{path}: cannot be read ({exc.strerror or exc}); check the path, or copy the file "
+                              "somewhere plain and give that copy.") from None
 
 
 def read_bytes(path: str | Path) -> tuple[bytes, str]:

@@ -154,6 +154,8 @@ CASES = [
     ("flat prior and a prior strength together", {},
      ["experiment", "new", "both", "Draft one here", "Draft two here", "--flat-prior", "--prior-strength", "50"],
      "give --flat-prior (every arm starts at Beta(1, 1)) or --prior-strength S"),
+    ("file name longer than the system allows", {}, ["import", "{tmp}/" + "x" * 300 + ".csv"],
+     "cannot be read (File name too long); check the path"),
     ("bootstrap refits beyond any use", {}, ["learn", "--bootstrap", "100000000"],  # was "ran out of memory"
      "--bootstrap must be from 0 to 5,000; got 100,000,000"),
 ]
