@@ -130,7 +130,21 @@ def read_bytes(path: str | Path) -> tuple[bytes, str]:
             f"{path}: row {line} holds a NUL byte (\\0), which no CSV export contains; the file may be damaged "
             "or not a CSV file. Export it again as CSV."
         )
-    return raw, "utf-8" if _is_utf8(raw) else "cp1252"
+    if _is_utf8(raw):
+        return raw, "utf-8"
+    unused = _CP1252_UNUSED.search(raw)
+    if unused:  # neither UTF-8 nor cp1252: read as cp1252 its text would be silently garbled
+        line = raw.count(b"\n", 0, unused.start()) + 1
+        raise ContentlabError(
+            f"{path}: row {line} holds a byte (0x{raw[unused.start()]:02X}) that neither UTF-8 nor Windows-1252 text "
+            "uses, so the file is in another encoding (Shift-JIS, GBK, Mac Roman, ...) and its text would be read "
+            "garbled. Save it as CSV UTF-8 (in a spreadsheet: Save As, 'CSV UTF-8') and try again."
+        )
+    return raw, "cp1252"
+
+
+# The five byte values Windows-1252 leaves undefined: no cp1252 (or latin-1) text file holds them.
+_CP1252_UNUSED = re.compile(rb"[\x81\x8d\x8f\x90\x9d]")
 
 
 # Leading bytes of files people pick by mistake instead of the CSV (their formats' published signatures).

@@ -77,6 +77,9 @@ CASES = [
     ("unbalanced quote", {"f.csv": (HEAD + GOOD + 'p2,2026-03-02,"Unclosed,10,1,blog\n' + GOOD.replace("p1", "p3")).encode()},
      ["import", "{tmp}/f.csv"], "row 3: a quote (\") opens a cell that never closes"),
     ("UTF-16 file", {"f.csv": (HEAD + GOOD).encode("utf-16")}, ["import", "{tmp}/f.csv"], "is encoded as UTF-16"),
+    # Read as cp1252 (the fallback), Shift-JIS text was stored garbled without a word.
+    ("Shift-JIS file", {"f.csv": (HEAD + GOOD + "p2,2026-03-02,冬の読書チャレンジ,10,1,blog\n").encode("shift_jis")},
+     ["import", "{tmp}/f.csv"], "row 3 holds a byte (0x8F) that neither UTF-8 nor Windows-1252 text uses"),
     ("count above 2^53", {"f.csv": (HEAD + "p1,2026-03-02,Hello,9007199254740993,1,blog\n").encode()},
      ["import", "{tmp}/f.csv"], "9007199254740993 is too large to be a count"),
     ("year 2300 at import", {"f.csv": (HEAD + "p1,2300-03-02,Hello,10,1,blog\n").encode()},
