@@ -1293,7 +1293,7 @@ def end_plan(ws: Workspace, exp: dict, now: str | None = None) -> dict | None:
             "left": None, "budget": None, "passed": bool(now_ts >= end_ts)}
     if not rows:
         return plan
-    times = pd.to_datetime(pd.Series([at for at, _ in rows]), utc=True, format="ISO8601")
+    times = _stored_times(pd.Series([at for at, _ in rows]), exp["name"])
     counts = np.array([float(n) for _, n in rows])
     # Results within a few minutes of the first are one round (arms recorded one command at a time).
     first_round = (times <= times.min() + pd.Timedelta(minutes=FIRST_ROUND_MINUTES)).to_numpy()
@@ -1833,7 +1833,7 @@ def _drift_warning(ws: Workspace, name: str, names: list[str], discount: float) 
     )
     if obs.empty:
         return None
-    obs["_t"] = pd.to_datetime(obs["at"], format="ISO8601", utc=True)
+    obs["_t"] = _stored_times(obs["at"], name)
     found = []
     tested = 0
     for arm, part in obs.sort_values(["_t"], kind="stable").groupby("arm", sort=False):
@@ -1888,6 +1888,19 @@ def _load(ws: Workspace, name: str) -> dict:
                                 "Restore the workspace from a backup; its results and arms are still stored."),
         "arms": arms,
     }
+
+
+def _stored_times(values: pd.Series, name: str) -> pd.Series:
+    """Results' stored times (UTC, written only by contentlab); one that cannot be read means a damaged database."""
+    times = pd.to_datetime(values, format="ISO8601", utc=True, errors="coerce")
+    bad = times.isna().to_numpy() & values.notna().to_numpy()
+    if bad.any():
+        raise ContentlabError(
+            f"Experiment {name} holds {int(bad.sum())} result(s) whose stored time cannot be read "
+            f"('{str(values[bad].iloc[0])[:40]}'); the workspace database was changed outside contentlab or is "
+            "damaged. Restore it from a backup."
+        )
+    return times
 
 
 def _settings_or_none(text) -> dict:
@@ -1950,7 +1963,7 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
         else:
             # Equivalent to one update_many per round in time order: a round r
             # rounds before the last weighs discount ** r.
-            t = pd.to_datetime(obs["at"], format="ISO8601", utc=True)
+            t = _stored_times(obs["at"], exp["name"])
             rank = t.rank(method="dense").to_numpy() - 1
             weight = discount ** (rank.max() - rank)
             index = {a: i for i, a in enumerate(names)}

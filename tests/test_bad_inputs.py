@@ -289,6 +289,8 @@ DAMAGED_STATE = [
      "is not a usable workspace: {ws}/workspace.sqlite cannot be read as a contentlab database (its schema version 'two' is not a number)"),
     ("stored post time unreadable", "UPDATE posts SET published_at = 'garbage' WHERE post_id = (SELECT MIN(post_id) FROM posts)",
      "post(s) whose stored time cannot be read"),
+    ("stored result time unreadable", "UPDATE observations SET at = 'garbage'",
+     "Experiment laser holds 1 result(s) whose stored time cannot be read ('garbage')"),
 ]
 DAMAGED_READERS = {
     "model summary not JSON": [["score", "A new reading room", "--channel", "newsletter"], ["drivers"]],
@@ -302,6 +304,7 @@ DAMAGED_READERS = {
     "schema version not a number": [["settings"], ["drivers"], ["experiment", "list"]],
     "stored post time unreadable": [["features", "--quiet"], ["learn", "--bootstrap", "0", "--quiet"],
                                     ["report", "--out", "{tmp}/out"]],
+    "stored result time unreadable": [["experiment", "status", "laser"], ["report", "--out", "{tmp}/out"]],
 }
 
 
