@@ -67,7 +67,7 @@ from .bandit import (
 from .errors import ContentlabError
 from .features import clean_headline
 from .ingest import _short
-from .workspace import Workspace, now_utc
+from .workspace import Workspace, now_utc, stored_json
 
 __all__ = [
     "Allocation",
@@ -1052,7 +1052,7 @@ def create_experiment(
 def _cached_choice(ws: Workspace, model_id: int) -> PriorChoice | None:
     """Reuse the strength chosen for another experiment with the same model (the replay is the slow part)."""
     for (text,) in ws.conn.execute("SELECT settings FROM experiments ORDER BY created_at DESC"):
-        prior = json.loads(text).get("prior") or {}
+        prior = _settings_or_none(text).get("prior") or {}
         if prior.get("model_id") == model_id and prior.get("source") in ("model", "flat") and prior.get("eb_strength") is not None:
             known = {f.name for f in fields(PriorChoice)}
             kept = {k: v for k, v in prior.items() if k in known}
@@ -1089,7 +1089,7 @@ def _learned_prior(ws: Workspace, inputs) -> LearnedPrior | None:
     cells = json.dumps([list(tests.columns)] + tests.astype(str).values.tolist())
     key = _digest(cells + f"\x1e{None if inputs is None else inputs[2]}")
     for (text,) in ws.conn.execute("SELECT settings FROM experiments ORDER BY created_at DESC LIMIT 50"):
-        got = (json.loads(text).get("prior") or {}).get("learned")
+        got = (_settings_or_none(text).get("prior") or {}).get("learned")
         if (got and got.get("history_key") == key and got.get("prior_width") == LEARNED_PRIOR_WIDTH
                 and got.get("typical_impressions")):
             known = {f.name for f in fields(LearnedPrior)}
@@ -1166,11 +1166,13 @@ def stop_experiment(ws: Workspace, name: str, *, winner: str | None = None) -> d
     """Mark ``name`` stopped (``next`` then refuses); ``winner`` defaults to the current leader."""
     exp = _load(ws, name)
     arms = exp["arms"]["arm"].tolist()
+    if winner is not None and winner not in arms:
+        raise ContentlabError(f"Unknown arm '{winner}' for experiment {name}; its arms are: {', '.join(arms)}.")
+    if exp["status"] == "stopped":
+        return _change_winner(ws, exp, winner)
     status = experiment_status(ws, name)
     if winner is None:
         winner = status.decision.leader
-    elif winner not in arms:
-        raise ContentlabError(f"Unknown arm '{winner}' for experiment {name}; its arms are: {', '.join(arms)}.")
     settings = dict(exp["settings"])
     settings.update(
         winner=winner, stopped_at=now_utc(), stop_reason=status.decision.reason,
@@ -1182,6 +1184,23 @@ def stop_experiment(ws: Workspace, name: str, *, winner: str | None = None) -> d
             "UPDATE experiments SET status='stopped', settings=? WHERE name=?", (json.dumps(settings), name)
         )
     return {"experiment": name, "winner": winner, "decision": status.decision, "stopped_early": not status.decision.stop}
+
+
+def _change_winner(ws: Workspace, exp: dict, winner: str | None) -> dict:
+    """Stopping a stopped experiment again changes nothing, unless another winner is named: then only the winner
+    changes, and when and why it was stopped are kept (the first winner too, as ``winner_before``)."""
+    name, settings = exp["name"], dict(exp["settings"])
+    before = settings.get("winner")
+    when = str(settings.get("stopped_at", ""))[:10] or "an earlier day"
+    if winner is None or winner == before:
+        raise ContentlabError(
+            f"Experiment {name} was stopped on {when}{' with ' + before + ' as the winner' if before else ''}; "
+            f"nothing changed. To name another winner: contentlab experiment stop {name} --winner ARM."
+        )
+    settings.update(winner=winner, winner_before=before, winner_changed_at=now_utc())
+    with ws.conn:
+        ws.conn.execute("UPDATE experiments SET settings=? WHERE name=?", (json.dumps(settings), name))
+    return {"experiment": name, "winner": winner, "decision": None, "stopped_early": False, "winner_before": before}
 
 
 # --------------------------------------------------------------------------
@@ -1292,7 +1311,7 @@ def end_plan(ws: Workspace, exp: dict, now: str | None = None) -> dict | None:
             "left": None, "budget": None, "passed": bool(now_ts >= end_ts)}
     if not rows:
         return plan
-    times = pd.to_datetime(pd.Series([at for at, _ in rows]), utc=True, format="ISO8601")
+    times = _stored_times(pd.Series([at for at, _ in rows]), exp["name"])
     counts = np.array([float(n) for _, n in rows])
     # Results within a few minutes of the first are one round (arms recorded one command at a time).
     first_round = (times <= times.min() + pd.Timedelta(minutes=FIRST_ROUND_MINUTES)).to_numpy()
@@ -1618,8 +1637,17 @@ def _record_locked(ws, exp, clean, cumulative, source_file, kinds, single) -> Re
         derived_ids=int(sum(k != "given" for k in kinds)),
         event_ids=tuple(it[0] for it in items) if len(items) <= 20 else (),
         cumulative=cumulative,
-        notes=tuple(_record_notes(kinds, skipped, in_input, single)),
+        notes=tuple(_record_notes(kinds, skipped, in_input, single)) + _stopped_note(exp, len(items)),
     )
+
+
+def _stopped_note(exp: dict, added: int) -> tuple[str, ...]:
+    """Results that arrive after a stop are kept (real results are never dropped); the summary says so."""
+    if exp["status"] != "stopped" or not added:
+        return ()
+    winner = exp["settings"].get("winner")
+    return (f"{exp['name']} was stopped{' with ' + winner + ' as the winner' if winner else ''}; these results are "
+            "added to its totals (its winner stays as it was).",)
 
 
 def _rows_text(rows: list[int], limit: int = 8) -> str:
@@ -1887,7 +1915,7 @@ def _drift_warning(ws: Workspace, name: str, names: list[str], discount: float) 
     )
     if obs.empty:
         return None
-    obs["_t"] = pd.to_datetime(obs["at"], format="ISO8601", utc=True)
+    obs["_t"] = _stored_times(obs["at"], name)
     found = []
     tested = 0
     for arm, part in obs.sort_values(["_t"], kind="stable").groupby("arm", sort=False):
@@ -1938,8 +1966,32 @@ def _load(ws: Workspace, name: str) -> dict:
     arms["prior_strength"] = arms["prior_strength"].astype(float)
     return {
         "name": row[0], "created_at": row[1], "channel": row[2], "status": row[3],
-        "settings": json.loads(row[4] or "{}"), "arms": arms,
+        "settings": stored_json(row[4], f"Experiment {row[0]} in the workspace at {ws.path}",
+                                "Restore the workspace from a backup; its results and arms are still stored."),
+        "arms": arms,
     }
+
+
+def _stored_times(values: pd.Series, name: str) -> pd.Series:
+    """Results' stored times (UTC, written only by contentlab); one that cannot be read means a damaged database."""
+    times = pd.to_datetime(values, format="ISO8601", utc=True, errors="coerce")
+    bad = times.isna().to_numpy() & values.notna().to_numpy()
+    if bad.any():
+        raise ContentlabError(
+            f"Experiment {name} holds {int(bad.sum())} result(s) whose stored time cannot be read "
+            f"('{str(values[bad].iloc[0])[:40]}'); the workspace database was changed outside contentlab or is "
+            "damaged. Restore it from a backup."
+        )
+    return times
+
+
+def _settings_or_none(text) -> dict:
+    """Another experiment's settings, read only to reuse a cached choice: a damaged one is skipped, not fatal."""
+    try:
+        value = json.loads(text or "{}")
+    except (TypeError, ValueError):
+        return {}
+    return value if isinstance(value, dict) else {}
 
 
 def _totals(ws: Workspace, name: str, names: list[str]) -> pd.DataFrame:
@@ -1993,7 +2045,7 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
         else:
             # Equivalent to one update_many per round in time order: a round r
             # rounds before the last weighs discount ** r.
-            t = pd.to_datetime(obs["at"], format="ISO8601", utc=True)
+            t = _stored_times(obs["at"], exp["name"])
             rank = t.rank(method="dense").to_numpy() - 1
             weight = discount ** (rank.max() - rank)
             index = {a: i for i, a in enumerate(names)}

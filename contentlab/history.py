@@ -7,6 +7,7 @@ from pathlib import Path
 
 from .errors import ContentlabError
 from .ingest import READ_STEPS, History, format_problems, read_history
+from .readers import short
 from .workspace import Workspace
 
 
@@ -20,6 +21,7 @@ class ImportSummary:
     rejected: int
     rejected_file: str | None = None
     repeated: int = 0  # rows identical to an earlier row of the same file (same post_id and values)
+    unused: tuple[str, ...] = ()  # columns of the file that contentlab does not read
 
     def line(self) -> str:
         text = (
@@ -30,6 +32,9 @@ class ImportSummary:
             text += f", {self.repeated} repeated (identical to an earlier row of the file, counted once)"
         if self.rejected_file:
             text += f" (see {self.rejected_file})"
+        if self.unused:
+            shown = ", ".join(f"'{short(c)}'" for c in self.unused[:8]) + (" ..." if len(self.unused) > 8 else "")
+            text += f"; not read: column(s) {shown} (the README lists the columns contentlab reads)"
         return text
 
 
@@ -75,10 +80,11 @@ def import_history(
     out_file = None
     if skip_bad and len(history.rejected):
         # Written before the transaction, so a file we cannot write leaves the workspace as it was.
-        out = rejected_path(path)
         from .safety import write_csv
 
+        out = rejected_path(path)
         try:
+            out = _unclobbered(out, history.rejected)
             write_csv(history.rejected, out)
         except OSError as exc:
             raise ContentlabError(f"{out}: cannot write the rejected rows ({exc.strerror}); nothing was imported.") from None
@@ -93,8 +99,29 @@ def import_history(
             storing.close()
     repeated = history.rows_read - len(history.posts) - len(history.rejected)
     return ImportSummary(
-        str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file, repeated
+        str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file, repeated,
+        tuple(history.ignored_columns),
     )
+
+
+def _unclobbered(out: Path, rejected) -> Path:
+    """``out``, unless a different file holds that name (rows the user is fixing, say): then the first free
+    ``NAME-2.csv``, ``NAME-3.csv``, ... An identical earlier file (the same import again) is simply rewritten."""
+    import io
+
+    from .safety import write_csv
+
+    if not out.exists():
+        return out
+    text = io.StringIO()
+    write_csv(rejected, text)
+    if out.is_file() and out.read_bytes() == text.getvalue().encode("utf-8"):
+        return out
+    stem = out.name[: -len(".csv")]
+    n = 2
+    while out.with_name(f"{stem}-{n}.csv").exists():
+        n += 1
+    return out.with_name(f"{stem}-{n}.csv")
 
 
 # Files above this size show progress bars (about 30,000 posts).

@@ -16,7 +16,8 @@ import pandas as pd
 
 from .errors import ContentlabError
 from .features import clean_headline
-from .readers import MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, file_bytes, header_row, long_cells, read_cells
+from .readers import (MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, file_bytes, header_row, known_names,
+                      long_cells, read_cells, unused_columns)
 from .readers import read_bytes, sniff_delimiter  # noqa: F401  (their home is readers; kept importable here)
 from .readers import short as _short
 from .timeparse import parse_datetimes
@@ -108,16 +109,14 @@ def read_table(path: Path, mapping: dict[str, str]) -> tuple[pd.DataFrame, list[
             )
         rename[theirs] = ours
     frame = frame.rename(columns=rename)
-    lowered = {c: c.lower() for c in frame.columns if c not in rename.values() and c.lower() in KNOWN}
-    frame = frame.rename(columns=lowered)
+    frame = frame.rename(columns=known_names([c for c in frame.columns if c not in rename.values()], KNOWN))
     repeated = sorted({c for c in frame.columns if list(frame.columns).count(c) > 1})
     if repeated:
         raise ContentlabError(
             f"{path}: row {header_row(frame)} (header), more than one column would be read as {', '.join(repeated)}. "
             "Rename or remove the extra column, or map only one of them."
         )
-    ignored = [c for c in frame.columns if c not in KNOWN]
-    return frame, ignored
+    return frame, unused_columns(frame, KNOWN)
 
 
 # --------------------------------------------------------------- validation
@@ -227,10 +226,11 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
         given = (raw_cost != "").to_numpy()
         bad_cost = given & ~np.isfinite(parsed)
         for i in np.flatnonzero(bad_cost):
-            found.append((i, "cost", f"'{_short(raw_cost.iat[i])}' is not a finite number"))
+            found.append((i, "cost", f"'{_short(raw_cost.iat[i])}' is not a finite number; write the cost as a plain "
+                                     "number without a currency sign (e.g. 12.50), or leave the cell empty"))
         neg = given & np.isfinite(parsed) & (parsed < 0)
         for i in np.flatnonzero(neg):
-            found.append((i, "cost", f"{raw_cost.iat[i]} is negative"))
+            found.append((i, "cost", f"{_short(raw_cost.iat[i])} is negative; a cost cannot be below 0"))
         cost = np.where(given & ~bad_cost & ~neg, parsed, np.nan)
 
     clean = pd.DataFrame(

@@ -198,7 +198,12 @@ class WordingVocabulary:
 
         vec = CountVectorizer(analyzer=_WORDING[analyzer], binary=True, dtype=np.float64,
                               max_features=max_features or None)
-        matrix = vec.fit_transform(texts).tocsr()
+        try:
+            matrix = vec.fit_transform(texts).tocsr()
+        except ValueError:  # not one word in any headline (emoji only, say): the block has no columns
+            if any(_WORDING[analyzer](str(t)) for t in texts):
+                raise
+            return cls(analyzer, []), sp.csr_matrix((len(texts), 0))
         return cls(analyzer, vec.get_feature_names_out()), matrix
 
     def get_feature_names_out(self) -> np.ndarray:

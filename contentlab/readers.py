@@ -31,6 +31,8 @@ import hashlib
 import io
 import math
 import re
+import unicodedata
+import zlib
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -58,6 +60,7 @@ __all__ = [
     "check_results",
     "count_cells",
     "file_digest",
+    "known_names",
     "long_cells",
     "prepare_drafts",
     "read_bytes",
@@ -66,6 +69,7 @@ __all__ = [
     "read_results",
     "short",
     "sniff_delimiter",
+    "unused_columns",
 ]
 
 
@@ -87,6 +91,9 @@ def file_bytes(path: Path, instead_of_a_folder: str) -> bytes:
         raise ContentlabError(f"{path}: is a folder; give {instead_of_a_folder}.") from None
     except PermissionError:
         raise ContentlabError(f"{path}: cannot be read (permission denied).") from None
+    except OSError as exc:  # a symbolic-link loop, a name too long, a device that fails to read...
+        raise ContentlabError(f"{path}: cannot be read ({exc.strerror or exc}); check the path, or copy the file "
+                              "somewhere plain and give that copy.") from None
 
 
 def read_bytes(path: str | Path) -> tuple[bytes, str]:
@@ -100,8 +107,14 @@ def read_bytes(path: str | Path) -> tuple[bytes, str]:
     if raw[:2] == b"\x1f\x8b":
         try:
             raw = gzip.decompress(raw)
-        except (OSError, EOFError) as exc:
-            raise ContentlabError(f"{path}: looks gzip-compressed but cannot be read ({exc}).") from None
+        except (OSError, EOFError, zlib.error) as exc:  # zlib.error: a damaged compressed block
+            raise ContentlabError(
+                f"{path}: looks gzip-compressed but cannot be read ({exc}); the file is damaged or was cut short. "
+                "Copy or download it again, or give the uncompressed CSV."
+            ) from None
+    kind = _not_a_csv(raw)
+    if kind:
+        raise ContentlabError(f"{path}: is {kind}, not a CSV file; save or export it as CSV UTF-8 and try again.")
     if raw.startswith(b"\xef\xbb\xbf"):
         return raw[3:], "utf-8"
     wide = _wide_encoding(raw)
@@ -117,7 +130,36 @@ def read_bytes(path: str | Path) -> tuple[bytes, str]:
             f"{path}: row {line} holds a NUL byte (\\0), which no CSV export contains; the file may be damaged "
             "or not a CSV file. Export it again as CSV."
         )
-    return raw, "utf-8" if _is_utf8(raw) else "cp1252"
+    if _is_utf8(raw):
+        return raw, "utf-8"
+    unused = _CP1252_UNUSED.search(raw)
+    if unused:  # neither UTF-8 nor cp1252: read as cp1252 its text would be silently garbled
+        line = raw.count(b"\n", 0, unused.start()) + 1
+        raise ContentlabError(
+            f"{path}: row {line} holds a byte (0x{raw[unused.start()]:02X}) that neither UTF-8 nor Windows-1252 text "
+            "uses, so the file is in another encoding (Shift-JIS, GBK, Mac Roman, ...) and its text would be read "
+            "garbled. Save it as CSV UTF-8 (in a spreadsheet: Save As, 'CSV UTF-8') and try again."
+        )
+    return raw, "cp1252"
+
+
+# The five byte values Windows-1252 leaves undefined: no cp1252 (or latin-1) text file holds them.
+_CP1252_UNUSED = re.compile(rb"[\x81\x8d\x8f\x90\x9d]")
+
+
+# Leading bytes of files people pick by mistake instead of the CSV (their formats' published signatures).
+_SIGNATURES = (
+    (b"PK\x03\x04", "a ZIP archive (an Excel .xlsx workbook is one too)"),
+    (b"PK\x05\x06", "an empty ZIP archive"),
+    (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1", "an Excel 97-2003 (.xls) workbook or another Office file"),
+    (b"%PDF-", "a PDF document"),
+    (b"SQLite format 3\x00", "an SQLite database"),
+)
+
+
+def _not_a_csv(raw: bytes) -> str | None:
+    """What a file is when its first bytes say it is a known non-CSV format, else None."""
+    return next((kind for magic, kind in _SIGNATURES if raw.startswith(magic)), None)
 
 
 def _wide_encoding(raw: bytes) -> str | None:
@@ -213,10 +255,41 @@ def read_cells(path: str | Path, what: str = "file") -> pd.DataFrame:
         blank = (frame == "").all(axis=1)
         if blank.any():
             frame = frame.loc[~blank.to_numpy()]
+    _check_one_delimiter(path, frame, delimiter)
     frame.attrs["source"] = str(path)
     frame.attrs["digest"] = file_digest(whole)
     frame.attrs["header_row"] = 1 + skipped
     return frame
+
+
+_DELIMITER_NAMES = {",": "commas", ";": "semicolons", "\t": "tabs"}
+
+
+def _check_one_delimiter(path, frame: pd.DataFrame, delimiter: str) -> None:
+    """Refuse a file whose rows use another delimiter than its header (all of a row's cells land in its first).
+
+    Read as it is, such a row would be reported as empty dates and counts, which sends the user to the
+    wrong fix.
+    """
+    width = frame.shape[1]
+    if width < 2 or frame.empty:
+        return
+    lone = frame.iloc[:, 1].to_numpy() == ""  # the second cell first: on a good file this settles it
+    if not lone.any():
+        return
+    if width > 2:
+        lone &= frame.iloc[:, 2:].eq("").all(axis=1).to_numpy()
+    first = frame.iloc[:, 0].astype(str)
+    for other, name in _DELIMITER_NAMES.items():
+        if other == delimiter:
+            continue
+        split = lone & (first.str.count(re.escape(other)).to_numpy() >= width - 1)
+        if split.any():
+            line = int(frame.index[np.flatnonzero(split)[0]])
+            raise ContentlabError(
+                f"{path}: row {line} separates its cells with {name} but the header row uses "
+                f"{_DELIMITER_NAMES[delimiter]}; export the file again with one delimiter throughout."
+            )
 
 
 def header_row(frame: pd.DataFrame) -> int:
@@ -309,9 +382,9 @@ def count_cells(cells: pd.Series, column: str) -> tuple[np.ndarray, np.ndarray, 
     for i in np.flatnonzero(named_nan):
         problems.append((i, column, "is NaN; write the real count"))
     for i in np.flatnonzero(nonnum):
-        problems.append((i, column, f"'{short(raw.iat[i])}' is not a number"))
+        problems.append((i, column, f"'{short(raw.iat[i])}' is not a number; {_count_hint(raw.iat[i])}"))
     for i in np.flatnonzero(infinite):
-        problems.append((i, column, f"'{short(raw.iat[i])}' is infinite"))
+        problems.append((i, column, f"'{short(raw.iat[i])}' is infinite; write the real count"))
     for i in np.flatnonzero(negative):
         problems.append((i, column, f"{short(raw.iat[i])} is negative; counts cannot be below 0"))
     for i in np.flatnonzero(fractional):
@@ -323,6 +396,15 @@ def count_cells(cells: pd.Series, column: str) -> tuple[np.ndarray, np.ndarray, 
     return clean, bad, problems
 
 
+def _count_hint(text: str) -> str:
+    """What to write instead of a count that is not a number."""
+    if text.endswith("%"):
+        return "give the count itself, not a percentage"
+    if re.fullmatch(r"[+-]?\d{1,3}([,.' \u00a0\u202f]\d{3})+", text):
+        return "write it without thousands separators (e.g. 1234)"
+    return "write a whole number in digits (e.g. 1234)"
+
+
 def long_cells(cells: pd.Series, column: str, limit: int, noun: str) -> list[tuple[int, str, str]]:
     """Problems for cells longer than ``limit`` characters."""
     lengths = cells.astype(str).str.len().to_numpy()
@@ -332,9 +414,47 @@ def long_cells(cells: pd.Series, column: str, limit: int, noun: str) -> list[tup
 
 # ------------------------------------------------------------------ drafts
 
+def _name_key(name: object) -> str:
+    """A header as compared: no case, spaces, '_', '-', '.', nor invisible format characters (a zero-width
+    space or a stray byte-order mark pasted in with the name)."""
+    text = "".join(ch for ch in str(name) if unicodedata.category(ch) != "Cf")
+    return re.sub(r"[\s_\-.]+", "", text.casefold())
+
+
+def known_names(columns: Sequence[str], known: Sequence[str]) -> dict[str, str]:
+    """``{header: contentlab name}`` for headers that name a known column in another spelling.
+
+    Case, spaces, ``-``, ``_`` and ``.`` do not matter: ``Event ID``, ``event-id`` and ``EventId`` are
+    ``event_id``. Such a column used to be skipped without a word (and with it, say, every row's event id).
+    """
+    keys = {_name_key(k): k for k in known}
+    return {c: keys[_name_key(c)] for c in columns if _name_key(c) in keys and c != keys[_name_key(c)]}
+
+
+def unused_columns(frame: pd.DataFrame, known: Sequence[str]) -> list[str]:
+    """Columns of ``frame`` contentlab does not read; a column without a header ('(unnamed column N)') only when
+    it holds something (an export's trailing delimiter makes an empty one)."""
+    out = []
+    for j, c in enumerate(frame.columns):
+        if c in known or c == "row":
+            continue
+        if str(c).startswith("(unnamed column") and not (frame.iloc[:, j].astype(str).str.strip() != "").any():
+            continue
+        out.append(str(c))
+    return out
+
+
 def _canonical_columns(frame: pd.DataFrame, path, known: Sequence[str], aliases: dict[str, Sequence[str]]) -> pd.DataFrame:
-    """Lower-case known column names and map aliases; refuse two columns that mean the same."""
-    rename = {c: c.lower() for c in frame.columns if c.lower() in known or any(c.lower() in a for a in aliases.values())}
+    """Known column names in any spelling (:func:`known_names`) and aliases; refuse two columns that mean the same."""
+    names = list(known) + [a for group in aliases.values() for a in group]
+    rename = known_names(frame.columns, names)
+    for target in set(rename.values()):
+        same = [c for c in frame.columns if c == target or rename.get(c) == target]
+        if len(same) > 1:
+            raise ContentlabError(
+                f"{path}: row {header_row(frame)} (header), columns {', '.join(repr(c) for c in same)} are all read "
+                f"as {target}; keep one."
+            )
     frame = frame.rename(columns=rename)
     for target, names in aliases.items():
         present = [c for c in names if c in frame.columns]

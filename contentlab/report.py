@@ -45,6 +45,7 @@ MIN_BASE_BLOCKS = 2          # a past comparison needs posts in at least 2 of it
 MIN_NOISE_REF = 8            # fewer past changes than this: too little history to judge noise
 NOISE_Z = 2.0                # |z| >= 2 counts as beyond normal noise (common practice)
 TREND_BLOCKS = 26            # weeks shown in the trend chart
+MAX_RANGE_DAYS = 731         # longest --from/--to range: two years (its 56 earlier blocks stay on the calendar)
 PRIOR_BLOCKS = 52            # history used for the empirical-Bayes prior of each channel
 RESIDUAL_BLOCKS = 26         # history used for the no-model fallback prediction and its spread
 RESIDUAL_Z = 2.5             # |z| >= 2.5 flags a post or day as unusual (common practice: 2 to 3)
@@ -155,6 +156,10 @@ def resolve_period(
         b = end if isinstance(end, date) else parse_day(end, "--to")
         if b < a:
             raise ContentlabError(f"--to {b} is before --from {a}; swap them.")
+        if (b - a).days + 1 > MAX_RANGE_DAYS:  # the period is compared with up to 56 like it before it
+            raise ContentlabError(
+                f"--from {a} --to {b} spans {(b - a).days + 1:,} days; a report covers at most {MAX_RANGE_DAYS} days "
+                "(two years), because it compares the period with the ones before it. Choose a shorter range.")
         if a.isoweekday() == 1 and (b - a).days == 6:
             return Period(a, b, iso_label(a), "week", "the dates you asked for (one ISO week)")
         return Period(a, b, f"{a.isoformat()}_to_{b.isoformat()}", "range", "the dates you asked for")
@@ -300,7 +305,8 @@ def noise_check(frame: pd.DataFrame, period: Period) -> dict:
         return out
     sd = float(np.std(ref, ddof=1))
     out["sd"] = sd
-    out["z"] = float(current / sd) if sd > 0 else float("inf") * np.sign(current)
+    # No spread at all: any change is beyond it, no change is not (inf * 0 would be NaN and a RuntimeWarning).
+    out["z"] = float(current / sd) if sd > 0 else (float(np.sign(current)) * float("inf") if current else 0.0)
     out["share"] = float(np.mean(np.abs(ref) >= abs(current)))
     out["beyond"] = bool(abs(out["z"]) >= NOISE_Z)
     out["verdict"] = "beyond normal noise" if out["beyond"] else "within normal noise"
@@ -2096,7 +2102,7 @@ class ReportFiles:
 
 def write_report(report: WeeklyReport, out_dir: str | Path = "reports") -> ReportFiles:
     """Write ``<out>/contentlab-report-<period>.html`` and the tables behind it as CSV (neutralised)."""
-    from .safety import write_csv
+    from .safety import write_csv, write_text
 
     out = Path(out_dir)
     try:
@@ -2118,9 +2124,7 @@ def write_report(report: WeeklyReport, out_dir: str | Path = "reports") -> Repor
     for old in folder.glob("*.csv"):  # tables of an earlier run of the same period that this one did not write
         if old not in written:
             old.unlink()
-    tmp = path.with_suffix(".html.tmp")
-    tmp.write_text(html, encoding="utf-8")
-    tmp.replace(path)
+    write_text(path, html)  # whole or not at all, also when interrupted
     return ReportFiles(path, written)
 
 

@@ -13,7 +13,9 @@ break. :func:`write_csv` is the only way contentlab writes CSV (report tables,
 
 from __future__ import annotations
 
+import os
 import re
+from pathlib import Path
 from typing import IO
 
 import pandas as pd
@@ -57,4 +59,36 @@ def write_csv(frame: pd.DataFrame, target: str | IO[str], **to_csv_kwargs) -> No
     arguments go to :meth:`pandas.DataFrame.to_csv` (``index`` defaults to False).
     """
     to_csv_kwargs.setdefault("index", False)
-    neutralise_frame(frame).to_csv(target, lineterminator=LINE_TERMINATOR, **to_csv_kwargs)
+    clean = neutralise_frame(frame)
+    if not isinstance(target, (str, os.PathLike)):
+        clean.to_csv(target, lineterminator=LINE_TERMINATOR, **to_csv_kwargs)
+        return
+    with atomic_path(target) as tmp:
+        clean.to_csv(tmp, lineterminator=LINE_TERMINATOR, **to_csv_kwargs)
+
+
+class atomic_path:
+    """``with atomic_path(path) as tmp:`` write ``tmp``; on success it replaces ``path`` in one step (os.replace).
+
+    An error or Ctrl-C while writing leaves ``path`` as it was (an earlier file of that name intact) and removes
+    the half-written temporary file, so a reader never sees a cut-off file.
+    """
+
+    def __init__(self, path: str | os.PathLike):
+        self.path = Path(path)
+        self.tmp = self.path.with_name(f".{self.path.name}.{os.getpid()}.tmp")
+
+    def __enter__(self) -> Path:
+        return self.tmp
+
+    def __exit__(self, kind, value, trace) -> None:
+        if kind is None:
+            os.replace(self.tmp, self.path)
+        else:
+            self.tmp.unlink(missing_ok=True)
+
+
+def write_text(path: str | os.PathLike, text: str) -> None:
+    """Write a whole text file (UTF-8) through :class:`atomic_path`."""
+    with atomic_path(path) as tmp:
+        tmp.write_text(text, encoding="utf-8")

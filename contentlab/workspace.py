@@ -25,7 +25,7 @@ from typing import Iterable, Iterator
 import numpy as np
 import pandas as pd
 
-from .errors import ContentlabError
+from .errors import ContentlabError, WorkspaceBusy, WorkspaceReadOnly
 
 DEFAULT_DIR = "contentlab-workspace"
 DB_NAME = "workspace.sqlite"
@@ -146,7 +146,7 @@ class WaitingConnection(sqlite3.Connection):
 
     def begin_immediate(self) -> None:
         if self.read_only:
-            raise ContentlabError(read_only_message(self.workspace_path))
+            raise WorkspaceReadOnly(read_only_message(self.workspace_path))
         limit = lock_wait_seconds()
         start = time.monotonic()
         told = False
@@ -164,7 +164,7 @@ class WaitingConnection(sqlite3.Connection):
                 self.execute(f"PRAGMA busy_timeout={int(LOCK_NOTICE_SECONDS * 1000)}")
             waited = time.monotonic() - start
             if waited >= limit:
-                raise ContentlabError(
+                raise WorkspaceBusy(
                     f"the workspace at {self.workspace_path} is busy: another contentlab command has been writing to "
                     f"it for over {limit:.0f} s. Nothing was written; try again when it has finished."
                 )
@@ -175,7 +175,14 @@ class WaitingConnection(sqlite3.Connection):
 
 
 def resolve_dir(directory: str | os.PathLike | None) -> Path:
-    """``--workspace`` if given, else ``$CONTENTLAB_WORKSPACE``, else ./contentlab-workspace."""
+    """``--workspace`` if given, else ``$CONTENTLAB_WORKSPACE``, else ./contentlab-workspace.
+
+    An empty ``--workspace ""`` (an unset shell variable, say) is refused rather than taken for the default
+    folder, where it would quietly make or change another workspace.
+    """
+    if directory is not None and not str(directory).strip():
+        raise ContentlabError('--workspace is empty: give the workspace folder, or leave the option out for '
+                              '$CONTENTLAB_WORKSPACE or ./contentlab-workspace.')
     if directory:
         return Path(directory)
     env = os.environ.get("CONTENTLAB_WORKSPACE")
@@ -235,6 +242,13 @@ class Workspace:
             )
         if db.exists() and not db.is_file():
             raise ContentlabError(f"{db} is not a file, so {path} is not a usable workspace.")
+        if db.is_file() and _empty_database(db):
+            # SQLite would take an empty file for a new database: a workspace cut to nothing would quietly
+            # start again, empty. Say so instead; only the user may decide to start afresh.
+            raise ContentlabError(
+                f"{path} is not a usable workspace: {db} is empty (0 bytes), as a copy or a crash that cut it short "
+                "leaves it. Restore it from a backup; to start a new workspace in this folder, delete that file first."
+            )
         created = False
         if not db.exists():
             if not create:
@@ -291,7 +305,10 @@ class Workspace:
         if not has_meta:
             return 0
         row = self.conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
-        return int(row[0]) if row else 0
+        try:
+            return int(row[0]) if row else 0
+        except (TypeError, ValueError):  # answered as "not a usable workspace" by open()
+            raise sqlite3.DatabaseError(f"its schema version {str(row[0])[:40]!r} is not a number") from None
 
     def _migrate(self) -> None:
         version = self._version()
@@ -342,7 +359,17 @@ class Workspace:
 
     @property
     def timezone(self) -> str:
-        return self.setting("timezone", "UTC") or "UTC"
+        """The stored IANA time zone; one this computer does not know (a damaged setting, or older time-zone data) is refused."""
+        name = self.setting("timezone", "UTC") or "UTC"
+        try:
+            zoneinfo.ZoneInfo(name)
+        except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+            raise ContentlabError(
+                f"the workspace at {self.path} has the time zone '{str(name)[:60]}', which this computer does not know "
+                "(the setting is damaged, or this computer's time-zone data is older). Set it again with: contentlab "
+                "settings --timezone Europe/London (your zone); nothing else changes."
+            ) from None
+        return name
 
     # -------------------------------------------------------------- posts
     def existing_hashes(self, post_ids: Iterable[str]) -> dict[str, str]:
@@ -460,7 +487,9 @@ class Workspace:
         from .modelfile import loads
 
         model = loads(row[5], where=f"the workspace at {self.path}")
-        return model, json.loads(row[4])
+        from .modelfile import RELEARN
+
+        return model, stored_json(row[4], f"The model saved in the workspace at {self.path}", RELEARN)
 
 
 @contextmanager
@@ -495,6 +524,21 @@ def remove_new_workspace(folder: Path, remove_folder: bool) -> None:
             pass
 
 
+def stored_json(text, where: str, fix: str) -> dict:
+    """A JSON object stored in the workspace (settings, summaries), or a clear error when it is damaged.
+
+    ``where`` names what holds it ("The model saved in ..."), ``fix`` says how to recover.
+    """
+    try:
+        value = json.loads(text) if text else {}
+    except (TypeError, ValueError) as exc:
+        raise ContentlabError(f"{where} is damaged (what it stored is not valid JSON: {exc}). {fix}") from None
+    if not isinstance(value, dict):
+        raise ContentlabError(f"{where} is damaged (what it stored is a JSON {type(value).__name__}, "
+                              f"not an object). {fix}")
+    return value
+
+
 def read_only_message(path) -> str:
     """The one message for a write to a workspace the user may not change."""
     return (f"the workspace at {path} is read-only (its folder or database file cannot be written), and this "
@@ -513,6 +557,17 @@ def _is_corrupt(exc: sqlite3.DatabaseError) -> bool:
     return any(k in text for k in ("not a database", "malformed", "corrupt", "no such table", "file is encrypted"))
 
 
+def _empty_database(db: Path) -> bool:
+    """A database file of 0 bytes with no write-ahead log holding pages for it."""
+    try:
+        if db.stat().st_size:
+            return False
+        wal = db.with_name(db.name + "-wal")
+        return not (wal.exists() and wal.stat().st_size)
+    except OSError:
+        return False
+
+
 def _writable(path: Path, db: Path) -> bool:
     return os.access(path, os.W_OK) and os.access(db, os.W_OK)
 
@@ -525,15 +580,31 @@ def add_local_time(frame: pd.DataFrame, timezone: str) -> pd.DataFrame:
     local_date = pd.Series(pd.NaT, index=frame.index, dtype="datetime64[ns]")
     hour = np.full(len(frame), np.nan)
     if (~has_time).any():
-        local_date[~has_time] = pd.to_datetime(text[~has_time], format="%Y-%m-%d").to_numpy()
+        days = pd.to_datetime(text[~has_time], format="%Y-%m-%d", errors="coerce")
+        if days.isna().any():
+            _damaged_time(frame.loc[~has_time].loc[days.isna().to_numpy()])
+        local_date[~has_time] = days.to_numpy()
     if has_time.any():
-        stamps = pd.to_datetime(text[has_time], utc=True, format="ISO8601").dt.tz_convert(timezone)
+        stamps = pd.to_datetime(text[has_time], utc=True, format="ISO8601", errors="coerce")
+        if stamps.isna().any():
+            _damaged_time(frame.loc[has_time].loc[stamps.isna().to_numpy()])
+        stamps = stamps.dt.tz_convert(timezone)
         local_date[has_time] = stamps.dt.tz_localize(None).dt.normalize().to_numpy()
         hour[has_time] = (stamps.dt.hour + stamps.dt.minute / 60.0).to_numpy()
     frame["local_date"] = local_date
     frame["local_hour"] = hour
     frame["local_weekday"] = local_date.dt.day_of_week.astype(float).to_numpy()
     return frame
+
+
+def _damaged_time(bad: pd.DataFrame) -> None:
+    """Stored times are written only by contentlab; one it cannot read means the database was changed or damaged."""
+    pid = str(bad["post_id"].iat[0]) if "post_id" in bad else "?"
+    raise ContentlabError(
+        f"the workspace holds {len(bad)} post(s) whose stored time cannot be read (post '{pid[:60]}': "
+        f"'{str(bad['published_at'].iat[0])[:40]}'); its database was changed outside contentlab or is damaged. "
+        "Import the export holding those posts again (it rewrites their times), or restore the workspace from a backup."
+    )
 
 
 def _is_missing(value) -> bool:

@@ -51,6 +51,10 @@ def run(capsys, argv: list[str]) -> tuple[int, str, str]:
     return code, out, err
 
 
+# A gzip header followed by a compressed block of an invalid type (zlib: "invalid block type").
+DAMAGED_GZIP = b"\x1f\x8b\x08\x00\x00\x00\x00\x00\x00\x03" + b"\xff" * 40
+
+
 def big_id() -> str:
     return "x" * 100_000
 
@@ -73,6 +77,9 @@ CASES = [
     ("unbalanced quote", {"f.csv": (HEAD + GOOD + 'p2,2026-03-02,"Unclosed,10,1,blog\n' + GOOD.replace("p1", "p3")).encode()},
      ["import", "{tmp}/f.csv"], "row 3: a quote (\") opens a cell that never closes"),
     ("UTF-16 file", {"f.csv": (HEAD + GOOD).encode("utf-16")}, ["import", "{tmp}/f.csv"], "is encoded as UTF-16"),
+    # Read as cp1252 (the fallback), Shift-JIS text was stored garbled without a word.
+    ("Shift-JIS file", {"f.csv": (HEAD + GOOD + "p2,2026-03-02,冬の読書チャレンジ,10,1,blog\n").encode("shift_jis")},
+     ["import", "{tmp}/f.csv"], "row 3 holds a byte (0x8F) that neither UTF-8 nor Windows-1252 text uses"),
     ("count above 2^53", {"f.csv": (HEAD + "p1,2026-03-02,Hello,9007199254740993,1,blog\n").encode()},
      ["import", "{tmp}/f.csv"], "9007199254740993 is too large to be a count"),
     ("year 2300 at import", {"f.csv": (HEAD + "p1,2300-03-02,Hello,10,1,blog\n").encode()},
@@ -96,6 +103,8 @@ CASES = [
     ("day/month date in report --from", {}, ["report", "--from", "03/12/2026", "--to", "2026-12-09", "--out", "{tmp}/out"],
      "--from: '03/12/2026' is a day/month form"),
     ("year 2300 in report --week", {}, ["report", "--week", "2300-W02", "--out", "{tmp}/out"], "year 2300 is outside"),
+    ("report range of centuries", {}, ["report", "--from", "2026-01-01", "--to", "2199-01-01", "--out", "{tmp}/out"],
+     "spans 63,188 days; a report covers at most 731 days (two years)"),  # was OverflowError, "unexpected error"
     ("column map that is a folder", {"map.toml/keep": b""}, ["import", str(CORPUS / "posts.csv"), "--map", "{tmp}/map.toml"],
      "is a folder; give the column map's .toml file"),
     ("column map that is not UTF-8", {"map.toml": b'[columns]\npost_id = "Ident\xe9"\n'},
@@ -113,7 +122,7 @@ CASES = [
     ("report on a week in the future", {}, ["report", "--week", "2199-W02", "--out", "{tmp}/out"],
      "nothing to report: week 2199-W02 has not begun yet"),
     ("record: non-numeric clicks", {"r.csv": b"arm,impressions,clicks\nA,10,x\n"},
-     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'clicks': 'x' is not a number; nothing was recorded."),
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'clicks': 'x' is not a number; write a whole number in digits (e.g. 1234); nothing was recorded."),
     ("record: unknown arm", {"r.csv": b"arm,impressions,clicks\nQ,10,1\n"},
      ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'arm': 'Q' is not an arm of laser"),
     ("record: event id reused with other values", {},
@@ -121,6 +130,37 @@ CASES = [
      "--event-id: event id 'b1' is already recorded with different values (A: 300 impressions, 5 clicks)"),
     ("demo over a user's workspace", {}, ["demo", "--workspace", "{ws}", "--out", "{tmp}/out"],
      "holds a contentlab workspace that the demo did not create"),
+    # A damaged gzip stream raises zlib.error, not OSError: it was an "unexpected error" for every reader.
+    ("damaged gzip export", {"f.csv.gz": DAMAGED_GZIP}, ["import", "{tmp}/f.csv.gz"],
+     "f.csv.gz: looks gzip-compressed but cannot be read"),
+    ("damaged gzip results", {"r.csv.gz": DAMAGED_GZIP}, ["record", "laser", "--input", "{tmp}/r.csv.gz"],
+     "r.csv.gz: looks gzip-compressed but cannot be read"),
+    ("damaged gzip drafts", {"d.csv.gz": DAMAGED_GZIP}, ["score", "--input", "{tmp}/d.csv.gz"],
+     "d.csv.gz: looks gzip-compressed but cannot be read"),
+    ("workbook (.xlsx is a ZIP) given as the export", {"f.xlsx": b"PK\x03\x04" + bytes(range(256)) * 4},
+     ["import", "{tmp}/f.xlsx"], "is a ZIP archive (an Excel .xlsx workbook is one too), not a CSV file"),
+    ("Excel 97-2003 workbook as results", {"r.xls": b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1" + bytes(500)},
+     ["record", "laser", "--input", "{tmp}/r.xls"], "is an Excel 97-2003 (.xls) workbook"),
+    ("PDF given as drafts", {"d.pdf": b"%PDF-1.7\n%\xe2\xe3\xcf\xd3\n1 0 obj\n"}, ["score", "--input", "{tmp}/d.pdf"],
+     "is a PDF document, not a CSV file"),
+    # Read as they are, such rows gave "published_at is empty" and "write 0": the wrong fix.
+    ("rows split by semicolons under a comma header", {"f.csv": (HEAD + GOOD.replace(",", ";")).encode()},
+     ["import", "{tmp}/f.csv"], "row 2 separates its cells with semicolons but the header row uses commas"),
+    ("rows split by commas under a semicolon header", {"r.csv": b"arm;impressions;clicks\nA,10,1\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2 separates its cells with commas but the header row uses semicolons"),
+    ("count with a thousands separator", {"f.csv": (HEAD + 'p1,2026-03-02,Hello,"1,234",1,blog\n').encode()},
+     ["import", "{tmp}/f.csv"], "'1,234' is not a number; write it without thousands separators (e.g. 1234)"),
+    ("count given as a percentage", {"r.csv": b"arm,impressions,clicks\nA,100,12%\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "'12%' is not a number; give the count itself, not a percentage"),
+    ("cost with a currency sign", {"f.csv": (HEAD.strip() + ",cost\n" + GOOD.strip() + ",$12\n").encode()},
+     ["import", "{tmp}/f.csv"], "'$12' is not a finite number; write the cost as a plain number without a currency sign"),
+    ("flat prior and a prior strength together", {},
+     ["experiment", "new", "both", "Draft one here", "Draft two here", "--flat-prior", "--prior-strength", "50"],
+     "give --flat-prior (every arm starts at Beta(1, 1)) or --prior-strength S"),
+    ("file name longer than the system allows", {}, ["import", "{tmp}/" + "x" * 300 + ".csv"],
+     "cannot be read (File name too long); check the path"),
+    ("bootstrap refits beyond any use", {}, ["learn", "--bootstrap", "100000000"],  # was "ran out of memory"
+     "--bootstrap must be from 0 to 5,000; got 100,000,000"),
 ]
 
 
@@ -180,6 +220,29 @@ def test_refused_command_leaves_no_new_workspace(tmp_path, capsys, argv):
     assert not target.exists()
 
 
+@pytest.mark.parametrize("argv", [["drivers"], ["import", str(CORPUS / "posts.csv"), "--quiet"], ["settings", "--timezone", "UTC"]])
+def test_empty_database_file_is_not_taken_for_a_new_workspace(tmp_path, capsys, argv):
+    """A workspace.sqlite cut to 0 bytes was silently made a fresh, empty workspace (SQLite's default)."""
+    folder = tmp_path / "ws"
+    folder.mkdir()
+    (folder / "workspace.sqlite").write_bytes(b"")
+    code, _, err = run(capsys, argv + ["--workspace", str(folder)])
+    assert code == 2 and "is empty (0 bytes)" in err and "Restore it from a backup" in err, err
+    assert (folder / "workspace.sqlite").read_bytes() == b""
+    assert sorted(p.name for p in folder.iterdir()) == ["workspace.sqlite"]
+
+
+@pytest.mark.parametrize("argv", [["import", str(CORPUS / "posts.csv"), "--quiet", "--workspace", ""],
+                                  ["--workspace", "", "settings", "--timezone", "UTC"],
+                                  ["demo", "--workspace", " "]])
+def test_empty_workspace_option_is_refused_not_taken_for_the_default(tmp_path, capsys, monkeypatch, argv):
+    """--workspace "$UNSET" used to fall back to ./contentlab-workspace (or ./demo-workspace) and write there."""
+    monkeypatch.chdir(tmp_path)
+    code, _, err = run(capsys, argv)
+    assert code == 2 and "--workspace is empty" in err, err
+    assert list(tmp_path.iterdir()) == []
+
+
 def test_workspace_path_that_is_a_file(tmp_path, capsys):
     path = tmp_path / "a-file"
     path.write_text("not a folder")
@@ -208,6 +271,144 @@ def test_corrupt_or_truncated_database_is_not_a_usable_workspace(base, tmp_path,
     assert code == 2 and "Traceback" not in err
     assert "is not a usable workspace" in err
     assert db.read_bytes() == before
+
+
+# What can be damaged inside a readable database (a crash of another tool, a hand edit, an older time-zone
+# database), the SQL that simulates it, and the words of the message; every command that reads it must say
+# what is wrong and how to recover, never "unexpected error", and change nothing.
+DAMAGED_STATE = [
+    ("model summary not JSON", "UPDATE models SET summary = '{not json'",
+     "The model saved in the workspace at {ws} is damaged (what it stored is not valid JSON"),
+    ("experiment settings not JSON", "UPDATE experiments SET settings = '{broken'",
+     "Experiment laser in the workspace at {ws} is damaged (what it stored is not valid JSON"),
+    ("experiment settings a JSON list", "UPDATE experiments SET settings = '[]'",
+     "Experiment laser in the workspace at {ws} is damaged (what it stored is a JSON list, not an object)"),
+    ("time zone this computer does not know", "UPDATE meta SET value = 'Mars/Olympus' WHERE key = 'timezone'",
+     "has the time zone 'Mars/Olympus', which this computer does not know"),
+    ("schema version not a number", "UPDATE meta SET value = 'two' WHERE key = 'schema_version'",
+     "is not a usable workspace: {ws}/workspace.sqlite cannot be read as a contentlab database (its schema version 'two' is not a number)"),
+    ("stored post time unreadable", "UPDATE posts SET published_at = 'garbage' WHERE post_id = (SELECT MIN(post_id) FROM posts)",
+     "post(s) whose stored time cannot be read"),
+    ("stored result time unreadable", "UPDATE observations SET at = 'garbage'",
+     "Experiment laser holds 1 result(s) whose stored time cannot be read ('garbage')"),
+]
+DAMAGED_READERS = {
+    "model summary not JSON": [["score", "A new reading room", "--channel", "newsletter"], ["drivers"]],
+    "experiment settings not JSON": [["experiment", "status", "laser"], ["experiment", "next", "laser"],
+                                     ["experiment", "list"], ["record", "laser", "--arm", "A", "--impressions", "5",
+                                                              "--clicks", "1"]],
+    "experiment settings a JSON list": [["experiment", "status", "laser"], ["report", "--out", "{tmp}/out"]],
+    "time zone this computer does not know": [["settings"], ["learn", "--bootstrap", "0", "--quiet"],
+                                              ["record", "laser", "--arm", "A", "--impressions", "5", "--clicks", "1"],
+                                              ["score", "A new reading room", "--channel", "newsletter"]],
+    "schema version not a number": [["settings"], ["drivers"], ["experiment", "list"]],
+    "stored post time unreadable": [["features", "--quiet"], ["learn", "--bootstrap", "0", "--quiet"],
+                                    ["report", "--out", "{tmp}/out"]],
+    "stored result time unreadable": [["experiment", "status", "laser"], ["report", "--out", "{tmp}/out"]],
+}
+
+
+@pytest.mark.parametrize("kind, sql, words, argv", [
+    (kind, sql, words, argv) for kind, sql, words in DAMAGED_STATE for argv in DAMAGED_READERS[kind]
+], ids=[f"{kind}: {' '.join(argv[:2])}" for kind, _, _ in DAMAGED_STATE for argv in DAMAGED_READERS[kind]])
+def test_damaged_workspace_state_says_what_and_how_to_recover(ws, tmp_path, capsys, kind, sql, words, argv):
+    conn = sqlite3.connect(ws / "workspace.sqlite")
+    conn.execute(sql)
+    conn.commit()
+    conn.close()
+    before = workspace_digest(ws)
+    args = [a.replace("{tmp}", str(tmp_path)) for a in argv] + ["--workspace", str(ws)]
+    code, _, err = run(capsys, args)
+    assert code == 2, err
+    assert "unexpected error" not in err and "Traceback" not in err
+    assert words.replace("{ws}", str(ws)) in " ".join(err.split()), err
+    assert any(fix in err for fix in ("`contentlab learn` again", "Restore", "restore", "settings --timezone", "Import the export"))
+    assert workspace_digest(ws) == before
+
+
+def test_unknown_time_zone_is_repaired_by_setting_it_again(ws, capsys):
+    conn = sqlite3.connect(ws / "workspace.sqlite")
+    conn.execute("UPDATE meta SET value = 'Mars/Olympus' WHERE key = 'timezone'")
+    conn.commit()
+    conn.close()
+    code, out, err = run(capsys, ["settings", "--timezone", "Europe/London", "--workspace", str(ws)])
+    assert code == 0 and "Europe/London" in out, err
+    assert run(capsys, ["experiment", "status", "laser", "--workspace", str(ws)])[0] == 0
+
+
+def test_stopping_a_stopped_experiment_keeps_its_winner_and_time(ws, capsys):
+    """A second stop used to overwrite the winner the user chose with the current leader, and the stop time."""
+    assert run(capsys, ["experiment", "stop", "laser", "--winner", "B", "--workspace", str(ws)])[0] == 0
+    before = workspace_digest(ws)
+    code, _, err = run(capsys, ["experiment", "stop", "laser", "--workspace", str(ws)])
+    assert code == 2 and "was stopped on" in err and "with B as the winner; nothing changed" in err, err
+    assert workspace_digest(ws) == before
+    code, out, _ = run(capsys, ["experiment", "stop", "laser", "--winner", "A", "--workspace", str(ws)])
+    assert code == 0 and "its winner is now A (was B)" in out
+    from contentlab.experiments import _load
+    from contentlab.workspace import Workspace
+
+    with Workspace.open(ws, create=False) as opened_ws:
+        settings = _load(opened_ws, "laser")["settings"]
+    assert settings["winner"] == "A" and settings["winner_before"] == "B" and "stopped_at" in settings
+
+
+def test_results_after_a_stop_are_kept_and_the_summary_says_so(ws, capsys):
+    """Real results are never dropped: a late batch of a stopped test is recorded, with a note."""
+    assert run(capsys, ["experiment", "stop", "laser", "--winner", "B", "--workspace", str(ws)])[0] == 0
+    code, out, err = run(capsys, ["record", "laser", "--arm", "A", "--impressions", "40", "--clicks", "2",
+                                  "--event-id", "late-1", "--workspace", str(ws)])
+    assert code == 0, err
+    assert "1 recorded (+40 impressions, +2 clicks)" in out
+    assert "laser was stopped with B as the winner; these results are added to its totals" in " ".join(out.split())
+
+
+@pytest.mark.parametrize("header, cells", [
+    ("Arm,Impressions,Clicks,Event ID", "A,40,2,batch-9"),
+    ("arm,impressions,clicks,event-id", "A,40,2,batch-9"),
+    ("ARM,IMPRESSIONS,CLICKS,EventId", "A,40,2,batch-9"),
+    ("arm\u200b,impressions,clicks,\ufeffevent_id", "A,40,2,batch-9"),  # invisible characters pasted in with names
+])
+def test_known_column_in_another_spelling_is_read_not_skipped(ws, tmp_path, capsys, header, cells):
+    """'Event ID' was skipped without a word, and with it the id that makes a replay harmless."""
+    path = tmp_path / "r.csv"
+    path.write_text(f"{header}\n{cells}\n", encoding="utf-8")
+    assert run(capsys, ["record", "laser", "--input", str(path), "--workspace", str(ws)])[0] == 0
+    path.write_text(f"{header}\n{cells}\n\n", encoding="utf-8")  # other bytes, same event id: recorded once
+    code, out, _ = run(capsys, ["record", "laser", "--input", str(path), "--workspace", str(ws)])
+    assert code == 0 and "0 recorded" in out and "1 already recorded" in out
+
+
+@pytest.mark.parametrize("files, argv, fragment", [
+    ({"r.csv": "arm,impressions,clicks,event_id,Event ID\nA,1,0,e,e\n"}, ["record", "laser", "--input", "{tmp}/r.csv"],
+     "columns 'event_id', 'Event ID' are all read as event_id; keep one"),
+    ({"d.csv": "headline,Head-line\nA draft,Another\n"}, ["score", "--input", "{tmp}/d.csv"],
+     "columns 'headline', 'Head-line' are all read as headline; keep one"),
+    ({"f.csv": "post_id,Post ID,published_at,headline,impressions,clicks\np1,p1,2026-03-02,Hello,10,1\n"},
+     ["import", "{tmp}/f.csv"], "more than one column would be read as post_id"),
+])
+def test_two_spellings_of_one_column_are_refused(ws, tmp_path, capsys, files, argv, fragment):
+    for name, text in files.items():
+        (tmp_path / name).write_text(text, encoding="utf-8")
+    before = workspace_digest(ws)
+    code, _, err = run(capsys, [a.replace("{tmp}", str(tmp_path)) for a in argv] + ["--workspace", str(ws)])
+    assert code == 2 and fragment in err, err
+    assert workspace_digest(ws) == before
+
+
+def test_columns_not_read_are_named(ws, tmp_path, capsys):
+    """Nothing a user gave is dropped without a word: columns contentlab does not read are listed."""
+    export = tmp_path / "f.csv"
+    export.write_text("Post ID,Published At,Headline,Impressions,Clicks,Link clicks,,\n"
+                      "p1,2026-03-02,Hello there,10,1,1,,\np2,2026-03-02,Hello again,10,1,1,kept?,\n", encoding="utf-8")
+    code, out, err = run(capsys, ["import", str(export), "--quiet", "--workspace", str(ws)])
+    assert code == 0, err
+    # A column without a header is named only when it holds something (a trailing delimiter makes an empty one).
+    assert "2 added" in out and "not read: column(s) 'Link clicks', '(unnamed column 7)' (" in out
+    results = tmp_path / "r.csv"
+    results.write_text("arm,impressions,clicks,note\nA,10,1,from the newsletter tool\n", encoding="utf-8")
+    code, out, err = run(capsys, ["record", "laser", "--input", str(results), "--workspace", str(ws)])
+    assert code == 0 and "not read: column(s) 'note'" in out, err
 
 
 def test_experiment_list_with_mixed_channels(ws, capsys):
@@ -259,6 +460,36 @@ def test_disk_full_says_so_and_writes_nothing(ws, tmp_path, capsys, monkeypatch)
     assert code == 2 and "Traceback" not in err
     assert "is full; nothing was written" in err
     assert workspace_digest(ws) == before  # ...and rolled back
+
+
+@pytest.mark.parametrize("target, argv", [
+    ("contentlab.workspace.Workspace.upsert_posts", ["import", "{tmp}/f.csv", "--quiet"]),
+    ("contentlab.workspace.Workspace.record_import", ["import", "{tmp}/f.csv", "--quiet"]),
+    ("contentlab.experiments._sync_posts", ["record", "laser", "--arm", "A", "--impressions", "9", "--clicks", "1"]),
+    ("contentlab.modelfile.dumps", ["learn", "--bootstrap", "0", "--no-meaning", "--quiet"]),
+])
+def test_ctrl_c_inside_a_write_leaves_the_workspace_as_it_was(ws, tmp_path, capsys, monkeypatch, target, argv):
+    """Simulated: KeyboardInterrupt raised after part of the write was done inside its transaction."""
+    import importlib
+
+    module_name, _, attr = target.rpartition(".")
+    try:
+        owner = importlib.import_module(module_name)
+    except ModuleNotFoundError:  # a class: module.Class.method
+        module_name, _, cls = module_name.rpartition(".")
+        owner = getattr(importlib.import_module(module_name), cls)
+    real = getattr(owner, attr)
+
+    def interrupted(*args, **kwargs):
+        real(*args, **kwargs)
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(owner, attr, interrupted)
+    (tmp_path / "f.csv").write_text(HEAD + GOOD.replace("p1", "new1"), encoding="utf-8")
+    before = workspace_digest(ws)
+    code, _, err = run(capsys, [a.replace("{tmp}", str(tmp_path)) for a in argv] + ["--workspace", str(ws)])
+    assert code == 130 and "interrupted; nothing more was written" in err
+    assert workspace_digest(ws) == before
 
 
 def test_locked_workspace_waits_visibly_then_gives_a_clear_error(ws, capsys, monkeypatch):
@@ -352,3 +583,35 @@ def test_any_time_text_is_read_or_refused_with_a_reason(text):
         assert pd.Timestamp(parsed.stored[0]).year in range(1969, 2202)  # a local time near a year's edge may cross it in UTC
     else:
         assert text.strip()[:20] in parsed.errors[0] or len(text.strip()) > 40
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(header=st.lists(st.sampled_from(["arm", "Arm", "impressions", "clicks", "at", "event_id", "Event ID", "note",
+                                        "headline", "channel", "publish_at", "time", "group", "", "arm"]),
+                       min_size=0, max_size=6),
+       rows=st.lists(st.lists(CELL, min_size=0, max_size=7), min_size=0, max_size=5),
+       delimiter=st.sampled_from([",", ";", "\t"]),
+       wrap=st.sampled_from(["plain", "gzip", "damaged gzip", "bom", "utf-16"]))
+def test_any_results_or_drafts_file_is_read_or_refused_with_a_message(tmp_path_factory, header, rows, delimiter, wrap):
+    """Results and drafts files, like exports: rows or a ContentlabError, never another exception."""
+    import gzip
+
+    from contentlab.errors import ContentlabError
+    from contentlab.readers import check_results, prepare_drafts, read_drafts, read_results
+
+    text = "\n".join([delimiter.join(header)] + [delimiter.join(r) for r in rows])
+    raw = text.encode("utf-16") if wrap == "utf-16" else text.encode("utf-8", errors="replace")
+    if wrap == "bom":
+        raw = b"\xef\xbb\xbf" + raw
+    elif wrap == "gzip":
+        raw = gzip.compress(raw)
+    elif wrap == "damaged gzip":
+        raw = gzip.compress(raw)[:10] + b"\xff" * 20  # a valid header, then a block zlib cannot read
+    path = tmp_path_factory.mktemp("fuzz-files") / "f.csv"
+    path.write_bytes(raw)
+    for read, check in ((read_results, lambda f: check_results(f, ["A", "B"], "Europe/London", source=str(path))),
+                        (read_drafts, lambda f: prepare_drafts(f, "Europe/London", source=str(path)))):
+        try:
+            check(read(path))
+        except ContentlabError as exc:
+            assert str(exc)

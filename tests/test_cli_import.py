@@ -118,6 +118,24 @@ def test_skip_bad_imports_good_rows_and_writes_rejected_csv(ws_dir, write_csv, c
     assert workspace_digest(ws_dir)[0] == 4
 
 
+def test_skip_bad_never_overwrites_a_rejected_file_the_user_changed(ws_dir, write_csv, capsys):
+    """Fixing rows in FILE.rejected.csv, then running the import again, used to overwrite those fixes."""
+    path = write_csv([NEW, row_with(NEW, post_id="p9", clicks="-1")], name="again.csv")
+    first = path.with_name("again.rejected.csv")
+    assert run_import(path, ws_dir, "--skip-bad", "--quiet") == 0
+    written = first.read_bytes()
+    assert run_import(path, ws_dir, "--skip-bad", "--quiet") == 0  # the same import again: the same file
+    assert first.read_bytes() == written and not path.with_name("again.rejected-2.csv").exists()
+    fixed = written.replace(b"-1", b"1")  # the user fixes the row in place
+    assert fixed != written
+    first.write_bytes(fixed)
+    capsys.readouterr()
+    assert run_import(path, ws_dir, "--skip-bad", "--quiet") == 0
+    assert first.read_bytes() == fixed
+    assert f"(see {path.with_name('again.rejected-2.csv')})" in capsys.readouterr().out
+    assert path.with_name("again.rejected-2.csv").read_bytes() == written
+
+
 def test_identical_repeated_rows_are_counted_once_and_said(ws_dir, write_csv, capsys):
     # Every row read is accounted for in the summary: a repeat of an identical row is neither lost silently
     # nor stored twice.

@@ -171,3 +171,29 @@ def test_drivers_with_another_top_comes_from_the_model(workspace, capsys, monkey
     assert calls == [3]
     topics = [d for d in json.loads(out)["drivers"] if d["kind"] == "topic term"]
     assert len(topics) <= 3
+
+
+def _history(headline, clicks) -> str:
+    rows = ["post_id,published_at,headline,impressions,clicks,channel"]
+    for i in range(240):
+        rows.append(f"p{i},2026-{1 + i % 11:02d}-{1 + i % 27:02d}T09:00Z,{headline(i)},1000,{clicks(i)},blog")
+    return "\n".join(rows) + "\n"
+
+
+@pytest.mark.parametrize("kind, headline, clicks, code, words", [
+    # CountVectorizer raised "empty vocabulary" on a history without one word: an "unexpected error".
+    ("no headline has a word (emoji only)", lambda i: "📚" * (1 + i % 4), lambda i: 10 + i % 30, 0, "Validation"),
+    ("every headline the same", lambda i: "Opening hours this week", lambda i: 10 + i % 30, 0, "Validation"),
+    ("no clicks at all", lambda i: f"Opening hours for branch {i}", lambda i: 0, 2, "too small to learn from"),
+])
+def test_learn_on_a_degenerate_history_fits_or_says_why(tmp_path, capsys, kind, headline, clicks, code, words):
+    export = tmp_path / "h.csv"
+    export.write_text(_history(headline, clicks), encoding="utf-8")
+    ws = tmp_path / "ws"
+    assert main(["import", str(export), "--quiet", "--workspace", str(ws)]) == 0
+    got, out, err = run(capsys, "learn", "--bootstrap", "0", "--no-meaning", "--quiet", "--workspace", str(ws))
+    assert got == code, err
+    assert words in out + err and "unexpected error" not in err
+    if code == 0:
+        got, out, err = run(capsys, "score", "📚📚", "Opening hours", "--channel", "blog", "--workspace", str(ws))
+        assert got == 0, err

@@ -130,3 +130,20 @@ def test_help_has_an_example():
                               capture_output=True, text=True)
     assert proc.returncode == 0
     assert "example:" in proc.stdout and "contentlab score" in proc.stdout
+
+
+@pytest.mark.parametrize("encoding", ["latin-1", "cp1252", "ascii"])
+def test_terminal_that_cannot_show_the_headline_still_gets_the_scores(workspace, monkeypatch, encoding):
+    """A Windows console or a latin-1 locale: an emoji or another script used to crash the output half-way
+    ("unexpected error", exit code 1); now the characters it cannot show are '?' and the scores are all there."""
+    out = io.TextIOWrapper(io.BytesIO(), encoding=encoding, newline="\n")
+    err = io.TextIOWrapper(io.BytesIO(), encoding=encoding, newline="\n")
+    monkeypatch.setattr(sys, "stdout", out)
+    monkeypatch.setattr(sys, "stderr", err)
+    code = main(["score", "📚 Winter reading: книги для зимы", "--channel", "newsletter", "--no-suggest",
+                 "--workspace", str(workspace)])
+    out.flush()
+    err.flush()
+    shown = out.buffer.getvalue().decode(encoding)
+    assert code == 0, err.buffer.getvalue().decode(encoding)
+    assert "? Winter reading:" in shown and "predicted" in shown

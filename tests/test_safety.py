@@ -80,3 +80,25 @@ def test_every_csv_writer_goes_through_write_csv():
             if re.search(pattern, text):
                 offenders.append(f"{path.relative_to(PACKAGE)}: {pattern}")
     assert not offenders, offenders
+
+
+@pytest.mark.parametrize("fault", [KeyboardInterrupt, OSError])
+def test_interrupted_write_leaves_the_earlier_file_whole(tmp_path, monkeypatch, fault):
+    """Ctrl-C or a failing disk half-way through a CSV (report tables, --skip-bad rejects): the file of that
+    name keeps its earlier content and no half-written temporary file stays behind."""
+    target = tmp_path / "table.csv"
+    target.write_bytes(b"earlier,content\r\n1,2\r\n")
+    real = pd.DataFrame.to_csv
+
+    def cut_short(self, path, *args, **kwargs):
+        Path(path).write_text("half a ta", encoding="utf-8")
+        raise fault("interrupted")
+
+    monkeypatch.setattr(pd.DataFrame, "to_csv", cut_short)
+    with pytest.raises(fault):
+        write_csv(pd.DataFrame({"a": ["x"] * 1000}), target)
+    monkeypatch.setattr(pd.DataFrame, "to_csv", real)
+    assert target.read_bytes() == b"earlier,content\r\n1,2\r\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["table.csv"]
+    write_csv(pd.DataFrame({"a": ["y"]}), target)  # and a whole write replaces it
+    assert target.read_bytes() == b"a\r\ny\r\n"

@@ -120,6 +120,19 @@ def test_drafts_error_is_shown_in_place(client):
     assert "not a channel in your history" in r.text
 
 
+def test_more_drafts_than_the_page_takes_are_refused_not_cut(client, ws_dir):
+    """The drafts box used to score the first 200 lines and drop the rest without a word."""
+    lines = "\n".join(f"Opening hours for branch number {i}" for i in range(250))
+    r = client.post("/drafts/score", data={"headlines": lines, "channel": "newsletter"},
+                    headers={"HX-Request": "true", "X-CSRF-Token": csrf(client)})
+    assert r.status_code == 200 and "250 headlines: this page scores at most 200 at a time" in r.text
+    assert 'data-field="predicted_rate"' not in r.text
+    r = client.post("/drafts/experiment", data={"csrf_token": csrf(client), "name": "too-many", "headlines": lines,
+                                                "channel": "newsletter"}, follow_redirects=False)
+    assert r.status_code == 400 and "got 250" in r.text
+    assert client.get("/api/experiments/too-many").status_code == 404
+
+
 def test_turn_a_group_into_an_experiment(client, ws_dir):
     r = client.post("/drafts/experiment", data={"csrf_token": csrf(client), "name": "from-drafts",
                                                 "headlines": "\n".join(DRAFTS), "channel": "newsletter",
@@ -137,7 +150,7 @@ def test_experiment_next_split_sums_to_n(client):
     counts = [int(x.replace(",", "")) for x in re.findall(r'<td class="num">([\d,]+)</td>', r.text)]
     assert sum(counts) == 2000
     bad = client.get("/experiments/winter-reading?impressions=-3")
-    assert "whole number of at least 1" in bad.text
+    assert "whole number from 1 to 999,999,999" in bad.text
 
 
 def test_record_form_errors_beside_the_field_and_nothing_written(client, ws_dir):
@@ -174,6 +187,13 @@ def test_stop_with_a_winner(client, ws_dir):
     assert re.search(r'id="state">stopped<', page.text)
     refused = client.post("/api/experiments/to-stop/next", json={"impressions": 100})
     assert refused.status_code == 409 and "was stopped" in refused.json()["error"]
+    # Stopping it again changes nothing (was: stopped again with the leader, overwriting B and the stop time).
+    again = client.post("/experiments/to-stop/stop", data={"csrf_token": csrf(client)}, follow_redirects=False)
+    assert again.status_code == 409 and "nothing changed" in again.text
+    with Workspace.open(ws_dir, create=False) as ws:
+        from contentlab.experiments import _load
+
+        assert _load(ws, "to-stop")["settings"]["winner"] == "B"
 
 
 def test_history_filters_are_checked(client):
@@ -237,6 +257,19 @@ def test_import_rejects_bad_rows_with_a_table_and_writes_nothing(client, ws_dir,
     assert "<td>clicks</td>" in table and "<td>published_at</td>" in table
     assert "&lt;img src=x onerror=alert(1)&gt;.csv" in r.text and "<img" not in r.text
     assert "/tmp" not in r.text and "contentlab-upload" not in r.text  # no server path shown
+    assert digest(ws_dir) == before
+
+
+@pytest.mark.parametrize("kind, data, words", [
+    ("damaged gzip", b"\x1f\x8b\x08\x00" + b"\xff" * 60, "looks gzip-compressed but cannot be read"),  # was a 500
+    ("ZIP or .xlsx", b"PK\x03\x04" + bytes(range(200)), "is a ZIP archive (an Excel .xlsx workbook is one too)"),
+    ("PDF", b"%PDF-1.7\n" + bytes(range(200)), "is a PDF document, not a CSV file"),
+], ids=["damaged gzip", "ZIP or xlsx", "PDF"])
+def test_import_upload_that_is_not_a_csv(client, ws_dir, digest, kind, data, words):
+    before = digest(ws_dir)
+    r = client.post("/import", data={"csrf_token": csrf(client)}, files={"export": ("posts.csv", data, "text/csv")})
+    assert r.status_code == 400, r.text[:300]
+    assert words in r.text.replace("&#39;", "'") and "Something went wrong" not in r.text
     assert digest(ws_dir) == before
 
 
@@ -353,9 +386,29 @@ def test_api_score_errors(client, body, status, words):
     assert words in r.json()["error"]
 
 
-def test_api_invalid_json(client):
-    r = client.post("/api/score", content=b"{not json", headers={"content-type": "application/json"})
-    assert r.status_code == 400 and "not valid JSON" in r.json()["error"]
+@pytest.mark.parametrize("path, raw, words", [
+    ("/api/score", b"{not json", "not valid JSON"),
+    ("/api/score", b"", "not valid JSON"),
+    ("/api/score", b'{"drafts": [{"headline": "caf\xe9"}]}', "not valid JSON"),  # not UTF-8
+    ("/api/score", b'{"drafts":' + b"[" * 100_000 + b"]" * 100_000 + b"}", "nested too deeply"),  # was a 500
+    ("/api/experiments/winter-reading/next", b'{"impressions": NaN}', "NaN is not a JSON value"),  # RFC 8259
+    ("/api/experiments/winter-reading/next", b'{"impressions": -Infinity}', "-Infinity is not a JSON value"),
+    ("/api/experiments/winter-reading/results",
+     b'{"results": [{"arm": "A", "impressions": Infinity, "clicks": 1}]}', "Infinity is not a JSON value"),
+], ids=["malformed", "empty", "not UTF-8", "nested 100,000 deep", "NaN", "-Infinity", "Infinity in results"])
+def test_api_invalid_json(client, ws_dir, path, raw, words):
+    """Every body that is not JSON (RFC 8259) gets 400 and a reason, never a 500; nothing is written."""
+    before = totals(ws_dir, "winter-reading")
+    r = client.post(path, content=raw, headers={"content-type": "application/json"})
+    assert r.status_code == 400 and words in r.json()["error"], r.text[:300]
+    assert totals(ws_dir, "winter-reading") == before
+
+
+@pytest.mark.parametrize("impressions", [10**30, 2**53 + 1, -(10**30), 0])
+def test_api_next_impressions_outside_any_count(client, impressions):
+    """A whole number beyond what a count can hold is a 400 (was an OverflowError and a 500)."""
+    r = client.post("/api/experiments/winter-reading/next", json={"impressions": impressions})
+    assert r.status_code == 400 and "whole number from 1 to 2^53" in r.json()["error"]
 
 
 def test_api_experiments_status_next(client):
@@ -406,6 +459,33 @@ def test_unknown_api_path_and_method(client):
     assert client.get("/api/nothing").status_code == 404
     r = client.get("/api/score")
     assert r.status_code == 405 and "error" in r.json()
+
+
+def test_busy_or_read_only_workspace_is_not_called_bad_input(ws_dir, monkeypatch):
+    """Both were 400 ("your request is wrong"); a client should retry on 503 and stop on 403. Nothing is written."""
+    import sqlite3
+
+    import contentlab.workspace as workspace
+
+    monkeypatch.setenv("CONTENTLAB_LOCK_WAIT", "0.5")
+    body = {"results": [{"arm": "A", "impressions": 10, "clicks": 1, "event_id": "fault-1"}]}
+    before = totals(ws_dir, "winter-reading")
+    with TestClient(create_app(ws_dir), base_url="http://127.0.0.1", raise_server_exceptions=False) as c:
+        holder = sqlite3.connect(ws_dir / "workspace.sqlite")
+        holder.execute("BEGIN IMMEDIATE")
+        try:
+            r = c.post("/api/experiments/winter-reading/results", json=body)
+        finally:
+            holder.rollback()
+            holder.close()
+        assert r.status_code == 503 and "is busy" in r.json()["error"] and r.headers["retry-after"] == "5"
+    monkeypatch.setattr(workspace, "_writable", lambda path, db: False)
+    with TestClient(create_app(ws_dir), base_url="http://127.0.0.1", raise_server_exceptions=False) as c:
+        r = c.post("/api/experiments/winter-reading/results", json=body)
+        assert r.status_code == 403 and "is read-only" in r.json()["error"]
+        assert c.get("/api/experiments/winter-reading").status_code == 200
+    monkeypatch.undo()
+    assert totals(ws_dir, "winter-reading") == before
 
 
 def test_unexpected_error_is_json_without_trace(ws_dir, monkeypatch):
@@ -491,6 +571,20 @@ def test_serve_help_and_refusals(tmp_path, capsys):
     assert not (tmp_path / "none").exists()
     assert cli(["serve", "--port", "70000", "--no-browser", "--workspace", str(tmp_path)]) == 2
     assert cli(["serve", "--token", "short", "--no-browser", "--workspace", str(tmp_path)]) == 2
+
+
+def test_serve_on_a_taken_port_is_one_line_and_exit_2(ws_dir, capsys):
+    """The server used to print the address, then stop with its own log line and exit code 3."""
+    import socket
+
+    with socket.socket() as holder:
+        holder.bind(("127.0.0.1", 0))
+        holder.listen()
+        port = holder.getsockname()[1]
+        code = cli(["serve", "--port", str(port), "--no-browser", "--workspace", str(ws_dir)])
+    out, err = capsys.readouterr()
+    assert code == 2 and f"port {port} on 127.0.0.1 is in use by another program" in err and "--port" in err
+    assert "Open http" not in out
 
 
 def test_workspace_without_a_model_says_what_to_do(tmp_path, write_csv):
@@ -595,3 +689,29 @@ def test_prob_best_timeline_uses_the_experiments_own_prior(template_ws, tmp_path
     last = insight.prob_best_timeline(WorkspaceState(target), "winter-reading", st)["points"][-1]
     for arm, p in zip(st.arms["arm"], st.arms["prob_best"]):
         assert last["prob_best"][arm] == pytest.approx(p, abs=0.04)
+
+
+# ------------------------------------------------------------------ built for the kind, not the case
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+JSON_LEAF = st.one_of(st.none(), st.booleans(), st.integers(min_value=-(10**30), max_value=10**30),
+                      st.floats(allow_nan=False, allow_infinity=False), st.text(max_size=30),
+                      st.sampled_from(["A", "B", "", "newsletter", "2026-12-03T09:00", "03/12/2026", "1,234", "9e999"]))
+JSON_VALUE = st.recursive(JSON_LEAF, lambda inner: st.one_of(
+    st.lists(inner, max_size=4), st.dictionaries(st.sampled_from(
+        ["drafts", "results", "impressions", "policy", "suggest", "cumulative", "headline", "channel", "publish_at",
+         "group", "arm", "clicks", "at", "event_id", "x"]), inner, max_size=5)), max_leaves=12)
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(path=st.sampled_from(["/api/score", "/api/experiments/winter-reading/next",
+                             "/api/experiments/winter-reading/results"]), body=JSON_VALUE)
+def test_any_json_body_gets_an_answer_or_a_4xx_never_a_500(client, path, body):
+    """Whatever JSON a client sends, the API answers it or says what is wrong: never a 500 or a trace."""
+    r = client.post(path, content=json.dumps(body).encode(), headers={"content-type": "application/json"})
+    assert r.status_code < 500, (body, r.text[:300])
+    payload = r.json()
+    assert (r.status_code == 200) != ("error" in payload), payload
+    assert "Traceback" not in r.text

@@ -87,7 +87,19 @@ def command_parser(subparsers, name: str, *, help: str, description: str, exampl
     )
 
 
+def _tolerant_output() -> None:
+    """A terminal whose encoding cannot show a headline's emoji or script (a Windows console, a latin-1 locale)
+    gets '?' for those characters instead of a crash half-way through the output (PYTHONIOENCODING=utf-8 shows them)."""
+    for stream in (sys.stdout, sys.stderr):
+        if hasattr(stream, "reconfigure") and (stream.encoding or "").lower().replace("-", "") not in ("utf8", "utf8sig"):
+            try:
+                stream.reconfigure(errors="replace")
+            except (ValueError, OSError):  # a stream that cannot be changed any more: leave it
+                pass
+
+
 def main(argv: list[str] | None = None) -> int:
+    _tolerant_output()
     parser = build_parser()
     args = parser.parse_args(argv)
     if args.version:
@@ -129,7 +141,7 @@ def explain_failure(exc: Exception, workspace=None) -> tuple[str, int]:
 
     from ..workspace import not_usable, read_only_message, resolve_dir
 
-    where = resolve_dir(workspace)
+    where = resolve_dir(workspace or None)
     text = str(exc)
     if isinstance(exc, sqlite3.OperationalError):
         low = text.lower()

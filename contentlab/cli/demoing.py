@@ -28,6 +28,9 @@ def register(subparsers) -> None:
 
 def cmd_demo(args: argparse.Namespace) -> int:
     from ..demo import run_demo
+    from ..workspace import resolve_dir
 
+    if args.workspace is not None:
+        resolve_dir(args.workspace)  # refuses an empty --workspace "" rather than building the demo elsewhere
     run_demo(args.workspace or "demo-workspace", args.out)
     return 0

@@ -210,6 +210,9 @@ def cmd_new(args: argparse.Namespace) -> int:
         raise ContentlabError("give drafts either as --drafts FILE or as headlines on the command line, not both.")
     if not args.drafts and not args.headlines:
         raise ContentlabError('give the drafts: --drafts drafts.csv, or headlines as arguments ("Draft one" "Draft two").')
+    if args.flat_prior and args.prior_strength is not None:
+        raise ContentlabError("give --flat-prior (every arm starts at Beta(1, 1)) or --prior-strength S (the model's "
+                              "predictions with strength S), not both.")
     if args.seed is not None and not 0 <= args.seed < 2**31:
         raise ContentlabError(f"--seed must be a whole number from 0 to {2**31 - 1}; got {args.seed}.")
     drafts = read_drafts(args.drafts) if args.drafts else list(args.headlines)
@@ -355,6 +358,10 @@ def cmd_stop(args: argparse.Namespace) -> int:
     with Workspace.open(args.workspace, create=False) as ws:
         out = stop_experiment(ws, args.name, winner=args.winner)
     d = out["decision"]
+    if "winner_before" in out:
+        print(f"{out['experiment']} was stopped already; its winner is now {out['winner']} "
+              f"(was {out['winner_before'] or 'none'}).")
+        return 0
     print(f"Stopped {out['experiment']}; winner: {out['winner']}.")
     if out["stopped_early"]:
         print(_wrap("Note: the evidence did not yet meet the stopping rule: " + d.reason))
@@ -367,6 +374,7 @@ def cmd_record(args: argparse.Namespace) -> int:
 
     from ..errors import ContentlabError
     from ..experiments import read_results, record_results
+    from ..readers import RESULT_COLUMNS, unused_columns
     from ..workspace import Workspace
 
     single = [args.arm, args.impressions, args.clicks]
@@ -384,6 +392,7 @@ def cmd_record(args: argparse.Namespace) -> int:
         if args.input:
             frame = read_results(args.input)
             summary = record_results(ws, args.name, frame, cumulative=args.cumulative, source_file=args.input)
+            unused = unused_columns(frame, RESULT_COLUMNS)
         else:
             row = {"arm": args.arm, "impressions": args.impressions, "clicks": args.clicks}
             if args.at is not None:
@@ -393,6 +402,9 @@ def cmd_record(args: argparse.Namespace) -> int:
             summary = record_results(ws, args.name, pd.DataFrame([row]), cumulative=args.cumulative)
     print(summary.line())
     if not args.quiet:
+        if args.input and unused:
+            print(_wrap(f"Note: not read: column(s) {', '.join(repr(c) for c in unused[:8])} of {args.input} (a "
+                        "results file has arm, impressions, clicks, at and event_id)."))
         for note in summary.notes:
             print(_wrap("Note: " + note))
         if summary.added:

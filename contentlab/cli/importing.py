@@ -58,7 +58,7 @@ def cmd_import(args: argparse.Namespace) -> int:
     if args.timezone is not None:
         check_timezone(args.timezone)
     with opened(args.workspace) as ws:  # a first import that fails leaves no empty workspace behind
-        previous = ws.timezone
+        previous = ws.setting("timezone", "UTC")  # as stored, even one this computer does not know
         if args.timezone is not None:
             ws.set_setting("timezone", args.timezone)
         try:

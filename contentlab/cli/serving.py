@@ -40,6 +40,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
         raise ContentlabError(f"--port must be between 1 and 65535; got {args.port}.")
     if args.token is not None and len(args.token) < 16:
         raise ContentlabError("--token must have at least 16 characters (or leave it out and one is generated).")
+    check_address(args.host, args.port)  # before anything is printed: a taken port is one clear line, exit code 2
     import threading
     import webbrowser
 
@@ -74,3 +75,32 @@ def cmd_serve(args: argparse.Namespace) -> int:
         raise ContentlabError(f"cannot listen on {args.host}:{args.port} ({exc.strerror or exc}); "
                               "choose another --port.") from None
     return 0
+
+
+def check_address(host: str, port: int) -> None:
+    """Refuse a --host this computer cannot listen on, or a --port another program holds, in words that say what to do.
+
+    The server itself would stop with its own log line and exit code 3; this checks first by binding once.
+    """
+    import errno
+    import socket
+
+    from ..errors import ContentlabError
+
+    try:
+        family, kind, proto, _, address = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)[0]
+    except (socket.gaierror, UnicodeError) as exc:
+        reason = exc.strerror if isinstance(exc, socket.gaierror) else str(exc)
+        raise ContentlabError(f"--host {host}: not an address this computer can listen on ({reason}); use 127.0.0.1 "
+                              "(this computer only) or 0.0.0.0 (every network it is on).") from None
+    with socket.socket(family, kind, proto) as probe:
+        probe.setsockopt(socket.SOL_SOCKET, socket.SO_REUSEADDR, 1)  # as the server does
+        try:
+            probe.bind(address)
+        except OSError as exc:
+            if exc.errno == errno.EADDRINUSE:
+                raise ContentlabError(f"port {port} on {host} is in use by another program (perhaps another contentlab "
+                                      f"serve); choose another with --port, e.g. --port {port + 1 if port < 65535 else 8765}."
+                                      ) from None
+            raise ContentlabError(f"cannot listen on {host}:{port} ({exc.strerror or exc}); choose another --host or "
+                                  "--port.") from None

@@ -2,8 +2,9 @@
 
 Every error is ``{"error": message}`` with 400 (bad input), 404 (no such
 experiment), 409 (conflicts with the workspace's state, e.g. a stopped
-experiment), 413 (body too large), 415 (not JSON) or 401 (no access token);
-never a stack trace. Writes take ``Content-Type: application/json``.
+experiment), 413 (body too large), 415 (not JSON), 401 (no access token),
+403 (read-only workspace) or 503 (workspace busy, with Retry-After); never a
+stack trace. Writes take ``Content-Type: application/json``.
 """
 
 from __future__ import annotations
@@ -23,9 +24,16 @@ async def _json_body(request: Request):
         raise ApiError("Send the body as JSON with the header Content-Type: application/json.", 415)
     raw = await request.body()
     try:
-        return json.loads(raw)
+        return json.loads(raw, parse_constant=_no_constant)
     except (ValueError, UnicodeDecodeError) as exc:
         raise ApiError(f"The body is not valid JSON ({exc}).") from None
+    except RecursionError:
+        raise ApiError("The body is not valid JSON for this API: its lists or objects are nested too deeply.") from None
+
+
+def _no_constant(name: str):
+    """NaN, Infinity and -Infinity are not JSON (RFC 8259), though Python's reader takes them."""
+    raise ValueError(f"{name} is not a JSON value; send a number or null")
 
 
 async def score(request: Request) -> ApiResponse:

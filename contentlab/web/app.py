@@ -71,8 +71,12 @@ def _is_api(request: Request) -> bool:
 
 def _answer(request: Request, message: str, status: int) -> Response:
     if _is_api(request):
-        return json_error(message, status)
-    return render(request, "error.html", status=status, message=message, status_code=status)
+        response = json_error(message, status)
+    else:
+        response = render(request, "error.html", status=status, message=message, status_code=status)
+    if status == 503:  # the workspace is busy: a client may try again shortly (RFC 9110, section 10.2.3)
+        response.headers["Retry-After"] = "5"
+    return response
 
 
 async def _api_error(request: Request, exc: ApiError) -> Response:

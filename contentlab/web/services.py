@@ -152,9 +152,11 @@ def status(state: WorkspaceState, name: str) -> dict:
 
 def allocation(state: WorkspaceState, name: str, impressions: Any, policy: str | None = None) -> dict:
     from ..experiments import next_allocation
+    from ..readers import MAX_COUNT
 
-    if isinstance(impressions, bool) or not isinstance(impressions, int) or impressions < 1:
-        raise ApiError(f'"impressions" must be a whole number of at least 1; got {impressions!r}.')
+    if isinstance(impressions, bool) or not isinstance(impressions, int) or not 1 <= impressions <= MAX_COUNT:
+        shown = repr(impressions) if len(repr(impressions)) <= 40 else repr(impressions)[:39] + "…"
+        raise ApiError(f'"impressions" must be a whole number from 1 to 2^53 ({MAX_COUNT:,}); got {shown}.')
     with state.open() as ws:
         alloc = next_allocation(ws, name, impressions, policy)
     return {"experiment": alloc.name, "policy": alloc.policy, "impressions": alloc.impressions,
@@ -240,7 +242,10 @@ def _records(frame) -> list[dict]:
 
 
 def user_error(exc: ContentlabError) -> ApiError:
-    """A library refusal as an API error: 409 when it conflicts with the workspace's state, else 400."""
+    """A library refusal as an API error: 409 when it conflicts with the workspace's state, 503 when another
+    command holds the workspace (try again), 403 when it is read-only, else 400."""
     text = str(exc)
+    if exc.http_status != 400:
+        return ApiError(text, exc.http_status)
     conflict = ("exists already" in text or "was stopped" in text)
     return ApiError(text, 409 if conflict else 400)

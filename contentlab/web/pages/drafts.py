@@ -28,7 +28,7 @@ def parse_lines(block: str, channel: str, publish_at: str) -> list[dict]:
         seen = True
         drafts.append({"headline": line, "channel": channel or None, "publish_at": publish_at or None,
                        "group": f"group {group}"})
-    return drafts[:MAX_LINES]
+    return drafts  # all of them: a caller that cannot take so many says so, never drops the rest
 
 
 def _channels(state) -> tuple[list[str], str | None]:
@@ -51,7 +51,10 @@ async def _score_form(request: Request, form) -> dict:
               "publish_at": text(form, "publish_at", 40)}
     drafts = parse_lines(values["headlines"], values["channel"], values["publish_at"])
     result = {"drafts": [], "groups": [], "error": None, "notes": [], "cautions": []}
-    if drafts:
+    if len(drafts) > MAX_LINES:
+        result["error"] = (f"{len(drafts):,} headlines: this page scores at most {MAX_LINES} at a time. Score the "
+                           "rest in another round, or all of them with: contentlab score --input drafts.csv")
+    elif drafts:
         try:
             scored, meta = await blocking(services.score, state, drafts, suggest=True)
         except ContentlabError as exc:

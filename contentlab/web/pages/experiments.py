@@ -69,7 +69,7 @@ def _impressions(request: Request) -> tuple[int | None, str | None]:
     if raw is None or raw == "":
         return None, None
     if not re.fullmatch(r"\d{1,9}", raw.strip()) or int(raw) < 1:
-        return None, f"Impressions must be a whole number of at least 1; got '{raw[:20]}'."
+        return None, f"Impressions must be a whole number from 1 to 999,999,999; got '{raw[:20]}'."
     return int(raw), None
 
 
