@@ -43,7 +43,8 @@ with traffic varying by round (each round's share of the test's impressions
 Dirichlet(4, ...), about +-50%), and with a planned end time instead of the
 budget on that traffic (the horizon is the impressions so far plus their pace
 per round times the rounds left, as ``experiment new --ends-at`` estimates
-it); the new default with ``--policy top-two``; and, when the model's gaps are
+it); the new default with ``--policy top-two`` (every arm kept, and while the
+stopping rule fires every impression to the arm it names); and, when the model's gaps are
 kept, the new default without them. For the tracked policies it also reports,
 among test experiments whose best arm is clearly best (|z| >= 1.96 against the
 second, two-proportion z-test on the archive's counts), how often the arm
@@ -218,7 +219,8 @@ def policies(spread: dict | None, use_model: bool, horizon: float) -> dict[str, 
         "  the same, traffic varying by round": {**new, "horizon": "budget", "varying": True},
         "new default + end time (pace so far), varying": {**new, "horizon": "budget", "varying": True,
                                                          "paced": True},
-        "new default, --policy top-two": {**new, "policy": "top_two", "track": True},
+        "new default, --policy top-two (commit on stop)":
+            {**new, "policy": "top_two", "horizon": None, "commit": True, "track": True},
     }
     if use_model:  # what a workspace without a model (or whose model's gaps fail the replay) gets
         rows["new default without the model's gaps"] = {**new, "use_offsets": False, "cap_lift": False}

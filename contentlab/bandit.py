@@ -221,6 +221,8 @@ def allocation_shares(
         total = w_free.sum(axis=-1, keepdims=True)
         scaled = np.divide(w_free * free_mass, total, out=np.zeros_like(w_free), where=total > 0)
         share = np.where(fixed, floor, scaled)
+    if keep is not None:  # top-two would otherwise hand dropped arms a challenger's share
+        share = np.where(keep, share, 0.0)
     share = share / share.sum(axis=-1, keepdims=True)
     if cap is not None:
         share = _apply_cap(share, np.broadcast_to(np.asarray(cap, dtype=float), share.shape))

@@ -1015,11 +1015,16 @@ def create_experiment(
             "A model-informed prior is a starting guess from correlations in past posts, not a causal effect; "
             "results soon outweigh it."
         )
-    if prior.learned is not None:
+    if prior.learned is not None and policy == "thompson":
         notes.append(
             "Once results are in, a draft gets traffic only while learning more about it could still pay back what "
             f"showing it costs over the impressions left ({_horizon_words(prior.learned, budget, end)}); the drafts "
             "still in the running share the traffic by their probability of being best."
+        )
+    elif prior.learned is not None:
+        notes.append(
+            "Top-two sampling keeps every draft in until the stopping rule (experiment status) names one, then sends "
+            "every impression to it until you stop the test."
         )
     if end is not None:
         notes.append(
@@ -1389,7 +1394,7 @@ def _split_words(bandit: ThompsonBandit, settings: Mapping, plan: Mapping | None
     prob = bandit.prob_best()
     out = []
     budget = []
-    lookahead = settings.get("allocation") == "lookahead"
+    lookahead = settings.get("allocation") == "lookahead" and bandit.policy == "thompson"
     if lookahead:
         pass  # the impressions left are part of the lookahead's own words
     elif plan is not None:
@@ -2082,11 +2087,15 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
             logit_sd=learned_prior_sd(learned),
             level=float(learned["level"]), level_weight=float(learned["level_weight"]),
         )
-        if settings.get("allocation") == "lookahead":
+        if settings.get("allocation") == "lookahead" and params["policy"] == "thompson":
             horizon = params["budget"]
             if horizon is None and not settings.get("ends_at"):
                 horizon = HORIZON_FACTOR * float(learned.get("typical_impressions") or 0.0) or None
             params.update(temper=1.0, temper_start=1.0, min_share=0.0, budget=None, horizon=horizon)
+        elif settings.get("allocation") == "lookahead":
+            # Top-two is for the quickest answer, not the fewest clicks lost: every draft stays in until the
+            # stopping rule names one, then every impression goes to it.
+            params.update(min_share=0.0, budget=None, commit_on_stop=True)
     state = {"impressions": n.tolist(), "clicks": k.tolist(), "n_updates": int(n_updates)}
     return ThompsonBandit.from_dict({"format": "contentlab.bandit/1", "params": params, "state": state})
 

@@ -712,6 +712,11 @@ def test_arms_not_worth_learning_get_no_traffic_and_the_rest_plain_thompson():
     keep = np.array([[True, True, False]])
     share = allocation_shares(prob, temper=1.0, min_share=0.01, keep=keep)[0]
     assert share[2] == 0.0 and share[:2] == pytest.approx([0.625, 0.375])
+    # Top-two too gives dropped arms nothing (no challenger's share), and a lone kept arm everything.
+    top = allocation_shares(prob, policy="top_two", min_share=0.0, keep=keep)[0]
+    assert top[2] == 0.0 and top.sum() == pytest.approx(1.0)
+    lone = allocation_shares(prob, policy="top_two", min_share=0.0, keep=np.array([[True, False, False]]))[0]
+    assert lone == pytest.approx([1.0, 0.0, 0.0])
     # Kept arms that never won a draw split evenly rather than get nothing.
     assert allocation_shares(np.array([[1.0, 0.0, 0.0]]), temper=1.0, min_share=0.0,
                              keep=np.array([[False, True, True]]))[0] == pytest.approx([0.0, 0.5, 0.5])

@@ -311,3 +311,19 @@ def test_experiments_created_before_the_lookahead_keep_their_policy(learned_ws):
     assert bandit.horizon is None and bandit.commit_on_stop and bandit.temper == 4.0
     assert bandit.min_share == LEARNED_MIN_SHARE
     assert bandit.logit_sd == pytest.approx(2.0 * settings["prior"]["learned"]["logit_sd"])
+
+
+def test_top_two_keeps_every_draft_until_the_stopping_rule_names_one(learned_ws, tmp_path):
+    # --policy top-two is for the quickest answer: no draft is dropped for what it costs, and the split commits
+    # only once the stopping rule fires (as experiments of the previous default did).
+    from contentlab.experiments import _bandit, _load
+
+    created = create_experiment(learned_ws, "quick", DRAFTS, seed=3, policy="top_two")
+    assert any("Top-two sampling keeps every draft in" in note for note in created.notes)
+    bandit = _bandit(learned_ws, _load(learned_ws, "quick"))
+    assert bandit.horizon is None and bandit.commit_on_stop and bandit.policy == "top_two"
+    path = tmp_path / "r.csv"
+    path.write_text("arm,impressions,clicks\nA,3000,93\nB,3000,40\nC,3000,99\nD,3000,90\n", encoding="utf-8")
+    record_results(learned_ws, "quick", read_results(path), source_file=str(path))
+    got = next_allocation(learned_ws, "quick", 1000).arms.set_index("arm")["impressions"]
+    assert got.sum() == 1000 and (got[["A", "C", "D"]] > 0).all()
