@@ -416,11 +416,10 @@ def cmd_record(args: argparse.Namespace) -> int:
 
 
 def _pct(v) -> str:
-    try:
-        f = float(v)
-    except (TypeError, ValueError):
-        return "-"
-    return "-" if not math.isfinite(f) else f"{100 * f:.2f}%"
+    """A rate in a terminal table: "4.56%", or "-" in an empty cell."""
+    from ..percentages import percent
+
+    return percent(v, missing="-")
 
 
 def _text_or_dash(v) -> str:
