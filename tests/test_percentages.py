@@ -103,6 +103,25 @@ def test_callers_keep_their_wording():
         x=0.0456, y=math.nan) == "4.56% 4.6% +5% n/a"
 
 
+def test_the_cli_drivers_table_shows_no_minus_zero():
+    """The demo's drivers table printed "-5.2% to -0.0%" and "+0.0%" before the sign rule reached it."""
+    import pandas as pd
+
+    from contentlab.cli.modelling import format_drivers
+
+    frame = pd.DataFrame([
+        {"rank": 1, "group": "writing style", "label": "this, these, here", "step": "+1 of this, these, here",
+         "relative_change": -0.026, "low": -0.052, "high": -0.0004, "evidence": "observational",
+         "uncertain": False, "sentence": "s1"},
+        {"rank": 2, "group": "writing style", "label": "word length", "step": "+1 letter per word",
+         "relative_change": 0.0003, "low": -0.02, "high": 0.021, "evidence": "observational",
+         "uncertain": True, "sentence": "s2"},
+    ])
+    text = format_drivers(frame, {"outcome": "clicks", "typical_rate": 0.03, "interval": 0.9}, [])
+    assert "-5.2% to 0.0%" in text and "-2.0% to +2.1%" in text and "  0.0%" in text
+    assert "-0.0%" not in text and "+0.0%" not in text
+
+
 def test_the_module_imports_nothing_from_contentlab():
     """It sits below every other module, so anything may use it without a cycle."""
     source = Path(__file__).resolve().parents[1] / "contentlab" / "percentages.py"
