@@ -846,3 +846,16 @@ def test_an_edited_manifest_cannot_remove_files_outside_the_tables(tmp_path):
     (folder / REPORT_MANIFEST).write_text(json.dumps({"tables": ["../outside.csv", "notes.txt"]}), encoding="utf-8")
     write_report(report, tmp_path / "out")
     assert (tmp_path / "out" / "outside.csv").exists() and (folder / "notes.txt").exists()
+
+
+def test_a_damaged_manifest_falls_back_to_the_table_names(tmp_path):
+    from contentlab.report import REPORT_MANIFEST
+
+    report = _small_report(tmp_path)
+    folder = tmp_path / "out" / report.stem
+    folder.mkdir(parents=True)
+    (folder / REPORT_MANIFEST).write_text("{not json", encoding="utf-8")
+    (folder / "driver_changes.csv").write_text("old\n", encoding="utf-8")
+    (folder / "mine.csv").write_text("mine\n", encoding="utf-8")
+    write_report(report, tmp_path / "out")
+    assert not (folder / "driver_changes.csv").exists() and (folder / "mine.csv").exists()
