@@ -1003,9 +1003,9 @@ def happened_section(ctx: _Context, noise: dict) -> dict:
             place = f"the {_ordinal(rank_high)} highest"
         else:
             place = f"the {_ordinal(int(np.sum(finite < cur_rate)) + 1)} lowest"
-        out["trend_idea"] = (f"This {noun}'s {percent(cur_rate)} is {place} of the last {finite.size} {noun}s with posts "
-                             f"(range {percent(rates[lo_i])} in {trend['label'][lo_i]} to {percent(rates[hi_i])} in "
-                             f"{trend['label'][hi_i]}).")
+        out["trend_idea"] = (f"This {noun}'s {percent(cur_rate)} is {place} of the last {finite.size} {noun}s "
+                             f"with posts (range {percent(rates[lo_i])} in {trend['label'][lo_i]} to "
+                             f"{percent(rates[hi_i])} in {trend['label'][hi_i]}).")
         out["trend_meaning"] = ("The shaded box is the normal range for this week given past noise; a point outside "
                                 "it is unusual." if band else
                                 "Too little history to draw a normal range yet.")
@@ -1310,7 +1310,8 @@ def _unusual(ctx: _Context, model: dict | None) -> dict:
         out["unusual_idea"] = (f"{len(flagged)} of {len(posts)} posts {ctx.this} were unusual against "
                                f"{_short_source(source)} "
                                f"(about {expect:.1f} would be by chance); the most: “{top['headline']}” "
-                               f"({top['channel']}, {percent(top['rate'])} against {percent(top['predicted_rate'])} expected).")
+                               f"({top['channel']}, {percent(top['rate'])} against "
+                               f"{percent(top['predicted_rate'])} expected).")
         out["unusual_meaning"] = ("Worth a look: something about these posts (the news, a link, a share by someone "
                                   "big) is not in the headline features; do not copy them without knowing what.")
     else:
@@ -1326,7 +1327,8 @@ def _unusual(ctx: _Context, model: dict | None) -> dict:
                                     f"z = {signed(d['z'], 1)}).")
     out["unusual_rows"] = [_residual_row(r, ctx) for _, r in posts.head(8).iterrows()]
     out["unusual_day_rows"] = [{"day": r["day"], "posts": int(r["posts"]), "rate": percent(r["rate"]),
-                                "predicted": percent(r["predicted_rate"]), "z": signed(r["z"], 1), "flag": bool(r["flag"])}
+                                "predicted": percent(r["predicted_rate"]), "z": signed(r["z"], 1),
+                                "flag": bool(r["flag"])}
                                for _, r in days.iterrows()]
     return out
 
