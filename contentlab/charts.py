@@ -34,6 +34,8 @@ from dataclasses import dataclass, field
 from typing import Callable, Iterable, Sequence
 from xml.sax.saxutils import escape, quoteattr
 
+from .percentages import TRUE_MINUS, percent, percentage_points, signed_number, signed_percent
+
 PAPER = "#fbf8f2"
 INK = "#23313a"
 MUTED = "#8d969b"
@@ -44,7 +46,7 @@ NO_CHANNEL_COLOUR = "#7d8589"
 FADE = 0.32
 FONT_STACK = ("system-ui, -apple-system, 'Segoe UI', Roboto, 'Noto Sans', 'Helvetica Neue', "
               "Arial, sans-serif")
-MINUS = "\u2212"
+MINUS = TRUE_MINUS
 
 
 @dataclass(frozen=True)
@@ -168,10 +170,8 @@ def _num(v: float) -> str:
 
 # ------------------------------------------------------------------ numbers
 def signed(v: float, digits: int = 2) -> str:
-    """+1.25 / −1.25 with a true minus sign, 0.00 unsigned."""
-    if round(v, digits) == 0:
-        return f"{0:.{digits}f}"
-    return f"{'+' if v > 0 else MINUS}{abs(v):.{digits}f}"
+    """+1.25 / −1.25 with a true minus sign, 0.00 unsigned (the report's typography)."""
+    return signed_number(v, digits, minus=MINUS)
 
 
 def nice_ticks(lo: float, hi: float, count: int = 5) -> list[float]:
@@ -211,9 +211,7 @@ def percent_format(ticks: Sequence[float], *, signed_values: bool = False) -> Ca
     d = _decimals(step)
 
     def fmt(v: float) -> str:
-        if signed_values:
-            return signed(100 * v, d) + "%"
-        return f"{100 * v:.{d}f}%"
+        return signed_percent(v, d, minus=MINUS) if signed_values else percent(v, d)
     return fmt
 
 
@@ -230,7 +228,7 @@ def points_format(ticks: Sequence[float]) -> Callable[[float], str]:
     """Signed percentage points, one number of decimals for the whole axis."""
     step = abs(ticks[1] - ticks[0]) * 100 if len(ticks) > 1 else 1.0
     d = _decimals(step)
-    return lambda v: signed(100 * v, d)
+    return lambda v: percentage_points(v, d, minus=MINUS, unit="")
 
 
 # ------------------------------------------------------------------ SVG building
@@ -407,7 +405,7 @@ def trend_chart(labels: Sequence[str], rates: Sequence[float], *, last_year: Seq
         if highlight and n and math.isfinite(y_vals[-1]):
             x, y = X(n - 1), Y(y_vals[-1])
             c.add("circle", cx=_num(x), cy=_num(y), r="5", fill=ACCENT)
-            c.text(x - 9, max(y - 9, y0 + size.font), f"{100 * y_vals[-1]:.2f}%", size=size.font, anchor="end",
+            c.text(x - 9, max(y - 9, y0 + size.font), percent(y_vals[-1]), size=size.font, anchor="end",
                    fill=ACCENT, bold=True)
         step = max(1, math.ceil(n / (7 if size is WIDE else 4)))
         for i in range(n - 1, -1, -step):
@@ -591,8 +589,8 @@ def channel_bars(channels: Sequence[str], base: Sequence[float], current: Sequen
         col = colours.get(ch, NO_CHANNEL_COLOUR)
         alpha = 1.0 if (highlight is None or ch == highlight) else FADE + 0.15
         rows.append(Row(label(ch), [
-            Bar(old, col, "outline", alpha, f"{100 * old:.2f}%" if math.isfinite(old) else "", MUTED),
-            Bar(cur, col, "solid", alpha, f"{100 * cur:.2f}%" if math.isfinite(cur) else "no posts",
+            Bar(old, col, "outline", alpha, percent(old, missing=""), MUTED),
+            Bar(cur, col, "solid", alpha, percent(cur, missing="no posts"),
                 INK if math.isfinite(cur) else MUTED, bold=ch == highlight),
         ], bold=ch == highlight))
         values += [v for v in (old, cur) if math.isfinite(v)]
@@ -623,7 +621,8 @@ def shift_share_chart(groups: Sequence[str], mix: Sequence[float], within: Seque
 
 
 def fmt_points(v: float) -> str:
-    return signed(100 * v, 2)
+    """A bar's label in percentage points, without the unit (the axis names it)."""
+    return percentage_points(v, 2, minus=MINUS, unit="")
 
 
 def interval_bars(labels: Sequence[str], effects: Sequence[float], low: Sequence[float], high: Sequence[float], *,
@@ -652,7 +651,7 @@ def probability_bars(labels: Sequence[str], probs: Sequence[float], *, highlight
     for i, (t, p) in enumerate(zip(labels, probs)):
         strong = highlight is None or i == highlight
         rows.append(Row(label(t, 90), [Bar(float(p), colour if strong else MUTED, "solid", 1.0 if strong else 0.55,
-                                           f"{100 * float(p):.0f}%", INK, bold=i == highlight)],
+                                           percent(p, 0), INK, bold=i == highlight)],
                         bold=i == highlight))
     return _bar_chart(rows, _Axis(0.0, 1.0, lambda _t: percent_format([0.0, 0.5]), fixed=[0.0, 0.25, 0.5, 0.75, 1.0]),
                       name, title)

@@ -25,6 +25,7 @@ import scipy.sparse as sp
 from scipy.special import expit, logit
 
 from .features import FEATURE_LABELS, TIME_COLUMNS, time_features
+from .percentages import adaptive_percent
 
 if TYPE_CHECKING:  # pragma: no cover
     from .model import EngagementModel
@@ -299,17 +300,10 @@ def _merged_terms(A, eligible: np.ndarray, keep: np.ndarray, d: int, df: np.ndar
     return out
 
 
-def _percent(x: float, signed: bool = False) -> str:
-    """"5%", or "0.8%" below 10% so small effects do not read as "1%" and "-0%"."""
-    digits = 1 if abs(x) < 0.095 else 0
-    text = f"{x:+.{digits}%}" if signed else f"{x:.{digits}%}"
-    return text.replace("-0.0%", "0.0%").replace("+0.0%", "0.0%")
-
-
 def _sentence(row, outcome: str, interval: float) -> str:
     pct = row.relative_change
     more = "more" if pct >= 0 else "fewer"
-    size = _percent(abs(pct))
+    size = adaptive_percent(abs(pct))
     text = f"{row.head_phrase} went with about {size} {more} {outcome}"
     if row.kind == "feature" and row.step == "present vs absent":
         text = f"{row.head_phrase} got about {size} {more} {outcome} than those that do not"
@@ -318,7 +312,8 @@ def _sentence(row, outcome: str, interval: float) -> str:
     elif row.kind == "time":
         text = f"{row.head_phrase} got about {size} {more} {outcome}"
     if np.isfinite(row.low):
-        text += f" ({interval:.0%} interval {_percent(row.low, True)} to {_percent(row.high, True)})"
+        text += (f" ({interval:.0%} interval {adaptive_percent(row.low, signed=True)} "
+                 f"to {adaptive_percent(row.high, signed=True)})")
     if row.uncertain:
         text += "; uncertain: the interval includes no effect"
     return text + "."

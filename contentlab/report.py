@@ -30,6 +30,7 @@ import re
 from dataclasses import dataclass, field
 from datetime import date, datetime, timedelta
 from fractions import Fraction
+from functools import partial
 from pathlib import Path
 from typing import Any, Iterable
 
@@ -37,6 +38,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import ContentlabError
+from .percentages import TRUE_MINUS, percent, percentage_points, signed_number, signed_percent
 
 # ------------------------------------------------------------------ settings
 BASELINE_BLOCKS = 4          # "the previous four weeks"
@@ -662,20 +664,11 @@ def expected_flags(n_items: int) -> float:
 
 
 # ---------------------------------------------------------------- formatting
-def pct(rate: float, digits: int = 2) -> str:
-    if rate is None or not np.isfinite(rate):
-        return "n/a"
-    return f"{100 * rate:.{digits}f}%"
-
-
-def points(diff: float, digits: int = 2) -> str:
-    """A change in a rate, in percentage points, with its sign."""
-    if diff is None or not np.isfinite(diff):
-        return "n/a"
-    v = 100 * diff
-    if round(v, digits) == 0:
-        return f"{0:.{digits}f} pts"
-    return f"{'+' if v > 0 else '−'}{abs(v):.{digits}f} pts"
+# Figures are worded by contentlab.percentages (one rounding and sign rule everywhere); the report writes
+# negative figures with the typographic minus sign, like its charts.
+signed = partial(signed_number, minus=TRUE_MINUS)
+signed_pct = partial(signed_percent, minus=TRUE_MINUS)
+points = partial(percentage_points, minus=TRUE_MINUS)
 
 
 def count(value: float) -> str:
@@ -690,19 +683,17 @@ def money(value: float) -> str:
     return f"{value:,.2f}"
 
 
-def share_text(share: float) -> str:
-    if share is None or not np.isfinite(share):
-        return "n/a"
-    return f"{100 * share:.0f}%"
-
-
-def signed(value: float, digits: int = 2) -> str:
-    if value is None or not np.isfinite(value):
-        return "n/a"
-    return f"{'+' if value > 0 else '−' if value < 0 else ''}{abs(value):.{digits}f}"
-
-
 # ===================================================================== the report
+# Every table the report can write (one CSV each in its folder); a rerun removes only these names from a
+# folder written before the manifest existed. tests/test_report.py checks the report writes no other.
+REPORT_TABLES = frozenset({
+    "headline", "trend", "channels", "posts_ranked", "channel_priors", "costs", "shift_share",
+    "shift_share_slots", "residual_posts", "residual_days", "drivers", "driver_changes", "experiment_arms",
+    "experiments", "slots", "drafts", "recommendations",
+})
+# Beside the tables: the names this run wrote, so the next run removes its own leftovers and nothing else.
+REPORT_MANIFEST = ".contentlab-tables.json"
+
 @dataclass
 class WeeklyReport:
     """Everything the report says, already worded; tables are what the CSV files hold."""
@@ -906,12 +897,12 @@ def headline_section(ctx: _Context) -> tuple[dict, dict]:
     change = cur["rate"] - base["rate"] if cur["n"] > 0 and base["n"] > 0 else float("nan")
     ly_label = "the same week last year" if ctx.period.kind == "week" else "the same dates 52 weeks earlier"
     figures = [
-        {"label": ctx.this, "value": pct(cur["rate"]),
+        {"label": ctx.this, "value": percent(cur["rate"]),
          "detail": (f"{cur['posts']} posts · {count(cur['n'])} impressions · "
                     f"{count(cur['k'])} {UNIT_NAMES[ctx.outcome]}")},
-        {"label": ctx.base_name, "value": pct(base["rate"]),
+        {"label": ctx.base_name, "value": percent(base["rate"]),
          "detail": f"{base['posts']} posts · {count(base['n'])} impressions"},
-        {"label": ly_label, "value": pct(ly["rate"]) if ly else "n/a",
+        {"label": ly_label, "value": percent(ly["rate"]) if ly else "n/a",
          "detail": f"{ly['posts']} posts · {count(ly['n'])} impressions" if ly else "not in the history"},
     ]
     if cur["posts"] == 0 or cur["n"] == 0:
@@ -923,20 +914,20 @@ def headline_section(ctx: _Context) -> tuple[dict, dict]:
     else:
         status = "ok"
         if base["n"] == 0:
-            idea = (f"{Name} was {pct(cur['rate'])} {ctx.period.during}; the history has no posts in "
+            idea = (f"{Name} was {percent(cur['rate'])} {ctx.period.during}; the history has no posts in "
                     f"{ctx.base_name}, so there is nothing recent to compare with.")
         else:
             direction = "above" if change > 0 else "below" if change < 0 else "level with"
-            idea = (f"{Name} was {pct(cur['rate'])} {ctx.period.during}, "
+            idea = (f"{Name} was {percent(cur['rate'])} {ctx.period.during}, "
                     f"{points(abs(change)).lstrip('+').replace('pts', 'percentage points')} "
-                    f"{direction} {ctx.base_name} ({pct(base['rate'])})")
+                    f"{direction} {ctx.base_name} ({percent(base['rate'])})")
             if change == 0:
-                idea = f"{Name} was {pct(cur['rate'])} {ctx.period.during}, level with {ctx.base_name}"
+                idea = f"{Name} was {percent(cur['rate'])} {ctx.period.during}, level with {ctx.base_name}"
             if ly:
                 d2 = cur["rate"] - ly["rate"]
                 side = "above" if d2 > 0 else "below" if d2 < 0 else "level with"
                 idea += (f" and {points(abs(d2)).lstrip('+')} {side} "
-                         f"{ly_label} ({pct(ly['rate'])}).")
+                         f"{ly_label} ({percent(ly['rate'])}).")
             else:
                 idea += "; the history does not reach back to the same week last year."
         meaning = noise_sentence(noise, ctx)
@@ -1012,9 +1003,9 @@ def happened_section(ctx: _Context, noise: dict) -> dict:
             place = f"the {_ordinal(rank_high)} highest"
         else:
             place = f"the {_ordinal(int(np.sum(finite < cur_rate)) + 1)} lowest"
-        out["trend_idea"] = (f"This {noun}'s {pct(cur_rate)} is {place} of the last {finite.size} {noun}s with posts "
-                             f"(range {pct(rates[lo_i])} in {trend['label'][lo_i]} to {pct(rates[hi_i])} in "
-                             f"{trend['label'][hi_i]}).")
+        out["trend_idea"] = (f"This {noun}'s {percent(cur_rate)} is {place} of the last {finite.size} {noun}s "
+                             f"with posts (range {percent(rates[lo_i])} in {trend['label'][lo_i]} to "
+                             f"{percent(rates[hi_i])} in {trend['label'][hi_i]}).")
         out["trend_meaning"] = ("The shaded box is the normal range for this week given past noise; a point outside "
                                 "it is unusual." if band else
                                 "Too little history to draw a normal range yet.")
@@ -1056,8 +1047,8 @@ def happened_section(ctx: _Context, noise: dict) -> dict:
             out["channels_meaning"] = "Import posts from other channels to compare them."
         elif top is not None:
             thin = " (thin evidence: few impressions)" if 0 < top["impressions"] < THIN_IMPRESSIONS else ""
-            out["channels_idea"] = (f"{top['channel']} moved the most: {pct(top['base_rate'])} in {ctx.base_name} "
-                                    f"to {pct(top['rate'])} {ctx.this}{thin}.")
+            out["channels_idea"] = (f"{top['channel']} moved the most: {percent(top['base_rate'])} in {ctx.base_name} "
+                                    f"to {percent(top['rate'])} {ctx.this}{thin}.")
             out["channels_meaning"] = ("Channels differ a lot in their usual rate, so compare each channel with its "
                                        "own past, not with the others.")
             out["highlight_channel"] = str(top["channel"])
@@ -1066,7 +1057,7 @@ def happened_section(ctx: _Context, noise: dict) -> dict:
             out["channels_meaning"] = "The change is all about which channels posted."
         out["channel_rows"] = [{
             "channel": r["channel"], "posts": r["posts"], "impressions": count(r["impressions"]),
-            "rate": pct(r["rate"]), "base_rate": pct(r["base_rate"]), "change": points(r["change"]),
+            "rate": percent(r["rate"]), "base_rate": percent(r["base_rate"]), "change": points(r["change"]),
             "colour": ctx.colours.get(r["channel"]), "thin": 0 < r["impressions"] < THIN_IMPRESSIONS,
             "absent": r["impressions"] == 0,
         } for _, r in ch_table.iterrows()]
@@ -1155,16 +1146,16 @@ def _vs(rel: float) -> str:
         return "level with"
     if abs(rel) < 0.005:
         return "level with"
-    return f"{100 * abs(rel):.0f}% {'above' if rel > 0 else 'below'}"
+    return f"{percent(abs(rel), 0)} {'above' if rel > 0 else 'below'}"
 
 
 def _ranked_row(r: pd.Series, ctx: _Context) -> dict:
     return {
         "rank": int(r["rank"]), "headline": r["headline"], "channel": r["channel"], "day": r["day"],
-        "impressions": count(r["impressions"]), "outcome": count(r["outcome"]), "rate": pct(r["rate"]),
-        "shrunken": pct(r["shrunken_rate"]),
-        "interval": f"{pct(r['shrunken_low'])}–{pct(r['shrunken_high'])}",
-        "vs": signed(100 * r["vs_channel"], 0) + "%" if np.isfinite(r["vs_channel"]) else "n/a",
+        "impressions": count(r["impressions"]), "outcome": count(r["outcome"]), "rate": percent(r["rate"]),
+        "shrunken": percent(r["shrunken_rate"]),
+        "interval": f"{percent(r['shrunken_low'])}–{percent(r['shrunken_high'])}",
+        "vs": signed_pct(r["vs_channel"], 0),
         "colour": ctx.colours.get(r["channel"]),
         "thin": r["impressions"] < THIN_IMPRESSIONS,
     }
@@ -1176,7 +1167,7 @@ def _priors_text(priors: pd.DataFrame) -> str:
         s = p["strength"]
         s_text = "no extra spread, all shrunk to the mean" if not np.isfinite(s) else f"weight {count(s)} impressions"
         borrowed = " (borrowed from all channels)" if p["pooled"] else ""
-        parts.append(f"{p['channel']}: usual {pct(p['mean'])}, {s_text}{borrowed}")
+        parts.append(f"{p['channel']}: usual {percent(p['mean'])}, {s_text}{borrowed}")
     return ("Channel priors (beta-binomial, method of moments over the "
             f"{PRIOR_BLOCKS} weeks before this one): " + "; ".join(parts) + ".")
 
@@ -1211,7 +1202,7 @@ def why_section(ctx: _Context, model: dict | None) -> dict:
             out["mix_reason"] = _mix_reason(top_mix, pooled(base)["rate"])
             out["detail"] = (f"Largest mix part: {_mix_reason(top_mix, pooled(base)['rate'])} "
                              f"({points(top_mix['mix'])}). Largest performance part: {top_within['group']} "
-                             f"({pct(top_within['base_rate'])} → {pct(top_within['rate'])}, "
+                             f"({percent(top_within['base_rate'])} → {percent(top_within['rate'])}, "
                              f"{points(top_within['within'])}).")
             if lead == "mix":
                 out["meaning"] = ("Mostly a change in where you posted, not in how well posts did: the channels "
@@ -1223,8 +1214,8 @@ def why_section(ctx: _Context, model: dict | None) -> dict:
         for _, r in rows.iterrows():
             out["rows"].append({
                 "group": r["group"], "colour": ctx.colours.get(r["group"]),
-                "base_share": share_text(r["base_share"]), "share": share_text(r["share"]),
-                "base_rate": pct(r["base_rate"]), "rate": pct(r["rate"]),
+                "base_share": percent(r["base_share"], 0), "share": percent(r["share"], 0),
+                "base_rate": percent(r["base_rate"]), "rate": percent(r["rate"]),
                 "mix": points(r["mix"]), "within": points(r["within"]), "total": points(r["total"]),
                 "thin": 0 < min(r["impressions"], r["base_impressions"]) < THIN_IMPRESSIONS,
                 "absent": "no posts this " + ctx.period.noun if r["impressions"] == 0 else
@@ -1254,7 +1245,7 @@ def why_section(ctx: _Context, model: dict | None) -> dict:
             top = fine.head(6)
             out["slot_rows"] = [{"group": r["group"], "colour": ctx.colours.get(r["group"].split(" / ")[0]),
                                  "mix": points(r["mix"]), "within": points(r["within"]), "total": points(r["total"]),
-                                 "base_share": share_text(r["base_share"]), "share": share_text(r["share"])}
+                                 "base_share": percent(r["base_share"], 0), "share": percent(r["share"], 0)}
                                 for _, r in top.iterrows()]
             out["slot_idea"] = (f"Split finer by channel and time of day, the largest single part is "
                                 f"{fine.iloc[0]['group']} ({points(fine.iloc[0]['total'])}).")
@@ -1276,7 +1267,7 @@ def _mix_reason(row: pd.Series, pooled_rate: float) -> str:
     rate = row["base_rate"] if np.isfinite(row["base_rate"]) else row["rate"]
     better = rate > pooled_rate
     return (f"{row['group']}'s share of impressions {'rose' if more else 'fell'} from "
-            f"{share_text(row['base_share'])} to {share_text(row['share'])}, and it usually does "
+            f"{percent(row['base_share'], 0)} to {percent(row['share'], 0)}, and it usually does "
             f"{'better' if better else 'worse'} than average")
 
 
@@ -1319,7 +1310,8 @@ def _unusual(ctx: _Context, model: dict | None) -> dict:
         out["unusual_idea"] = (f"{len(flagged)} of {len(posts)} posts {ctx.this} were unusual against "
                                f"{_short_source(source)} "
                                f"(about {expect:.1f} would be by chance); the most: “{top['headline']}” "
-                               f"({top['channel']}, {pct(top['rate'])} against {pct(top['predicted_rate'])} expected).")
+                               f"({top['channel']}, {percent(top['rate'])} against "
+                               f"{percent(top['predicted_rate'])} expected).")
         out["unusual_meaning"] = ("Worth a look: something about these posts (the news, a link, a share by someone "
                                   "big) is not in the headline features; do not copy them without knowing what.")
     else:
@@ -1331,11 +1323,12 @@ def _unusual(ctx: _Context, model: dict | None) -> dict:
     if len(flagged_days):
         d = flagged_days.iloc[0]
         out["unusual_days_idea"] = (f"{len(flagged_days)} day(s) stood out; the most: {d['day']} "
-                                    f"({pct(d['rate'])} against {pct(d['predicted_rate'])} expected, "
+                                    f"({percent(d['rate'])} against {percent(d['predicted_rate'])} expected, "
                                     f"z = {signed(d['z'], 1)}).")
     out["unusual_rows"] = [_residual_row(r, ctx) for _, r in posts.head(8).iterrows()]
-    out["unusual_day_rows"] = [{"day": r["day"], "posts": int(r["posts"]), "rate": pct(r["rate"]),
-                                "predicted": pct(r["predicted_rate"]), "z": signed(r["z"], 1), "flag": bool(r["flag"])}
+    out["unusual_day_rows"] = [{"day": r["day"], "posts": int(r["posts"]), "rate": percent(r["rate"]),
+                                "predicted": percent(r["predicted_rate"]), "z": signed(r["z"], 1),
+                                "flag": bool(r["flag"])}
                                for _, r in days.iterrows()]
     return out
 
@@ -1346,7 +1339,7 @@ def _short_source(source: str) -> str:
 
 def _residual_row(r: pd.Series, ctx: _Context) -> dict:
     return {"headline": r["headline"], "channel": r["channel"], "day": r["day"], "impressions": count(r["impressions"]),
-            "rate": pct(r["rate"]), "predicted": pct(r["predicted_rate"]), "z": signed(r["z"], 1),
+            "rate": percent(r["rate"]), "predicted": percent(r["predicted_rate"]), "z": signed(r["z"], 1),
             "flag": bool(r["flag"]), "colour": ctx.colours.get(r["channel"])}
 
 
@@ -1580,17 +1573,17 @@ def _channel_of_driver(row: pd.Series, ctx: _Context) -> str | None:
 
 
 def _effect_text(row: pd.Series) -> str:
-    return signed(100 * row["effect_pct"], 1) + "%"
+    return signed_pct(row["effect_pct"], 1)
 
 
 def _interval_text(row: pd.Series) -> str:
     if not (np.isfinite(row["low_pct"]) and np.isfinite(row["high_pct"])):
         return "no interval"
-    return f"{signed(100 * row['low_pct'], 1)}% to {signed(100 * row['high_pct'], 1)}%"
+    return f"{signed_pct(row['low_pct'], 1)} to {signed_pct(row['high_pct'], 1)}"
 
 
 def _pct_or_none(v: float) -> str:
-    return f"{signed(100 * v, 1)}%" if v is not None and np.isfinite(v) else "not in that fit"
+    return signed_pct(v, 1, missing="not in that fit")
 
 
 def _driver_changes(ws, ctx: _Context, drivers: pd.DataFrame) -> dict:
@@ -1687,12 +1680,12 @@ def experiments_section(ws, ctx: _Context, missing: list[str]) -> dict:
             sentence = f"{st.name} has no results yet; its {len(arms)} arms start from their priors."
         elif st.status == "stopped":
             sentence = (f"{st.name} is finished: {st.settings.get('winner', d.leader)} won "
-                        f"(P(best) {share_text(d.prob_best)} when last computed).")
+                        f"(P(best) {percent(d.prob_best, 0)} when last computed).")
         elif d.stop:
-            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {share_text(d.prob_best)}; the decision rule "
+            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {percent(d.prob_best, 0)}; the decision rule "
                         f"says stop and run it.")
         else:
-            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {share_text(d.prob_best)}, not yet decisive; "
+            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {percent(d.prob_best, 0)}, not yet decisive; "
                         f"keep going.")
         gain = st.clicks_gained
         warnings = []
@@ -1710,8 +1703,8 @@ def experiments_section(ws, ctx: _Context, missing: list[str]) -> dict:
             "leader": d.leader, "stop": bool(d.stop), "prob_best": d.prob_best, "gain": gain,
             "warnings": warnings,
             "arms": [{"arm": r["arm"], "headline": r["headline"], "impressions": count(r["impressions"]),
-                      "clicks": count(r["clicks"]), "rate": pct(r["rate"]),
-                      "posterior": pct(r["posterior_mean"]), "prob_best": share_text(r["prob_best"]),
+                      "clicks": count(r["clicks"]), "rate": percent(r["rate"]),
+                      "posterior": percent(r["posterior_mean"]), "prob_best": percent(r["prob_best"], 0),
                       "leader": r["arm"] == d.leader} for _, r in arms.iterrows()],
         })
         a = arms.copy()
@@ -1867,10 +1860,10 @@ def _call_slots(mod, ws, ctx, model, drafts: pd.DataFrame | None = None) -> dict
             slot_text = f"{label[0]} {' '.join(label[2:])}" if len(label) >= 3 else str(b["slot"])
             ev = f"{int(b['n_posts'])} past posts in that slot"
             if plan.usual is not None and np.isfinite(b.get("lift_vs_usual", np.nan)):
-                ev = (f"{signed(100 * b['lift_vs_usual'], 0)}% against your usual {plan.usual['label']} (90% "
-                      f"interval {signed(100 * b['lift_low'], 0)}% to {signed(100 * b['lift_high'], 0)}%); " + ev)
-            rows.append({"channel": ch, "slot": slot_text, "predicted": pct(b["predicted_rate"]),
-                         "interval": f"{pct(b['rate_low'])}–{pct(b['rate_high'])}", "evidence": ev,
+                ev = (f"{signed_pct(b['lift_vs_usual'], 0)} against your usual {plan.usual['label']} (90% "
+                      f"interval {signed_pct(b['lift_low'], 0)} to {signed_pct(b['lift_high'], 0)}); " + ev)
+            rows.append({"channel": ch, "slot": slot_text, "predicted": percent(b["predicted_rate"]),
+                         "interval": f"{percent(b['rate_low'])}–{percent(b['rate_high'])}", "evidence": ev,
                          "colour": ctx.colours.get(ch), "lift_low": float(b.get("lift_low", np.nan)),
                          "lift": float(b.get("lift_vs_usual", np.nan)),
                          "thin": int(b["n_posts"]) < THIN_SLOT_POSTS})
@@ -1939,9 +1932,9 @@ def _call_scoring(mod, ws, ctx, model, queued) -> dict:
         ch = r.get("channel")
         rows.append({
             "headline": r["headline"], "channel": "" if _is_missing(ch) else str(ch), "group": r.get("group") or "",
-            "source": r["source"], "predicted": pct(r["predicted_rate"]),
-            "interval": f"{pct(r['rate_low'])}–{pct(r['rate_high'])}",
-            "percentile": share_text(r.get("percentile", np.nan)),
+            "source": r["source"], "predicted": percent(r["predicted_rate"]),
+            "interval": f"{percent(r['rate_low'])}–{percent(r['rate_high'])}",
+            "percentile": percent(r.get("percentile", np.nan), 0),
             "rank": "" if _is_missing(r.get("group_rank")) else int(r["group_rank"]),
             "verdict": _lead_verdict(r.get("p_better_than_next")) if r.get("group_rank") == 1 else "",
             "colour": ctx.colours.get(str(ch)), "_perc": float(r.get("percentile", np.nan)),
@@ -1988,13 +1981,13 @@ def recommendations(ctx: _Context, headline: dict, happened: dict, why: dict, wo
         item = ready[0]
         recs.append({"text": f"Stop experiment {item['name']} and run arm {item['leader']}: "
                              f"“{item['leader_headline']}”.",
-                     "evidence": f"P(best) {share_text(item['prob_best'])}; {item['decision']}",
+                     "evidence": f"P(best) {percent(item['prob_best'], 0)}; {item['decision']}",
                      "section": "experiments"})
     elif running and running[0]["impressions"] != "0":
         item = running[0]
         recs.append({"text": f"Keep experiment {item['name']} running; arm {item['leader']} leads but is not "
                              "decisive yet.",
-                     "evidence": f"P(best) {share_text(item['prob_best'])}; {item['decision']}",
+                     "evidence": f"P(best) {percent(item['prob_best'], 0)}; {item['decision']}",
                      "section": "experiments"})
     if next_week.get("best_draft"):
         b = next_week["best_draft"]
@@ -2114,6 +2107,10 @@ def write_report(report: WeeklyReport, out_dir: str | Path = "reports") -> Repor
     path = out / f"{report.stem}.html"
     folder = out / report.stem
     folder.mkdir(exist_ok=True)
+    names = [f"{name}.csv" for name, table in sorted(report.tables.items()) if table is not None]
+    earlier = _tables_written_before(folder)
+    # Listed before writing, so an interrupted run still leaves every file it may have written in the manifest.
+    _write_manifest(folder, sorted(earlier | set(names)))
     written = []
     for name, table in sorted(report.tables.items()):
         if table is None:
@@ -2121,11 +2118,41 @@ def write_report(report: WeeklyReport, out_dir: str | Path = "reports") -> Repor
         target = folder / f"{name}.csv"
         write_csv(_csv_ready(table), target)
         written.append(target)
-    for old in folder.glob("*.csv"):  # tables of an earlier run of the same period that this one did not write
-        if old not in written:
-            old.unlink()
+    for stale in sorted(earlier - set(names)):  # tables of an earlier run that this one did not write
+        (folder / stale).unlink(missing_ok=True)
+    _write_manifest(folder, names)
     write_text(path, html)  # whole or not at all, also when interrupted
     return ReportFiles(path, written)
+
+
+def _tables_written_before(folder: Path) -> set[str]:
+    """The CSV files an earlier run wrote into ``folder``, the only ones a rerun may remove.
+
+    From its manifest; a folder written before there was a manifest gives the files named like a table
+    this version writes (:data:`REPORT_TABLES`), so any other file a user put there stays.
+    """
+    manifest = folder / REPORT_MANIFEST
+    try:
+        listed = json.loads(manifest.read_text(encoding="utf-8"))["tables"]
+    except FileNotFoundError:
+        listed = None
+    except (OSError, ValueError, KeyError, TypeError):  # damaged: fall back to the names contentlab uses
+        listed = None
+    if not isinstance(listed, list):
+        return {f"{name}.csv" for name in REPORT_TABLES if (folder / f"{name}.csv").is_file()}
+    # Only bare CSV names: an edited manifest must not reach outside the folder or remove anything else.
+    return {n for n in listed if isinstance(n, str) and n.endswith(".csv") and Path(n).name == n
+            and not n.startswith(".") and (folder / n).is_file()}
+
+
+def _write_manifest(folder: Path, names: list[str]) -> None:
+    from .safety import write_text
+
+    write_text(folder / REPORT_MANIFEST, json.dumps({
+        "written_by": "contentlab report",
+        "note": "The tables contentlab wrote here; the next report for this period replaces or removes only "
+                "these. Other files in this folder are left alone.",
+        "tables": names}, indent=2) + "\n")
 
 
 def _csv_ready(table: pd.DataFrame) -> pd.DataFrame:

@@ -28,6 +28,7 @@ import pandas as pd
 
 from .draftengine import DraftDesign, DraftEngine, engine_for, joint_logits, logistic, prob_better, rate_lift
 from .errors import ContentlabError
+from .percentages import signed_percent
 
 __all__ = [
     "score_drafts",
@@ -140,13 +141,6 @@ def _feature_phrase(name: str, value: float | None, when: str | None) -> str:
     return FEATURE_LABELS.get(name, name)
 
 
-def pct(x: float, digits: int = 0) -> str:
-    """+12% / -8% for a relative change."""
-    if x is None or not math.isfinite(x):
-        return "n/a"
-    return f"{x * 100:+.{digits}f}%"
-
-
 @lru_cache(maxsize=4096)
 def _stems_of(text: str) -> dict[str, str]:
     from .features import _stem
@@ -207,7 +201,7 @@ def _reason_rows(eng: DraftEngine, d: DraftDesign, frame: pd.DataFrame, top: int
                 label = _feature_phrase(name, value, when)
             change = math.exp(c) - 1.0
             rows.append({"feature": name, "label": label, "logit": c, "change": change,
-                         "text": f"{label}: {change * 100:+.0f}%"})
+                         "text": f"{label}: {signed_percent(change)}"})
         out.append(rows)
     return out
 
@@ -436,6 +430,7 @@ def score_drafts(
     level: float | None = None,
     n_suggestions: int = 2,
     impressions=None,
+    by_option: bool = True,
 ) -> pd.DataFrame:
     """Score draft headlines against the user's history; one row per draft, input columns kept.
 
@@ -464,6 +459,9 @@ def score_drafts(
     impressions : number or array, optional
         Impressions the posts are expected to get, for ``rate_low``/``rate_high``
         (default: the channel's median in history).
+    by_option : bool
+        Problems name the command-line option (``--channel``) where one would fix them; False (the JSON
+        API, ``POST /api/score``) names the draft's ``"channel"`` field instead, as ``record_results`` does.
 
     Returns
     -------
@@ -489,9 +487,10 @@ def score_drafts(
     if (("channel" not in prepared) or prepared["channel"].isna().any()) and known and len(known) > 1 \
             and "(none)" not in known:
         missing = np.flatnonzero(prepared["channel"].isna().to_numpy()) if "channel" in prepared else [0]
+        how = "--channel, or a 'channel' column" if by_option else 'its "channel" field'
         raise ContentlabError(
-            f"{_where(frame.attrs.get('source'), int(missing[0]))}: give the draft a channel (--channel, or a "
-            f"'channel' column); your history has several: {', '.join(known)}"
+            f"{_where(frame.attrs.get('source'), int(missing[0]))}: give the draft a channel ({how}); "
+            f"your history has several: {', '.join(known)}"
         )
     work = prepared.reset_index(drop=True)
     d = eng.design(work, impressions=impressions)

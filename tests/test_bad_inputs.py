@@ -94,6 +94,8 @@ CASES = [
      "--at: '03/12/2026 09:00' is a day/month form"),
     ("one-digit offset in score --at", {}, ["score", "A new reading room", "--channel", "newsletter", "--at", "2026-12-03T09:00+1"],
      "--at: '2026-12-03T09:00+1' has the UTC offset '+1'"),
+    ("score without a channel when the history has several", {}, ["score", "A new reading room"],
+     "draft 1: give the draft a channel (--channel, or a 'channel' column); your history has several"),
     ("day/month date in record --at", {}, ["record", "laser", "--arm", "A", "--impressions", "10", "--clicks", "1", "--at", "03/12/2026"],
      "--at: '03/12/2026' is a day/month form"),
     ("one-digit offset in a results file", {"r.csv": b"arm,impressions,clicks,at\nA,10,1,2026-12-03T09:00-5\n"},

@@ -560,12 +560,3 @@ def test_interval_widens_with_weeks_ahead(demo_model):
     # no date: the week after the history
     assert np.allclose(undated.iloc[0][["predicted_rate", "rate_low", "rate_high"]].to_numpy(float),
                        pred.iloc[0][["predicted_rate", "rate_low", "rate_high"]].to_numpy(float))
-
-
-def test_driver_sentences_show_small_effects_with_a_decimal_and_never_minus_zero():
-    from contentlab.drivers import _percent
-
-    assert _percent(-0.004, signed=True) == "-0.4%"  # was "-0%" in "interval -1% to -0%"
-    assert _percent(-0.00004, signed=True) == "0.0%"
-    assert _percent(0.008) == "0.8%"
-    assert _percent(0.123, signed=True) == "+12%"

@@ -21,6 +21,7 @@ from hypothesis import strategies as st
 from contentlab.cli import main
 from contentlab.errors import ContentlabError
 from contentlab.report import (
+    REPORT_TABLES,
     Period,
     build_report,
     channel_priors,
@@ -708,6 +709,7 @@ def test_hostile_text_in_every_chart_is_escaped_and_the_report_is_written(tmp_pa
             stop_experiment(ws, "makerspace")
         report = build_report(ws, today=date(2026, 12, 1))
         assert {"channels", "shift-share", "experiment-1"} <= set(report.charts)
+        assert {"experiments", "experiment_arms"} <= set(report.tables) <= REPORT_TABLES
         from contentlab.charts import check_svg
 
         for name, svg in report.charts.items():
@@ -775,3 +777,85 @@ def test_report_html_returns_the_page_for_a_week_without_writing(tmp_path):
     assert sorted(p.name for p in tmp_path.iterdir()) == ["out", "ws"]     # nothing else written
     with pytest.raises(ContentlabError, match="not an ISO week"):
         report_html(ws, week="W47")
+
+
+def test_every_table_the_demo_report_writes_is_a_known_table_name(demo_report):
+    """A folder from before the manifest loses only files named like REPORT_TABLES, so that list must be whole."""
+    assert set(demo_report.tables) <= REPORT_TABLES
+    assert {"drivers", "driver_changes", "slots", "drafts"} <= set(demo_report.tables)
+
+
+def _small_report(tmp_path):
+    ws = workspace_with(tmp_path, weekly_history(12, date(2026, 11, 9)))
+    report = build_report(ws, week="2026-W46", today=date(2026, 12, 1))
+    ws.close()
+    return report
+
+
+def test_a_rerun_removes_only_the_tables_contentlab_wrote_there(tmp_path):
+    import dataclasses
+    import json
+
+    from contentlab.report import REPORT_MANIFEST
+
+    report = _small_report(tmp_path)
+    assert {"trend", "channels"} <= set(report.tables)
+    files = write_report(report, tmp_path / "out")
+    folder = files.folder
+    manifest = json.loads((folder / REPORT_MANIFEST).read_text(encoding="utf-8"))
+    assert sorted(manifest["tables"]) == sorted(p.name for p in files.tables)
+    (folder / "my-notes.csv").write_text("a,b\n1,2\n", encoding="utf-8")   # the user's own files
+    (folder / "my-notes.txt").write_text("keep me", encoding="utf-8")
+    fewer = dataclasses.replace(report, tables={k: v for k, v in report.tables.items() if k != "trend"})
+    again = write_report(fewer, tmp_path / "out")
+    assert not (folder / "trend.csv").exists()                  # the earlier run's table this run did not write
+    assert (folder / "channels.csv").exists()
+    assert (folder / "my-notes.csv").read_text(encoding="utf-8") == "a,b\n1,2\n"
+    assert (folder / "my-notes.txt").exists()
+    left = sorted(p.name for p in folder.iterdir() if not p.name.startswith("."))
+    assert left == sorted([p.name for p in again.tables] + ["my-notes.csv", "my-notes.txt"])
+    assert json.loads((folder / REPORT_MANIFEST).read_text(encoding="utf-8"))["tables"] == sorted(
+        p.name for p in again.tables)
+
+
+def test_a_folder_without_manifest_loses_only_files_named_like_report_tables(tmp_path):
+    from contentlab.report import REPORT_MANIFEST
+
+    report = _small_report(tmp_path)
+    folder = tmp_path / "out" / report.stem
+    folder.mkdir(parents=True)
+    assert "driver_changes" not in report.tables                 # no model: this run does not write it
+    (folder / "driver_changes.csv").write_text("from an older contentlab\n", encoding="utf-8")
+    (folder / "budget.csv").write_text("the user's\n", encoding="utf-8")
+    write_report(report, tmp_path / "out")
+    assert not (folder / "driver_changes.csv").exists()
+    assert (folder / "budget.csv").read_text(encoding="utf-8") == "the user's\n"
+    assert (folder / REPORT_MANIFEST).exists()
+
+
+def test_an_edited_manifest_cannot_remove_files_outside_the_tables(tmp_path):
+    import json
+
+    from contentlab.report import REPORT_MANIFEST
+
+    report = _small_report(tmp_path)
+    folder = tmp_path / "out" / report.stem
+    folder.mkdir(parents=True)
+    (tmp_path / "out" / "outside.csv").write_text("x\n", encoding="utf-8")
+    (folder / "notes.txt").write_text("x\n", encoding="utf-8")
+    (folder / REPORT_MANIFEST).write_text(json.dumps({"tables": ["../outside.csv", "notes.txt"]}), encoding="utf-8")
+    write_report(report, tmp_path / "out")
+    assert (tmp_path / "out" / "outside.csv").exists() and (folder / "notes.txt").exists()
+
+
+def test_a_damaged_manifest_falls_back_to_the_table_names(tmp_path):
+    from contentlab.report import REPORT_MANIFEST
+
+    report = _small_report(tmp_path)
+    folder = tmp_path / "out" / report.stem
+    folder.mkdir(parents=True)
+    (folder / REPORT_MANIFEST).write_text("{not json", encoding="utf-8")
+    (folder / "driver_changes.csv").write_text("old\n", encoding="utf-8")
+    (folder / "mine.csv").write_text("mine\n", encoding="utf-8")
+    write_report(report, tmp_path / "out")
+    assert not (folder / "driver_changes.csv").exists() and (folder / "mine.csv").exists()

@@ -386,6 +386,16 @@ def test_api_score_errors(client, body, status, words):
     assert words in r.json()["error"]
 
 
+def test_api_score_asks_for_the_channel_field_not_a_command_line_option(client):
+    """The JSON API names the draft's field; the CLI's wording (--channel) is tested in test_bad_inputs.py."""
+    r = client.post("/api/score", json={"drafts": [{"headline": "Inside the makerspace", "channel": "blog"},
+                                                  {"headline": "A draft without a channel"}]})
+    assert r.status_code == 400
+    error = r.json()["error"]
+    assert error.startswith('draft 2: give the draft a channel (its "channel" field); your history has several: ')
+    assert "--channel" not in error and "column" not in error
+
+
 @pytest.mark.parametrize("path, raw, words", [
     ("/api/score", b"{not json", "not valid JSON"),
     ("/api/score", b"", "not valid JSON"),

@@ -274,7 +274,7 @@ def cmd_next(args: argparse.Namespace) -> int:
         print(f"Split of the next {alloc.impressions:,} impressions ({policy}):")
         print(_table(frame, [
             ("arm", "arm", str), ("headline", "headline", lambda v: _clip(v, 60)),
-            ("impressions", "impressions", lambda v: f"{int(v):,}"), ("share", "share", lambda v: f"{v:.1%}"),
+            ("impressions", "impressions", lambda v: f"{int(v):,}"), ("share", "share", lambda v: _pct(v, 1)),
         ]))
     for line in alloc.why:
         print(_wrap("Why: " + line))
@@ -307,7 +307,7 @@ def cmd_status(args: argparse.Namespace) -> int:
         ("arm", "arm", str), ("headline", "headline", lambda v: _clip(v, 44)),
         ("impr.", "impressions", lambda v: f"{int(v):,}"), ("clicks", "clicks", lambda v: f"{int(v):,}"),
         ("rate [95% Wilson]", "rate", None), ("posterior", "posterior_mean", _pct),
-        ("P(best)", "prob_best", lambda v: f"{v:.1%}"), ("exp. loss", "expected_loss", lambda v: f"{100 * v:.3f} pp"),
+        ("P(best)", "prob_best", lambda v: _pct(v, 1)), ("exp. loss", "expected_loss", lambda v: f"{100 * v:.3f} pp"),
     ], extra={"rate [95% Wilson]": [
         "-" if not math.isfinite(r) else f"{_pct(r)} [{_pct(lo)}, {_pct(hi)}]"
         for r, lo, hi in zip(frame["rate"], frame["rate_low"], frame["rate_high"])
@@ -415,12 +415,11 @@ def cmd_record(args: argparse.Namespace) -> int:
 # ------------------------------------------------------------------ formatting
 
 
-def _pct(v) -> str:
-    try:
-        f = float(v)
-    except (TypeError, ValueError):
-        return "-"
-    return "-" if not math.isfinite(f) else f"{100 * f:.2f}%"
+def _pct(v, digits: int = 2) -> str:
+    """A rate or share in a terminal table: "4.56%", or "-" in an empty cell."""
+    from ..percentages import percent
+
+    return percent(v, digits, missing="-")
 
 
 def _text_or_dash(v) -> str:

@@ -212,6 +212,7 @@ def _saved_drivers(ws, outcome: str | None, top: int):
 
 def format_drivers(frame, about: dict, cautions: list[str]) -> str:
     from ..drivers import driver_sentences
+    from ..percentages import signed_percent
 
     head = (f"What went with more or fewer {about['outcome']} per impression in your history "
             f"(relative change at the typical rate {about['typical_rate']:.2%}, "
@@ -225,9 +226,9 @@ def format_drivers(frame, about: dict, cautions: list[str]) -> str:
                      "topic words": "What it is about (topic words)"}.get(group, str(group))
             lines.append(f"{title} (surest first):")
             lines.append(f"{'#':>3}  {'driver':<34} {'step':<24} {'change':>8} {'interval':>17}  {'evidence':<22}")
-        interval = f"{r.low:+.1%} to {r.high:+.1%}" if r.low == r.low else "n/a"
+        interval = f"{signed_percent(r.low, 1)} to {signed_percent(r.high, 1)}" if r.low == r.low else "n/a"
         flag = "  uncertain" if r.uncertain else ""
-        lines.append(f"{r.rank:>3}  {r.label[:34]:<34} {r.step[:24]:<24} {r.relative_change:>+8.1%} "
+        lines.append(f"{r.rank:>3}  {r.label[:34]:<34} {r.step[:24]:<24} {signed_percent(r.relative_change, 1):>8} "
                      f"{interval:>17}  {r.evidence[:22]:<22}{flag}")
         if r.rank < len(frame) and frame["group"].iloc[r.rank] != group:
             lines.append("")  # between groups; the blank line before "In words" ends the last

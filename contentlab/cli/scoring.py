@@ -122,11 +122,10 @@ def to_json(result) -> str:
 
 
 def _rate(x: float) -> str:
-    import math
+    """A predicted rate: two decimals below 10% ("4.56%"), one above ("12.3%"), as wide as each other."""
+    from ..percentages import percent
 
-    if x is None or not math.isfinite(x):
-        return "n/a"
-    return f"{x:.2%}" if x < 0.1 else f"{x:.1%}"
+    return percent(x, 2 if x is not None and x < 0.1 else 1)
 
 
 def _wrap(text: str, indent: str) -> str:
@@ -137,7 +136,7 @@ def format_table(result) -> str:
     """The terminal view: one block per group, drafts in rank order, then cautions."""
     import numpy as np
 
-    from ..scoring import pct
+    from ..percentages import signed_percent
 
     level = int(round(result.attrs.get("level", 0.9) * 100))
     outcome = result.attrs.get("outcome", "clicks")
@@ -172,8 +171,9 @@ def format_table(result) -> str:
                 s = suggestions[i]
                 if s["suggestions"]:
                     for k, sg in enumerate(s["suggestions"], 1):
-                        text = (f"edit {k}: \"{sg['text']}\"  {pct(sg['lift'])} "
-                                f"({level}%: {pct(sg['lift_low'])} to {pct(sg['lift_high'])}) - {sg['description']}")
+                        text = (f"edit {k}: \"{sg['text']}\"  {signed_percent(sg['lift'])} "
+                                f"({level}%: {signed_percent(sg['lift_low'])} to {signed_percent(sg['lift_high'])}) "
+                                f"- {sg['description']}")
                         lines.append(_wrap(text, pad))
                 else:
                     lines.append(_wrap("edit: " + s["note"], pad))
@@ -194,7 +194,7 @@ def format_table(result) -> str:
 def _slot_lines(plan, headline: str, level: int) -> list[str]:
     import numpy as np
 
-    from ..scoring import pct
+    from ..percentages import signed_percent
     from ..slots import WEEKDAYS, block_label
 
     if plan is None:
@@ -205,7 +205,8 @@ def _slot_lines(plan, headline: str, level: int) -> list[str]:
                    f"predicted {_rate(plan.usual['predicted_rate'])}")
     for _, b in plan.best.iterrows():
         lift = "" if not np.isfinite(b.get("lift_vs_usual", np.nan)) else (
-            f"; vs usual {pct(b['lift_vs_usual'])} ({level}%: {pct(b['lift_low'])} to {pct(b['lift_high'])})")
+            f"; vs usual {signed_percent(b['lift_vs_usual'])} "
+            f"({level}%: {signed_percent(b['lift_low'])} to {signed_percent(b['lift_high'])})")
         out.append(f"    {b['slot']}: {_rate(b['predicted_rate'])} (typical rate, {level}%: {_rate(b['rate_low'])} "
                    f"to {_rate(b['rate_high'])}; {int(b['n_posts'])} past posts){lift}")
     table = plan.table

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import math
 from functools import lru_cache
 from pathlib import Path
 from typing import Any, Callable
@@ -11,6 +10,8 @@ from starlette.concurrency import run_in_threadpool
 from starlette.requests import Request
 from starlette.responses import HTMLResponse, JSONResponse
 
+from ..percentages import finite_or_none as finite  # a float for JSON, or None (JSON has no NaN)
+from ..percentages import percent, signed_percent
 from .security import CSRF_COOKIE, CSRF_FIELD
 
 HERE = Path(__file__).resolve().parent
@@ -35,8 +36,8 @@ def environment():
         trim_blocks=True,
         lstrip_blocks=True,
     )
-    env.filters["pct"] = pct
-    env.filters["signed_pct"] = signed_pct
+    env.filters["pct"] = percent
+    env.filters["signed_pct"] = signed_percent
     env.filters["prob"] = prob
     env.filters["count"] = count
     return env
@@ -87,25 +88,6 @@ def _no_missing(obj: Any) -> Any:
 
 def json_error(message: str, status: int) -> JSONResponse:
     return ApiResponse({"error": message}, status_code=status)
-
-
-def finite(value: Any) -> float | None:
-    """A float for JSON, or None for NaN/inf/missing (JSON has no NaN)."""
-    try:
-        x = float(value)
-    except (TypeError, ValueError):
-        return None
-    return x if math.isfinite(x) else None
-
-
-def pct(value: Any, digits: int = 2) -> str:
-    x = finite(value)
-    return "n/a" if x is None else f"{x * 100:.{digits}f}%"
-
-
-def signed_pct(value: Any, digits: int = 0) -> str:
-    x = finite(value)
-    return "n/a" if x is None else f"{x * 100:+.{digits}f}%"
 
 
 def prob(value: Any) -> str:

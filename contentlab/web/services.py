@@ -20,14 +20,18 @@ MAX_DRAFTS = 200  # per request: a planning session, not a bulk job (use content
 # ------------------------------------------------------------------ drafts
 
 def score(state: WorkspaceState, drafts: list[dict], *, suggest: bool = True) -> tuple[list[dict], dict]:
-    """Score drafts (dicts with headline, optional channel, publish_at, group) with the warm model."""
+    """Score drafts (dicts with headline, optional channel, publish_at, group) with the warm model.
+
+    Problems name the draft's fields (``"channel"``), never a command-line option (``by_option=False``).
+    """
     import pandas as pd
 
     from ..scoring import score_drafts
 
     warm = state.warm()
     frame = pd.DataFrame(drafts)
-    result = score_drafts(frame, model=warm.model, history=warm.history, timezone=warm.timezone, suggest=suggest)
+    result = score_drafts(frame, model=warm.model, history=warm.history, timezone=warm.timezone, suggest=suggest,
+                          by_option=False)
     # Take the attributes off first: pandas deep-copies ``attrs`` on every column and row access,
     # which cost more than the scoring itself for one draft.
     attrs, result.attrs = result.attrs, {}

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 from markupsafe import Markup, escape
 
+from ..percentages import percent
+
 # Distinct hues for lines (no meaning attached to any colour).
 PALETTE = ["#3b5ba5", "#8e5ea2", "#4a4a4a", "#a0662a", "#2a7f99", "#b0447a", "#6b6b2a", "#5a7fd1"]
 
@@ -18,7 +20,7 @@ SIZES = (("wide", 640, 260, 3), ("narrow", 340, 220, 2))
 
 
 def line_chart(series: dict[str, list[tuple[float, float]]], *, y_label: str, x_label: str,
-               y_format=lambda v: f"{v:.0%}", y_max: float | None = None,
+               y_format=lambda v: percent(v, 0), y_max: float | None = None,
                x_ticks: list[tuple[float, str]] | None = None) -> Markup:
     """Lines of (x, y) points, one per named series, with a legend below; empty series are skipped."""
     if not any(series.values()):

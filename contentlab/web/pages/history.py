@@ -5,6 +5,7 @@ from __future__ import annotations
 from starlette.requests import Request
 from starlette.routing import Route
 
+from ...percentages import percent
 from .. import insight, services
 from ..common import ApiError, blocking, render
 from ..svg import line_chart
@@ -20,7 +21,7 @@ def _overview(state, channel: str | None, start: str | None, end: str | None) ->
     series = {(channel or "all channels"): [(i, float(r)) for i, r in enumerate(weeks["rate"])]}
     step = max(1, -(-len(weeks) // 6))  # at most six labels, evenly spaced
     ticks = [(i, w) for i, w in enumerate(weeks["week"]) if i % step == 0]
-    chart = line_chart(series, y_label="rate per week", x_label="ISO week", y_format=lambda v: f"{v:.1%}",
+    chart = line_chart(series, y_label="rate per week", x_label="ISO week", y_format=lambda v: percent(v, 1),
                        x_ticks=ticks)
     rows, cautions = services.drivers(state)
     recent = posts
