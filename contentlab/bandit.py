@@ -675,34 +675,29 @@ def replay_regret_rows(
         a = pa0 + clicks[act]
         b = pb0 + (impressions[act] - clicks[act])
         prob, loss = posterior_summary(a, b, n_draws, rng, with_loss=track or commit_on_stop)
+        spent = impressions[act].sum(axis=1)
         if track or commit_on_stop:
-            spent = impressions[act].sum(axis=1)
             now, lead = stop_rule(prob, loss, a / (a + b))
             now &= spent > 0
         if track:
             fire = now & (stop_at[act] < 0)
             stop_at[act[fire]] = spent[fire]
             named[act[fire]] = lead[fire]
+        # With a planned end time the whole budget is the one the pace so far implies (unknown before any spending).
+        paced_total = paced_budget(spent, done_rounds, n_rounds[act] - done_rounds) if paced else None
         t = temper
         if temper_start is not None:
-            spent_now = impressions[act].sum(axis=1)
-            planned = budget[act]
-            if paced:
-                planned = paced_budget(spent_now, done_rounds, n_rounds[act] - done_rounds)
-                planned = np.where(np.isfinite(planned), planned, 1.0)  # nothing spent yet: the start temper
-            t = budget_temper(spent_now, planned, temper, temper_start)[:, None]
+            planned = budget[act] if paced_total is None else np.where(np.isfinite(paced_total), paced_total, 1.0)
+            t = budget_temper(spent, planned, temper, temper_start)[:, None]
         keep = None
         if horizon is not None:
-            spent_now = impressions[act].sum(axis=1)
-            expected = horizon[act]
-            if paced:
-                expected = paced_budget(spent_now, done_rounds, n_rounds[act] - done_rounds)
-                expected = np.where(np.isfinite(expected), expected, horizon[act])
-            keep = worth_learning(a, b, np.maximum(expected - spent_now, n))
-            keep[spent_now == 0] = True
+            expected = horizon[act] if paced_total is None else np.where(np.isfinite(paced_total), paced_total,
+                                                                          horizon[act])
+            keep = worth_learning(a, b, np.maximum(expected - spent, n))
+            keep[spent == 0] = True
         cap = None
         if first_cap is not None:
-            fresh = impressions[act].sum(axis=1) == 0
+            fresh = spent == 0
             cap = np.where(fresh[:, None], first_cap, 1.0)
             if cap_lift:
                 cap = np.maximum(cap, prob)
