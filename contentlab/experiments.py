@@ -1351,13 +1351,12 @@ def _lookahead_words(bandit: ThompsonBandit, settings: Mapping, n: int, plan: Ma
     """Why a lookahead split is what it is: the impressions left, the drafts dropped and the sampling among the rest."""
     prob = bandit.prob_best()
     keep = bandit.worth_learning(n)
-    left = bandit.impressions_left(n)
     learned = (settings.get("prior") or {}).get("learned") or {}
     source = _horizon_words(learned, settings.get("budget"), settings.get("ends_at"))
     spent = float(bandit.impressions_.sum())
     dropped = [a for a, k in keep.items() if not k]
     kept = [a for a, k in keep.items() if k]
-    if left is None:
+    if bandit.horizon is None:
         return [f"Planned end {plan['when'] if plan else 'set'}: the impressions left are not known until results "
                 "from two different times are in (or one after the test was created), so every draft stays in the "
                 "split, by its probability of being best (plain Thompson sampling)."]
@@ -1394,10 +1393,9 @@ def _split_words(bandit: ThompsonBandit, settings: Mapping, plan: Mapping | None
     prob = bandit.prob_best()
     out = []
     budget = []
+    # A lookahead split says how many impressions are left in its own words (_lookahead_words).
     lookahead = settings.get("allocation") == "lookahead" and bandit.policy == "thompson"
-    if lookahead:
-        pass  # the impressions left are part of the lookahead's own words
-    elif plan is not None:
+    if plan is not None and not lookahead:
         budget.append(_end_words(bandit, plan))
     elif bandit.budget is not None:
         spent = float(bandit.impressions_.sum())
