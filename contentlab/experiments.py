@@ -225,6 +225,7 @@ class ExperimentStatus:
     prior: dict
     settings: dict = field(repr=False, default_factory=dict)
     why: tuple[str, ...] = ()  # the prior and the allocation rule, in plain words
+    settled_on: str | None = None  # the draft every next impression goes to, once the split has settled
 
     def to_dict(self) -> dict:
         arms = self.arms.astype(object).where(self.arms.notna(), None).to_dict(orient="records")
@@ -244,6 +245,7 @@ class ExperimentStatus:
             "warnings": list(self.warnings),
             "prior": jsonable(self.prior),
             "why": list(self.why),
+            "settled_on": self.settled_on,
         }
 
 
@@ -1905,7 +1907,17 @@ def experiment_status(
         prior=settings.get("prior", {}),
         settings=settings,
         why=tuple(_prior_words(settings) + _split_words(bandit, settings, plan)),
+        settled_on=_settled_on(bandit) if exp["status"] == "running" else None,
     )
+
+
+def _settled_on(bandit: ThompsonBandit) -> str | None:
+    """The draft that gets every next impression (no other worth learning about, or committed on stop); else None."""
+    if bandit.impressions_.sum() == 0:
+        return None
+    shares = bandit.shares()
+    top = max(shares, key=shares.get)
+    return top if shares[top] == 1.0 else None
 
 
 def _drift_warning(ws: Workspace, name: str, names: list[str], discount: float) -> str | None:

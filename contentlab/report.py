@@ -1684,6 +1684,9 @@ def experiments_section(ws, ctx: _Context, missing: list[str]) -> dict:
         elif d.stop:
             sentence = (f"{st.name}: arm {d.leader} leads with P(best) {percent(d.prob_best, 0)}; the decision rule "
                         f"says stop and run it.")
+        elif st.settled_on:
+            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {percent(d.prob_best, 0)}; the split has "
+                        f"settled on arm {st.settled_on} (no other draft is worth more of its impressions).")
         else:
             sentence = (f"{st.name}: arm {d.leader} leads with P(best) {percent(d.prob_best, 0)}, not yet decisive; "
                         f"keep going.")
@@ -1701,6 +1704,7 @@ def experiments_section(ws, ctx: _Context, missing: list[str]) -> dict:
             "impressions": count(st.impressions), "clicks": count(st.clicks), "chart": chart_name,
             "leader_headline": lead["headline"] if lead is not None else "",
             "leader": d.leader, "stop": bool(d.stop), "prob_best": d.prob_best, "gain": gain,
+            "settled_on": st.settled_on,
             "warnings": warnings,
             "arms": [{"arm": r["arm"], "headline": r["headline"], "impressions": count(r["impressions"]),
                       "clicks": count(r["clicks"]), "rate": percent(r["rate"]),
@@ -1981,6 +1985,14 @@ def recommendations(ctx: _Context, headline: dict, happened: dict, why: dict, wo
         item = ready[0]
         recs.append({"text": f"Stop experiment {item['name']} and run arm {item['leader']}: "
                              f"“{item['leader_headline']}”.",
+                     "evidence": f"P(best) {percent(item['prob_best'], 0)}; {item['decision']}",
+                     "section": "experiments"})
+    elif running and running[0].get("settled_on"):
+        item = running[0]
+        settled = next(a["headline"] for a in item["arms"] if a["arm"] == item["settled_on"])
+        recs.append({"text": f"Experiment {item['name']} has settled on arm {item['settled_on']}: no other draft is "
+                             f"worth more of its impressions. Stop it and run “{settled}”, or keep it running to firm "
+                             "up the evidence.",
                      "evidence": f"P(best) {percent(item['prob_best'], 0)}; {item['decision']}",
                      "section": "experiments"})
     elif running and running[0]["impressions"] != "0":

@@ -327,3 +327,23 @@ def test_top_two_keeps_every_draft_until_the_stopping_rule_names_one(learned_ws,
     record_results(learned_ws, "quick", read_results(path), source_file=str(path))
     got = next_allocation(learned_ws, "quick", 1000).arms.set_index("arm")["impressions"]
     assert got.sum() == 1000 and (got[["A", "C", "D"]] > 0).all()
+
+
+def test_a_settled_split_is_named_in_status_and_the_report(learned_ws, tmp_path):
+    # The lookahead gives every impression to C (see above): status says which draft the split settled on, and
+    # the weekly report's recommendation says so instead of "keep it running".
+    from contentlab.report import build_report
+
+    create_experiment(learned_ws, "hours", DRAFTS, seed=3)
+    path = tmp_path / "r.csv"
+    path.write_text("arm,impressions,clicks,at\nA,3000,93,2026-11-24T10:00\nB,3000,40,2026-11-24T10:00\n"
+                    "C,3000,99,2026-11-24T10:00\nD,3000,90,2026-11-24T10:00\n", encoding="utf-8")
+    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    status = experiment_status(learned_ws, "hours")
+    assert status.settled_on == "C" and not status.decision.stop and status.to_dict()["settled_on"] == "C"
+    report = build_report(learned_ws, week="2026-W48")
+    texts = [r["text"] for r in report.next_week.get("recommendations", [])]
+    assert any("has settled on arm C" in t and DRAFTS[2] in t for t in texts)
+    # Before results, nothing has settled.
+    create_experiment(learned_ws, "fresh", DRAFTS, seed=3)
+    assert experiment_status(learned_ws, "fresh").settled_on is None
