@@ -38,6 +38,15 @@ def past_tests_csv(path, n_tests=30, n_arms=3, logit_sd=0.2, seed=0):
     return path
 
 
+SPREAD_RESULTS = "arm,impressions,clicks\nA,3000,93\nB,3000,40\nC,3000,99\nD,3000,90\n"  # B far behind
+
+
+def record_text(ws, name, path, text):
+    """Write ``text`` as a results file at ``path`` and record it for experiment ``name``."""
+    path.write_text(text, encoding="utf-8")
+    return record_results(ws, name, read_results(path), source_file=str(path))
+
+
 @pytest.fixture
 def learned_ws(tmp_path):
     with Workspace.open(tmp_path / "ws") as w:
@@ -179,12 +188,10 @@ def test_new_experiment_samples_among_drafts_worth_learning_about(learned_ws, tm
     assert any("worth learning about" in note or "pay back" in note for note in created.notes)
     # B trails far behind on 3,000 impressions each: it is dropped; with the few impressions the typical
     # test leaves (about 6,000) only the leader C stays, with a budget of 200,000 its close rivals stay too.
-    path = tmp_path / "r.csv"
-    path.write_text("arm,impressions,clicks\nA,3000,93\nB,3000,40\nC,3000,99\nD,3000,90\n", encoding="utf-8")
     for name, budget in (("hours", None), ("long", 200_000)):
         if budget:
             create_experiment(learned_ws, name, DRAFTS, seed=3, budget=budget)
-        record_results(learned_ws, name, read_results(path), source_file=str(path))
+        record_text(learned_ws, name, tmp_path / "r.csv", SPREAD_RESULTS)
     alloc = next_allocation(learned_ws, "hours", 1000)
     assert alloc.arms.set_index("arm")["impressions"].to_dict() == {"A": 0, "B": 0, "C": 1000, "D": 0}
     why = " ".join(alloc.why)
@@ -322,9 +329,7 @@ def test_top_two_keeps_every_draft_until_the_stopping_rule_names_one(learned_ws,
     assert any("Top-two sampling keeps every draft in" in note for note in created.notes)
     bandit = _bandit(learned_ws, _load(learned_ws, "quick"))
     assert bandit.horizon is None and bandit.commit_on_stop and bandit.policy == "top_two"
-    path = tmp_path / "r.csv"
-    path.write_text("arm,impressions,clicks\nA,3000,93\nB,3000,40\nC,3000,99\nD,3000,90\n", encoding="utf-8")
-    record_results(learned_ws, "quick", read_results(path), source_file=str(path))
+    record_text(learned_ws, "quick", tmp_path / "r.csv", SPREAD_RESULTS)
     got = next_allocation(learned_ws, "quick", 1000).arms.set_index("arm")["impressions"]
     assert got.sum() == 1000 and (got[["A", "C", "D"]] > 0).all()
 
@@ -335,10 +340,8 @@ def test_a_settled_split_is_named_in_status_and_the_report(learned_ws, tmp_path)
     from contentlab.report import build_report
 
     create_experiment(learned_ws, "hours", DRAFTS, seed=3)
-    path = tmp_path / "r.csv"
-    path.write_text("arm,impressions,clicks,at\nA,3000,93,2026-11-24T10:00\nB,3000,40,2026-11-24T10:00\n"
-                    "C,3000,99,2026-11-24T10:00\nD,3000,90,2026-11-24T10:00\n", encoding="utf-8")
-    record_results(learned_ws, "hours", read_results(path), source_file=str(path))
+    dated = "arm,impressions,clicks,at\n" + "".join(f"{row},2026-11-24T10:00\n" for row in SPREAD_RESULTS.split()[1:])
+    record_text(learned_ws, "hours", tmp_path / "r.csv", dated)
     status = experiment_status(learned_ws, "hours")
     assert status.settled_on == "C" and not status.decision.stop and status.to_dict()["settled_on"] == "C"
     report = build_report(learned_ws, week="2026-W48")
