@@ -149,6 +149,7 @@ def test_experiment_next_split_sums_to_n(client):
     assert r.status_code == 200
     counts = [int(x.replace(",", "")) for x in re.findall(r'<td class="num">([\d,]+)</td>', r.text)]
     assert sum(counts) == 2000
+    assert 'id="split-why"' in r.text and "Why this split" in r.text
     bad = client.get("/experiments/winter-reading?impressions=-3")
     assert "whole number from 1 to 999,999,999" in bad.text
 
@@ -429,6 +430,9 @@ def test_api_experiments_status_next(client):
     assert sum(a["prob_best"] for a in st["arms"]) == pytest.approx(1.0, abs=1e-6)
     nxt = client.post("/api/experiments/winter-reading/next", json={"impressions": 1500}).json()
     assert sum(a["impressions"] for a in nxt["arms"]) == 1500
+    # The plain-words reasons of `experiment next` come with the split, as on the page.
+    assert nxt["why"] and all(isinstance(w, str) and w for w in nxt["why"])
+    assert "settled_on" in st
     assert client.get("/api/experiments/nope").status_code == 404
     assert client.post("/api/experiments/nope/next", json={"impressions": 5}).status_code == 404
     bad = client.post("/api/experiments/winter-reading/next", json={"impressions": "many"})

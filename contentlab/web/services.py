@@ -164,7 +164,7 @@ def allocation(state: WorkspaceState, name: str, impressions: Any, policy: str |
     with state.open() as ws:
         alloc = next_allocation(ws, name, impressions, policy)
     return {"experiment": alloc.name, "policy": alloc.policy, "impressions": alloc.impressions,
-            "arms": _records(alloc.arms), "notes": list(alloc.notes)}
+            "arms": _records(alloc.arms), "notes": list(alloc.notes), "why": list(alloc.why)}
 
 
 RESULT_FIELDS = ("arm", "impressions", "clicks", "at", "event_id")
