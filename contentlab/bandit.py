@@ -1086,11 +1086,14 @@ class ThompsonBandit:
     def worth_learning(self, n_impressions: int = 1) -> dict[str, bool]:
         """Per arm, whether it stays in the next split (:func:`worth_learning`; every arm without a horizon or results)."""
         arms, a, b = self._ab()
-        left = self.impressions_left(n_impressions)
-        if left is None or self.impressions_.sum() == 0:
-            return dict.fromkeys(arms, True)
-        keep = worth_learning(a[None], b[None], [left])[0]
-        return dict(zip(arms, keep.tolist()))
+        keep = self._keep(a, b, n_impressions)
+        return dict(zip(arms, [True] * len(arms) if keep is None else keep[0].tolist()))
+
+    def _keep(self, a: np.ndarray, b: np.ndarray, n_impressions: int) -> np.ndarray | None:
+        """The arms still worth learning about, shape (1, n_arms); None (all of them) without a horizon or results."""
+        if self.horizon is None or self.impressions_.sum() == 0:
+            return None
+        return worth_learning(a[None], b[None], [self.impressions_left(n_impressions)])
 
     def _shares(self, n_impressions: int = 1) -> tuple[list[str], np.ndarray, np.random.Generator]:
         arms, a, b = self._ab()
@@ -1110,9 +1113,7 @@ class ThompsonBandit:
             cap = np.full(prob.shape, float(self.first_cap))
             if self.cap_lift:
                 cap = np.maximum(cap, prob)
-        keep = None
-        if self.horizon is not None and self.impressions_.sum() > 0:
-            keep = worth_learning(a[None], b[None], [self.impressions_left(n_impressions)])
+        keep = self._keep(a, b, n_impressions)
         share = allocation_shares(
             prob,
             policy=self.policy,
