@@ -552,8 +552,8 @@ def worth_learning(a: np.ndarray, b: np.ndarray, remaining: ArrayLike) -> np.nda
         m = np.maximum(left * 0.5**j, 1.0)
         gain_sd = np.sqrt(mean * (1 - mean) * m / ((total + 1) * (total + m)))
         value = np.maximum(value, (left - m) * knowledge_gradient(mean, gain_sd, rival) / m)
-    lead = mean.max(axis=1, keepdims=True)
-    return (mean + value >= lead * (1 - 1e-12)) | (mean >= lead)
+    # value >= 0, so the leader (and any arm tied with it) is always kept.
+    return mean + value >= mean.max(axis=1, keepdims=True) * (1 - 1e-12)
 
 
 def paced_budget(spent: ArrayLike, elapsed: ArrayLike, left: ArrayLike) -> np.ndarray:
@@ -1125,14 +1125,19 @@ class ThompsonBandit:
         )
         return arms, share, rng
 
-    def committed_arm(self) -> str | None:
-        """With ``commit_on_stop``, the arm that gets every next impression because the stopping rule fires; else None."""
+    def settled_arm(self) -> str | None:
+        """The arm that gets every next impression once results are in (committed on stop, or the only one still
+        worth learning about); else None."""
         arms = self._state()
-        if not self.commit_on_stop or self.impressions_.sum() == 0:
+        if self.impressions_.sum() == 0:
             return None
         _, share, _ = self._shares()
         top = int(np.argmax(share[0]))
         return arms[top] if share[0, top] == 1.0 else None
+
+    def committed_arm(self) -> str | None:
+        """With ``commit_on_stop``, the arm that gets every next impression because the stopping rule fires; else None."""
+        return self.settled_arm() if self.commit_on_stop else None
 
     def shares(self) -> dict[str, float]:
         """Fraction of the next impressions each arm should get (sums to 1)."""

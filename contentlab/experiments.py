@@ -1354,9 +1354,9 @@ def _horizon_words(learned: Mapping, budget: int | None, ends_at: str | None) ->
             f"{HORIZON_FACTOR * typical:,.0f} impressions; give --budget or --ends-at to say otherwise")
 
 
-def _lookahead_words(bandit: ThompsonBandit, settings: Mapping, n: int, plan: Mapping | None) -> list[str]:
+def _lookahead_words(bandit: ThompsonBandit, settings: Mapping, n: int, plan: Mapping | None,
+                     prob: Mapping[str, float]) -> list[str]:
     """Why a lookahead split is what it is: the impressions left, the drafts dropped and the sampling among the rest."""
-    prob = bandit.prob_best()
     keep = bandit.worth_learning(n)
     learned = (settings.get("prior") or {}).get("learned") or {}
     source = _horizon_words(learned, settings.get("budget"), settings.get("ends_at"))
@@ -1437,7 +1437,7 @@ def _split_words(bandit: ThompsonBandit, settings: Mapping, plan: Mapping | None
                        "traffic.")
         return out + budget
     if lookahead:
-        return out + _lookahead_words(bandit, settings, n, plan)
+        return out + _lookahead_words(bandit, settings, n, plan, prob)
     committed = bandit.committed_arm()
     if committed is not None:
         out.append(
@@ -1912,17 +1912,8 @@ def experiment_status(
         prior=settings.get("prior", {}),
         settings=settings,
         why=tuple(_prior_words(settings) + _split_words(bandit, settings, plan)),
-        settled_on=_settled_on(bandit) if exp["status"] == "running" else None,
+        settled_on=bandit.settled_arm() if exp["status"] == "running" else None,
     )
-
-
-def _settled_on(bandit: ThompsonBandit) -> str | None:
-    """The draft that gets every next impression (no other worth learning about, or committed on stop); else None."""
-    if bandit.impressions_.sum() == 0:
-        return None
-    shares = bandit.shares()
-    top = max(shares, key=shares.get)
-    return top if shares[top] == 1.0 else None
 
 
 def _drift_warning(ws: Workspace, name: str, names: list[str], discount: float) -> str | None:
@@ -2106,7 +2097,7 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
             horizon = params["budget"]
             if horizon is None and not settings.get("ends_at"):
                 horizon = HORIZON_FACTOR * float(learned.get("typical_impressions") or 0.0) or None
-            params.update(temper=1.0, temper_start=1.0, min_share=0.0, budget=None, horizon=horizon)
+            params.update(temper=1.0, min_share=0.0, budget=None, horizon=horizon)
         elif settings.get("allocation") == "lookahead":
             # Top-two is for the quickest answer, not the fewest clicks lost: every draft stays in until the
             # stopping rule names one, then every impression goes to it.
