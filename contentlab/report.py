@@ -2146,9 +2146,7 @@ def _tables_written_before(folder: Path) -> set[str]:
     manifest = folder / REPORT_MANIFEST
     try:
         listed = json.loads(manifest.read_text(encoding="utf-8"))["tables"]
-    except FileNotFoundError:
-        listed = None
-    except (OSError, ValueError, KeyError, TypeError):  # damaged: fall back to the names contentlab uses
+    except (OSError, ValueError, KeyError, TypeError):  # missing or damaged: the names contentlab uses
         listed = None
     if not isinstance(listed, list):
         return {f"{name}.csv" for name in REPORT_TABLES if (folder / f"{name}.csv").is_file()}
