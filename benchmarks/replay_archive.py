@@ -111,6 +111,7 @@ from contentlab.experiments import (  # noqa: E402
     HORIZON_FACTOR,
     LEARNED_MIN_SHARE,
     LEARNED_PRIOR_WIDTH,
+    PREVIOUS_LEVEL_WEIGHT,
     PREVIOUS_PRIOR_WIDTH,
     learn_prior_from_tests,
 )
@@ -219,7 +220,8 @@ def policies(spread: dict | None, use_model: bool, horizon: float) -> dict[str, 
     flat = {"spread": None, "use_offsets": False}
     new = {"spread": spread, "use_offsets": use_model, "min_share": 0.0, "temper": 1.0,
            "first_cap": True, "cap_lift": use_model, "horizon": horizon}
-    previous = {**new, "spread": {**spread, "logit_sd": PREVIOUS_PRIOR_WIDTH / LEARNED_PRIOR_WIDTH * spread["logit_sd"]},
+    previous = {**new, "spread": {**spread, "logit_sd": PREVIOUS_PRIOR_WIDTH / LEARNED_PRIOR_WIDTH * spread["logit_sd"],
+                                  "level_weight": PREVIOUS_LEVEL_WEIGHT},
                 "min_share": LEARNED_MIN_SHARE, "temper": DEFAULT_TEMPER, "commit": True, "horizon": None}
     rows = {
         "equal split": {"policy": "equal"},
@@ -228,6 +230,8 @@ def policies(spread: dict | None, use_model: bool, horizon: float) -> dict[str, 
             {**flat, "temper": DEFAULT_TEMPER, "min_share": DEFAULT_MIN_SHARE, "track": True},
         f"previous default (prior x{PREVIOUS_PRIOR_WIDTH:g}, temper {DEFAULT_TEMPER:g}, commit)":
             {**previous, "track": True},
+        f"last stop's default (level weight {PREVIOUS_LEVEL_WEIGHT:g})":
+            {**new, "spread": {**spread, "level_weight": PREVIOUS_LEVEL_WEIGHT}, "track": True},
         f"NEW DEFAULT (horizon {horizon:,.0f} impressions)": {**new, "track": True},
         "new default + budget (each test's impressions)": {**new, "horizon": "budget", "track": True},
         "  the same, traffic varying by round": {**new, "horizon": "budget", "varying": True},
@@ -483,11 +487,12 @@ def main(argv: list[str] | None = None) -> None:
     flat = ratios["flat Thompson (temper 1, no floor)"]
     former = ratios[next(label for label in specs if label.startswith("former default"))]
     previous = ratios[next(label for label in specs if label.startswith("previous default"))]
+    last = ratios[next(label for label in specs if label.startswith("last stop's default"))]
     budget = ratios["new default + budget (each test's impressions)"]
-    for name, other in (("former default", former), ("previous default", previous)):
+    for name, other in (("former default", former), ("previous default", previous), ("last stop's default", last)):
         diff = new - other
         se = diff.std(ddof=1) / np.sqrt(len(diff)) if len(diff) > 1 else float("nan")
-        print(f"{'' if name == 'previous default' else chr(10)}New default minus {name} (paired by seed): "
+        print(f"{chr(10) if name == 'former default' else ''}New default minus {name} (paired by seed): "
               f"{diff.mean():+.3f} +- {se:.3f} (standard error).")
     print(f"Goal of issue 12: the new default at most 0.30; it is {new.mean():.3f} without a budget and "
           f"{budget.mean():.3f} with each test's budget.")
@@ -497,18 +502,27 @@ def main(argv: list[str] | None = None) -> None:
 
 TUNE_WIDTHS = (0.75, 1.0, 1.5)
 TUNE_HORIZONS = (1.5, 2.0, 3.0)
+# Impressions the latest past tests' level is worth against a test's own results
+# (bandit.DEFAULT_LEVEL_WEIGHT), tried at the library's width and horizon.
+TUNE_LEVEL_WEIGHTS = (25.0, 50.0, 100.0, 200.0, 400.0)
 
 
 def tune_grid(spread: dict, typical: float) -> dict[str, dict]:
     """The settings --tune compares: prior width and horizon of the lookahead default, its budget-known form, the previous default."""
     base = {"spread": spread, "use_offsets": False, "first_cap": True, "track": True, "temper": 1.0, "min_share": 0.0}
     grid = {f"previous default (x{PREVIOUS_PRIOR_WIDTH:g}, temper {DEFAULT_TEMPER:g}, commit)": {
-        **base, "spread": {**spread, "logit_sd": PREVIOUS_PRIOR_WIDTH * spread["logit_sd"]},
+        **base, "spread": {**spread, "logit_sd": PREVIOUS_PRIOR_WIDTH * spread["logit_sd"],
+                           "level_weight": PREVIOUS_LEVEL_WEIGHT},
         "temper": DEFAULT_TEMPER, "min_share": LEARNED_MIN_SHARE, "commit": True}}
     for w in TUNE_WIDTHS:
         for h in TUNE_HORIZONS:
             grid[f"width {w:g}, horizon {h:g} x typical"] = {
                 **base, "spread": {**spread, "logit_sd": w * spread["logit_sd"]}, "horizon": h * typical}
+    for lw in TUNE_LEVEL_WEIGHTS:
+        if lw != spread["level_weight"]:
+            grid[f"{_default_label()}, level weight {lw:g}"] = {
+                **base, "spread": {**spread, "logit_sd": LEARNED_PRIOR_WIDTH * spread["logit_sd"], "level_weight": lw},
+                "horizon": HORIZON_FACTOR * typical}
     for w in TUNE_WIDTHS:
         grid[f"width {w:g}, budget known"] = {**base, "spread": {**spread, "logit_sd": w * spread["logit_sd"]},
                                              "horizon": "budget"}
@@ -518,14 +532,20 @@ def tune_grid(spread: dict, typical: float) -> dict[str, dict]:
     return grid
 
 
+def _default_label() -> str:
+    return f"width {LEARNED_PRIOR_WIDTH:g}, horizon {HORIZON_FACTOR:g} x typical"
+
+
 def tune(train: pd.DataFrame, seeds: list[int], args) -> None:
     """Inner time split of the train part: learn on its earlier half, replay its later half.
 
     The later half is to the earlier what the test part is to the train
     part (rates drift between them), so settings that only fit the earlier
     tests show it here. Rule (fixed before looking): among the prior's
-    widths (its spread over the fitted one) and the horizons of a test
-    without a budget (times the typical past test), the lowest mean regret
+    widths (its spread over the fitted one), the horizons of a test
+    without a budget (times the typical past test) and, at the library's
+    width and horizon, the weights of the latest past tests' level (in
+    impressions, against the test's own results), the lowest mean regret
     among those whose right-winner share on the replayed half is at least
     the former default's (same seeds); the budget-known and end-time forms
     are compared with the chosen default.
@@ -547,7 +567,7 @@ def tune(train: pd.DataFrame, seeds: list[int], args) -> None:
     res = run_all({"tune": build_groups(second)}, tasks, args.jobs)
     base = res["equal split"][0][1]["regret"]
     regret, right, per_seed = {}, {}, {}
-    print(f"  {'setting':<44} {'regret / equal':>15} {'right winner':>13} {'impressions to stop':>20}")
+    print(f"  {'setting':<56} {'regret / equal':>15} {'right winner':>13} {'impressions to stop':>20}")
     for label in grid:
         rows = [x for _, x, _ in res[label]]
         r = np.array([x["regret"] / base for x in rows])
@@ -555,17 +575,18 @@ def tune(train: pd.DataFrame, seeds: list[int], args) -> None:
         if "right" in rows[0]:
             right[label] = float(np.mean([x["right"] / max(x["clear"], 1) for x in rows]))
             used = np.mean([x["impressions"] / x["budget"] for x in rows])
-            print(f"  {label:<44} {_spread(r):>15} {right[label]:>13.3f} {used:>20.3f}")
+            print(f"  {label:<56} {_spread(r):>15} {right[label]:>13.3f} {used:>20.3f}")
         else:
-            print(f"  {label:<44} {_spread(r):>15}")
+            print(f"  {label:<56} {_spread(r):>15}")
     ok = [label for label in right if "x typical" in label and right[label] >= right[former]]
     pick = min(ok, key=regret.get) if ok else None
     print(f"Chosen: {pick} (lowest regret with right winner >= the former default's {right[former]:.3f}). "
-          f"Library now: width {LEARNED_PRIOR_WIDTH:g}, horizon {HORIZON_FACTOR:g} x typical, temper 1, no floor.")
+          f"Library now: {_default_label()}, level weight {spread['level_weight']:g}, temper 1, no floor.")
     if len(seeds) > 1:
-        now = f"width {LEARNED_PRIOR_WIDTH:g}, horizon {HORIZON_FACTOR:g} x typical"
+        now = _default_label()
         previous = next(label for label in grid if label.startswith("previous default"))
-        for a, b in ((now, previous), (f"width {LEARNED_PRIOR_WIDTH:g}, budget known", now),
+        others = [(label, now) for label in grid if label.startswith(f"{now}, level weight")]
+        for a, b in ((now, previous), *others, (f"width {LEARNED_PRIOR_WIDTH:g}, budget known", now),
                      (f"width {LEARNED_PRIOR_WIDTH:g}, end time (varying)", f"width {LEARNED_PRIOR_WIDTH:g}, budget known")):
             d = per_seed[a] - per_seed[b]
             print(f"  {a} minus {b} (paired by seed): {d.mean():+.4f} +- {d.std(ddof=1) / np.sqrt(len(d)):.4f} (SE)")

@@ -47,6 +47,7 @@ from numpy.typing import ArrayLike
 from scipy import special  # light; scipy.stats and scipy.optimize are imported where needed
 
 from contentlab.errors import ContentlabError
+from contentlab.percentages import probability
 
 __all__ = [
     "BUDGET_TEMPER_END",
@@ -89,8 +90,11 @@ _CHUNK_ELEMENTS = 2_000_000
 # (and at most twice an equal share); see first_split_cap.
 FIRST_SPLIT_MAX = 0.6
 # Pseudo-impressions behind the history's typical rate when a test's own
-# level is estimated (see within_test_prior): about one batch of results.
-DEFAULT_LEVEL_WEIGHT = 200.0
+# level is estimated (see within_test_prior): a quarter of one batch of
+# results, so a test whose rate has drifted from the latest past tests' is
+# followed after its first results. Chosen by benchmarks/replay_archive.py
+# --tune on the earlier experiments (25 to 400 tried; 200 before).
+DEFAULT_LEVEL_WEIGHT = 50.0
 # With a budget, the temper rises from DEFAULT_TEMPER_START to BUDGET_TEMPER_END
 # as it is spent (budget_temper); chosen by an earlier benchmarks/replay_archive.py
 # --tune (which then also replayed budget schedules) on the earlier experiments.
@@ -809,7 +813,7 @@ class ThompsonBandit:
         arms of one test usually differ.
     level : float in (0, 1) or None, default None
         Typical rate of past tests, the level before results (needed with ``logit_sd``).
-    level_weight : float >= 0, default 200
+    level_weight : float >= 0, default 50
         Impressions the history's ``level`` is worth against the test's own results.
     prior_offsets : sequence of float or None, default None
         Expected log-odds gap of each arm from the test's level (the model's
@@ -1194,7 +1198,7 @@ class ThompsonBandit:
             return Decision(name, 1.0, 0.0, thr, True, f"Stop: {name} is the only arm.", None, tuple(warnings))
         if pb >= prob_threshold:
             reason = (
-                f"Stop: {name} has a {pb:.1%} probability of being best "
+                f"Stop: {name} has a {probability(pb, 1)} probability of being best "
                 f"(at least {prob_threshold:.0%})."
             )
             return Decision(name, pb, el, thr, True, reason, None, tuple(warnings))
@@ -1217,7 +1221,7 @@ class ThompsonBandit:
             factor = min(factor, (z * math.sqrt(var[lead] + var[runner]) / gap) ** 2)
         further = int(math.ceil(max(factor - 1.0, 0.01) * total))
         reason = (
-            f"Keep testing: {name} leads with a {pb:.1%} probability of being best (stop at "
+            f"Keep testing: {name} leads with a {probability(pb, 1)} probability of being best (stop at "
             f"{prob_threshold:.0%}), and choosing it now would give up an expected {100 * el:.4f} percentage "
             f"points of click-through rate (stop below {100 * thr:.4f}). Roughly {further:,} more impressions "
             "are likely needed, if the current gap holds."

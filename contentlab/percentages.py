@@ -87,3 +87,22 @@ def adaptive_percent(value: Any, *, signed: bool = False, minus: str = HYPHEN_MI
         return missing
     digits = 1 if abs(x) < ONE_DECIMAL_BELOW else 0
     return signed_percent(x, digits, minus=minus) if signed else percent(x, digits)
+
+
+def probability(value: Any, digits: int = 0, *, missing: str = "n/a") -> str:
+    """A probability as a percentage, "87%", but ">99%" / "<1%" where it would round to 100% or 0%.
+
+    Probabilities here (of being best, of truly leading) are estimates from posterior draws or a
+    normal approximation; "100%" or "0%" would read as certainty they do not have. The same words
+    in the report, on the web pages, in the terminal and in a scoring verdict.
+    """
+    x = finite_or_none(value)
+    if x is None:
+        return missing
+    text = f"{100 * x:.{digits}f}"
+    step = 10.0 ** -digits
+    if float(text) >= 100:
+        return f">{100 - step:.{digits}f}%"
+    if float(text) <= 0:
+        return f"<{step:.{digits}f}%"
+    return text + "%"

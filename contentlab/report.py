@@ -38,7 +38,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import ContentlabError
-from .percentages import TRUE_MINUS, percent, percentage_points, signed_number, signed_percent
+from .percentages import TRUE_MINUS, percent, percentage_points, probability, signed_number, signed_percent
 
 # ------------------------------------------------------------------ settings
 BASELINE_BLOCKS = 4          # "the previous four weeks"
@@ -1680,15 +1680,15 @@ def experiments_section(ws, ctx: _Context, missing: list[str]) -> dict:
             sentence = f"{st.name} has no results yet; its {len(arms)} arms start from their priors."
         elif st.status == "stopped":
             sentence = (f"{st.name} is finished: {st.settings.get('winner', d.leader)} won "
-                        f"(P(best) {percent(d.prob_best, 0)} when last computed).")
+                        f"(P(best) {probability(d.prob_best)} when last computed).")
         elif d.stop:
-            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {percent(d.prob_best, 0)}; the decision rule "
+            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {probability(d.prob_best)}; the decision rule "
                         f"says stop and run it.")
         elif st.settled_on:
-            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {percent(d.prob_best, 0)}; the split has "
+            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {probability(d.prob_best)}; the split has "
                         f"settled on arm {st.settled_on} (no other draft is worth more of its impressions).")
         else:
-            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {percent(d.prob_best, 0)}, not yet decisive; "
+            sentence = (f"{st.name}: arm {d.leader} leads with P(best) {probability(d.prob_best)}, not yet decisive; "
                         f"keep going.")
         gain = st.clicks_gained
         warnings = []
@@ -1708,7 +1708,7 @@ def experiments_section(ws, ctx: _Context, missing: list[str]) -> dict:
             "warnings": warnings,
             "arms": [{"arm": r["arm"], "headline": r["headline"], "impressions": count(r["impressions"]),
                       "clicks": count(r["clicks"]), "rate": percent(r["rate"]),
-                      "posterior": percent(r["posterior_mean"]), "prob_best": percent(r["prob_best"], 0),
+                      "posterior": percent(r["posterior_mean"]), "prob_best": probability(r["prob_best"]),
                       "leader": r["arm"] == d.leader} for _, r in arms.iterrows()],
         })
         a = arms.copy()
@@ -1985,7 +1985,7 @@ def recommendations(ctx: _Context, headline: dict, happened: dict, why: dict, wo
         item = ready[0]
         recs.append({"text": f"Stop experiment {item['name']} and run arm {item['leader']}: "
                              f"“{item['leader_headline']}”.",
-                     "evidence": f"P(best) {percent(item['prob_best'], 0)}; {item['decision']}",
+                     "evidence": f"P(best) {probability(item['prob_best'])}; {item['decision']}",
                      "section": "experiments"})
     elif running and running[0].get("settled_on"):
         item = running[0]
@@ -1993,13 +1993,13 @@ def recommendations(ctx: _Context, headline: dict, happened: dict, why: dict, wo
         recs.append({"text": f"Experiment {item['name']} has settled on arm {item['settled_on']}: no other draft is "
                              f"worth more of its impressions. Stop it and run “{settled}”, or keep it running to firm "
                              "up the evidence.",
-                     "evidence": f"P(best) {percent(item['prob_best'], 0)}; {item['decision']}",
+                     "evidence": f"P(best) {probability(item['prob_best'])}; {item['decision']}",
                      "section": "experiments"})
     elif running and running[0]["impressions"] != "0":
         item = running[0]
         recs.append({"text": f"Keep experiment {item['name']} running; arm {item['leader']} leads but is not "
                              "decisive yet.",
-                     "evidence": f"P(best) {percent(item['prob_best'], 0)}; {item['decision']}",
+                     "evidence": f"P(best) {probability(item['prob_best'])}; {item['decision']}",
                      "section": "experiments"})
     if next_week.get("best_draft"):
         b = next_week["best_draft"]

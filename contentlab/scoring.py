@@ -28,7 +28,7 @@ import pandas as pd
 
 from .draftengine import DraftDesign, DraftEngine, engine_for, joint_logits, logistic, prob_better, rate_lift
 from .errors import ContentlabError
-from .percentages import signed_percent
+from .percentages import probability, signed_percent
 
 __all__ = [
     "score_drafts",
@@ -654,7 +654,7 @@ def lead_verdict(p: float | None) -> str:
     """
     if p is None or not np.isfinite(p):
         return ""
-    shown = ">99%" if p > 0.995 else "<1%" if p < 0.005 else f"{100 * p:.0f}%"
+    shown = probability(p)
     if p >= LIKELY_AHEAD:
         return f"likely better than the next draft (P(truly better) {shown}); a test would confirm it"
     return f"a close call with the next draft (P(truly better) {shown})"

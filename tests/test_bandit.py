@@ -545,9 +545,9 @@ def test_budget_explores_early_and_commits_late():
 
 def _class_and_replay_traces(p, budget, **kw):
     """Allocations of the vectorised replay and of ThompsonBandit on one simulated 3-arm test, same random stream."""
-    from contentlab.bandit import replay_regret_rows
+    from contentlab.bandit import DEFAULT_LEVEL_WEIGHT, replay_regret_rows
 
-    spread = {"logit_sd": 0.2, "level": 0.015, "level_weight": 200.0}
+    spread = {"logit_sd": 0.2, "level": 0.015, "level_weight": DEFAULT_LEVEL_WEIGHT}
     p = np.array([p])
     off = kw.pop("offsets", None)
     trace: list = []

@@ -311,13 +311,24 @@ def test_experiments_created_before_the_lookahead_keep_their_policy(learned_ws):
     settings = dict(exp["settings"])
     settings.pop("allocation")
     settings["commit_on_stop"] = True
-    settings["prior"] = {**settings["prior"], "learned": {**settings["prior"]["learned"], "prior_width": 2.0}}
+    settings["prior"] = {**settings["prior"], "learned": {**settings["prior"]["learned"], "prior_width": 2.0,
+                                                          "level_weight": 200.0}}
     learned_ws.conn.execute("UPDATE experiments SET settings=? WHERE name='hours'", (json.dumps(settings),))
     learned_ws.conn.commit()
     bandit = _bandit(learned_ws, _load(learned_ws, "hours"))
     assert bandit.horizon is None and bandit.commit_on_stop and bandit.temper == 4.0
     assert bandit.min_share == LEARNED_MIN_SHARE
     assert bandit.logit_sd == pytest.approx(2.0 * settings["prior"]["learned"]["logit_sd"])
+    assert bandit.level_weight == 200.0  # the level's weight it was created with, not today's default
+
+
+def test_new_experiments_weigh_the_latest_tests_level_by_todays_default(learned_ws):
+    from contentlab.bandit import DEFAULT_LEVEL_WEIGHT
+    from contentlab.experiments import _bandit, _load
+
+    created = create_experiment(learned_ws, "hours", DRAFTS, seed=3)
+    assert created.prior.learned["level_weight"] == DEFAULT_LEVEL_WEIGHT
+    assert _bandit(learned_ws, _load(learned_ws, "hours")).level_weight == DEFAULT_LEVEL_WEIGHT
 
 
 def test_top_two_keeps_every_draft_until_the_stopping_rule_names_one(learned_ws, tmp_path):

@@ -21,6 +21,7 @@ from contentlab.percentages import (
     finite_or_none,
     percent,
     percentage_points,
+    probability,
     signed_number,
     signed_percent,
 )
@@ -101,6 +102,26 @@ def test_callers_keep_their_wording():
     env = environment()
     assert env.from_string("{{ x|pct }} {{ x|pct(1) }} {{ x|signed_pct }} {{ y|pct }}").render(
         x=0.0456, y=math.nan) == "4.56% 4.6% +5% n/a"
+
+
+def test_a_probability_never_reads_as_certainty():
+    # Probabilities of being best are estimates from posterior draws; "100%" or "0%" would claim a
+    # certainty they do not have (a draw-based estimate is exactly 1 whenever one arm won every draw).
+    assert [probability(x) for x in (0.0, 0.004, 0.5, 0.87, 0.994, 0.996, 1.0)] == [
+        "<1%", "<1%", "50%", "87%", "99%", ">99%", ">99%"]
+    assert probability(1.0, 1) == ">99.9%" and probability(0.0, 1) == "<0.1%" and probability(0.9994, 1) == "99.9%"
+    assert probability(None) == "n/a" and probability(math.nan, missing="-") == "-"
+
+
+def test_every_surface_words_a_probability_alike():
+    """The report, the web pages, the terminal table and a scoring verdict say ">99%", never "100%" or "> 0.99"."""
+    from contentlab.cli.experimenting import _prob
+    from contentlab.scoring import lead_verdict
+    from contentlab.web.common import environment
+
+    assert _prob(1.0) == ">99%" and _prob(0.42) == "42%" and _prob(math.nan) == "-"
+    assert environment().from_string("{{ p|prob }}").render(p=1.0) == "&gt;99%"  # autoescaped HTML for ">99%"
+    assert "P(truly better) >99%" in lead_verdict(0.9999)
 
 
 def test_the_cli_drivers_table_shows_no_minus_zero():

@@ -20,6 +20,7 @@ from hypothesis import strategies as st
 
 from contentlab.cli import main
 from contentlab.errors import ContentlabError
+from contentlab.percentages import probability
 from contentlab.report import (
     REPORT_TABLES,
     Period,
@@ -538,7 +539,7 @@ def test_experiments_section_shows_arms_decision_and_gain(tmp_path):
     item = report.experiments["items"][0]
     assert report.experiments["status"] == "ok" and item["leader"] == status.decision.leader == "B"
     assert item["gain"] == pytest.approx(status.clicks_gained)
-    assert [a["prob_best"] for a in item["arms"]] == [f"{100 * p:.0f}%" for p in status.arms["prob_best"]]
+    assert [a["prob_best"] for a in item["arms"]] == [probability(p) for p in status.arms["prob_best"]]
     from markupsafe import escape
 
     assert f"Decision: {escape(status.decision.reason)}" in html

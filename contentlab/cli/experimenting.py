@@ -307,7 +307,7 @@ def cmd_status(args: argparse.Namespace) -> int:
         ("arm", "arm", str), ("headline", "headline", lambda v: _clip(v, 44)),
         ("impr.", "impressions", lambda v: f"{int(v):,}"), ("clicks", "clicks", lambda v: f"{int(v):,}"),
         ("rate [95% Wilson]", "rate", None), ("posterior", "posterior_mean", _pct),
-        ("P(best)", "prob_best", lambda v: _pct(v, 1)), ("exp. loss", "expected_loss", lambda v: f"{100 * v:.3f} pp"),
+        ("P(best)", "prob_best", _prob), ("exp. loss", "expected_loss", lambda v: f"{100 * v:.3f} pp"),
     ], extra={"rate [95% Wilson]": [
         "-" if not math.isfinite(r) else f"{_pct(r)} [{_pct(lo)}, {_pct(hi)}]"
         for r, lo, hi in zip(frame["rate"], frame["rate_low"], frame["rate_high"])
@@ -420,6 +420,13 @@ def _pct(v, digits: int = 2) -> str:
     from ..percentages import percent
 
     return percent(v, digits, missing="-")
+
+
+def _prob(v) -> str:
+    """A probability in a terminal table, in the report's words ("87%", ">99%"), or "-" in an empty cell."""
+    from ..percentages import probability
+
+    return probability(v, missing="-")
 
 
 def _text_or_dash(v) -> str:

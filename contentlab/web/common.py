@@ -11,7 +11,7 @@ from starlette.requests import Request
 from starlette.responses import HTMLResponse, JSONResponse
 
 from ..percentages import finite_or_none as finite  # a float for JSON, or None (JSON has no NaN)
-from ..percentages import percent, signed_percent
+from ..percentages import percent, probability, signed_percent
 from .security import CSRF_COOKIE, CSRF_FIELD
 
 HERE = Path(__file__).resolve().parent
@@ -91,14 +91,8 @@ def json_error(message: str, status: int) -> JSONResponse:
 
 
 def prob(value: Any) -> str:
-    x = finite(value)
-    if x is None:
-        return "n/a"
-    if x > 0.995:
-        return "> 0.99"
-    if x < 0.005:
-        return "< 0.01"
-    return f"{x:.2f}"
+    """A probability in the words the report and the terminal use ("87%", ">99%")."""
+    return probability(value)
 
 
 def count(value: Any) -> str:
