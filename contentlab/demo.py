@@ -185,7 +185,8 @@ def run_demo(workspace_dir: str | Path, out_dir: str | Path | None = None, *, bo
     say(f"  1. The week in one sentence: {report.headline.get('idea', '')}")
     recs = report.next_week.get("recommendations", [])
     say(f"  2. What to do next week: {recs[0]['text'] if recs else 'see the report'}")
-    say(f"  3. The test: the bandit leads with \"{leader_headline}\" at P(best) {probability(status.decision.prob_best)};"
+    say(f"  3. The test: the bandit leads with \"{leader_headline}\" at P(best) "
+        f"{probability(status.decision.prob_best)};"
         f" the demo's ground truth says the best draft is \"{best_true}\"."
         f" Estimated clicks gained against an equal split so far: {int(round(status.clicks_gained)):+d}.")
     say()
