@@ -38,7 +38,7 @@ def environment():
     )
     env.filters["pct"] = percent
     env.filters["signed_pct"] = signed_percent
-    env.filters["prob"] = prob
+    env.filters["prob"] = probability  # the report's and the terminal's words: "87%", ">99%"
     env.filters["count"] = count
     return env
 
@@ -88,11 +88,6 @@ def _no_missing(obj: Any) -> Any:
 
 def json_error(message: str, status: int) -> JSONResponse:
     return ApiResponse({"error": message}, status_code=status)
-
-
-def prob(value: Any) -> str:
-    """A probability in the words the report and the terminal use ("87%", ">99%")."""
-    return probability(value)
 
 
 def count(value: Any) -> str:
