@@ -1663,8 +1663,28 @@ def _record_locked(ws, exp, clean, cumulative, source_file, kinds, single) -> Re
         derived_ids=int(sum(k != "given" for k in kinds)),
         event_ids=tuple(it[0] for it in items) if len(items) <= 20 else (),
         cumulative=cumulative,
-        notes=tuple(_record_notes(kinds, skipped, in_input, single)) + _stopped_note(exp, len(items)),
+        notes=tuple(_record_notes(kinds, skipped, in_input, single)) + _stopped_note(exp, len(items))
+        + _future_note(items, single, where),
     )
+
+
+# Results dated more than this after now are named in the summary: clocks and time zones differ by hours, not
+# days, so a later date usually means a wrong time zone or day and month swapped (common practice).
+FUTURE_SLACK_HOURS = 24
+
+
+def _future_note(items: list[tuple], single: bool, where: str) -> tuple[str, ...]:
+    """Recorded results dated after now (beyond the slack) are kept as given, and the summary names them."""
+    if not items:
+        return ()
+    at = pd.to_datetime(pd.Series([it[2] for it in items]), utc=True, format="ISO8601", errors="coerce")
+    later = (at > pd.Timestamp.now(tz="UTC") + pd.Timedelta(hours=FUTURE_SLACK_HOURS)).to_numpy()
+    if not later.any():
+        return ()
+    shown = "--at" if single else f"{where}{_rows_text([it[5] for it, x in zip(items, later) if x])}, column 'at'"
+    return (f"{shown}: dated after now (latest {at[later].max():%Y-%m-%d %H:%M} UTC). The results are recorded as "
+            "given and count in the weeks they are dated; if that is wrong, check the workspace's time zone and "
+            "whether day and month are swapped in the file.",)
 
 
 def _stopped_note(exp: dict, added: int) -> tuple[str, ...]:

@@ -208,6 +208,23 @@ def test_record_file_replay_is_idempotent(exp, tmp_path):
     assert posts.loc["laser:A", "published_at"] == "2026-12-03T09:00:00+00:00"
 
 
+def test_results_dated_after_now_are_kept_and_named(exp, tmp_path):
+    # A date days ahead usually means a wrong time zone or day and month swapped: the rows are recorded as
+    # given (real results are never dropped) and the summary names them; a date within the slack says nothing.
+    soon = (pd.Timestamp.now(tz="UTC") + pd.Timedelta(hours=2)).strftime("%Y-%m-%dT%H:%M")
+    path = tmp_path / "results.csv"
+    path.write_text(f"arm,impressions,clicks,at\nA,100,2,2020-01-05T09:00\nB,100,3,2099-05-01T09:00\n"
+                    f"A,50,1,{soon}\n", encoding="utf-8")
+    summary = record_results(exp, "laser", read_results(path), source_file=str(path))
+    assert summary.added == 3
+    future = [n for n in summary.notes if "dated after now" in n]
+    assert len(future) == 1 and f"{path}: row 3, column 'at'" in future[0] and "2099-05-01 09:00 UTC" in future[0]
+    single = record_results(exp, "laser", results([("A", 10, 1)], at="2099-06-01T09:00", event_id="x"))
+    assert single.added == 1 and any(n.startswith("--at: dated after now") for n in single.notes)
+    past = record_results(exp, "laser", results([("B", 10, 1)], at="2021-06-01T09:00", event_id="y"))
+    assert not any("dated after now" in n for n in past.notes)
+
+
 def test_given_event_ids_and_conflicts(exp):
     record_results(exp, "laser", results([("A", 100, 3)], event_id="e1"))
     same = record_results(exp, "laser", results([("A", 100, 3)], event_id="e1"))
