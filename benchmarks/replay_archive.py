@@ -210,6 +210,18 @@ def clearly_best(g: dict) -> tuple[np.ndarray, np.ndarray]:
 # --------------------------------------------------------------------------
 
 
+def previous_policy(spread: dict, applied_width: float = 1.0) -> dict:
+    """The replay settings of the policy before the lookahead, as experiments created with it store them.
+
+    Twice the fitted spread (``spread`` carries ``applied_width`` times it), the
+    latest tests' level worth PREVIOUS_LEVEL_WEIGHT impressions, temper 4, a
+    floor, committing while the stopping rule fires.
+    """
+    return {"spread": {**spread, "logit_sd": PREVIOUS_PRIOR_WIDTH / applied_width * spread["logit_sd"],
+                       "level_weight": PREVIOUS_LEVEL_WEIGHT},
+            "min_share": LEARNED_MIN_SHARE, "temper": DEFAULT_TEMPER, "commit": True}
+
+
 def policies(spread: dict | None, use_model: bool, horizon: float) -> dict[str, dict]:
     """Label -> replay settings (keyword arguments of replay_regret_rows plus 'track').
 
@@ -220,9 +232,7 @@ def policies(spread: dict | None, use_model: bool, horizon: float) -> dict[str, 
     flat = {"spread": None, "use_offsets": False}
     new = {"spread": spread, "use_offsets": use_model, "min_share": 0.0, "temper": 1.0,
            "first_cap": True, "cap_lift": use_model, "horizon": horizon}
-    previous = {**new, "spread": {**spread, "logit_sd": PREVIOUS_PRIOR_WIDTH / LEARNED_PRIOR_WIDTH * spread["logit_sd"],
-                                  "level_weight": PREVIOUS_LEVEL_WEIGHT},
-                "min_share": LEARNED_MIN_SHARE, "temper": DEFAULT_TEMPER, "commit": True, "horizon": None}
+    previous = {**new, **previous_policy(spread, applied_width=LEARNED_PRIOR_WIDTH), "horizon": None}
     rows = {
         "equal split": {"policy": "equal"},
         "flat Thompson (temper 1, no floor)": {**flat, "temper": 1.0, "min_share": 0.0, "track": True},
@@ -510,10 +520,8 @@ TUNE_LEVEL_WEIGHTS = (25.0, 50.0, 100.0, 200.0, 400.0)
 def tune_grid(spread: dict, typical: float) -> dict[str, dict]:
     """The settings --tune compares: prior width and horizon of the lookahead default, its budget-known form, the previous default."""
     base = {"spread": spread, "use_offsets": False, "first_cap": True, "track": True, "temper": 1.0, "min_share": 0.0}
-    grid = {f"previous default (x{PREVIOUS_PRIOR_WIDTH:g}, temper {DEFAULT_TEMPER:g}, commit)": {
-        **base, "spread": {**spread, "logit_sd": PREVIOUS_PRIOR_WIDTH * spread["logit_sd"],
-                           "level_weight": PREVIOUS_LEVEL_WEIGHT},
-        "temper": DEFAULT_TEMPER, "min_share": LEARNED_MIN_SHARE, "commit": True}}
+    grid = {f"previous default (x{PREVIOUS_PRIOR_WIDTH:g}, temper {DEFAULT_TEMPER:g}, commit)":
+            {**base, **previous_policy(spread)}}
     for w in TUNE_WIDTHS:
         for h in TUNE_HORIZONS:
             grid[f"width {w:g}, horizon {h:g} x typical"] = {
