@@ -6,6 +6,18 @@ code 2; any other exception is a bug and keeps its traceback.
 
 from __future__ import annotations
 
+import re
+
+# C0 controls but tab, line feed and carriage return; DEL; C1 controls. None belongs in a headline, name or id:
+# an escape sequence drives the terminal that prints it, a bell rings, and all are invisible in an editor.
+CONTROL_CHARS = re.compile("[\x00-\x08\x0b\x0c\x0e-\x1f\x7f-\x9f]")
+
+
+def visible(text: str) -> str:
+    """``text`` with every control character written as ``\\xNN``, so a message that quotes the user's input
+    cannot drive the terminal that shows it."""
+    return CONTROL_CHARS.sub(lambda m: f"\\x{ord(m.group()):02x}", str(text))
+
 
 class ContentlabError(Exception):
     """A problem with the user's input or workspace, with a message written for them."""

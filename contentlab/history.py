@@ -76,7 +76,8 @@ def import_history(
             + "\nFix these rows, or pass --skip-bad to import the good rows and write the rest to a file."
         )
     if history.rows_read == 0:
-        raise ContentlabError(f"{path}: has a header but no rows.")
+        raise ContentlabError(f"{path}: has a header but no rows; nothing was imported. Export the posts again "
+                              "(check the date range of the export), then import that file.")
     out_file = None
     if skip_bad and len(history.rejected):
         # Written before the transaction, so a file we cannot write leaves the workspace as it was.

@@ -16,8 +16,8 @@ import pandas as pd
 
 from .errors import ContentlabError
 from .features import clean_headline
-from .readers import (MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, count_cells, file_bytes, header_row, known_names,
-                      long_cells, read_cells, unused_columns)
+from .readers import (MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, control_cells, count_cells, file_bytes,
+                      header_row, known_names, long_cells, may_hold_controls, read_cells, unused_columns)
 from .readers import read_bytes, sniff_delimiter  # noqa: F401  (their home is readers; kept importable here)
 from .readers import short as _short
 from .timeparse import parse_datetimes
@@ -248,6 +248,10 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
                                 ("image_id", MAX_ID_CHARS, "an id")):
         if column in frame.columns:
             found += long_cells(frame[column].str.strip(), column, limit, noun)
+    if may_hold_controls(frame):
+        for column in ["post_id", "headline"] + OPTIONAL_TEXT:
+            if column in frame.columns:
+                found += control_cells(frame[column], column)
     for column in OPTIONAL_TEXT:
         clean[column] = frame[column].str.strip().replace("", None) if column in frame.columns else None
     clean["cost"] = cost

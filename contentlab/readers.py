@@ -39,7 +39,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import ContentlabError
+from .errors import CONTROL_CHARS, ContentlabError
 from .timeparse import parse_datetime, parse_datetimes
 
 MAX_ID_CHARS = 200
@@ -58,6 +58,7 @@ __all__ = [
     "MAX_ID_CHARS",
     "MAX_NAME_CHARS",
     "check_results",
+    "control_cells",
     "count_cells",
     "file_digest",
     "known_names",
@@ -90,7 +91,8 @@ def file_bytes(path: Path, instead_of_a_folder: str) -> bytes:
     except IsADirectoryError:
         raise ContentlabError(f"{path}: is a folder; give {instead_of_a_folder}.") from None
     except PermissionError:
-        raise ContentlabError(f"{path}: cannot be read (permission denied).") from None
+        raise ContentlabError(f"{path}: cannot be read (permission denied); ask for read access to it, or copy it "
+                              "somewhere you may read and give that copy.") from None
     except OSError as exc:  # a symbolic-link loop, a name too long, a device that fails to read...
         raise ContentlabError(f"{path}: cannot be read ({exc.strerror or exc}); check the path, or copy the file "
                               "somewhere plain and give that copy.") from None
@@ -130,8 +132,20 @@ def read_bytes(path: str | Path) -> tuple[bytes, str]:
             f"{path}: row {line} holds a NUL byte (\\0), which no CSV export contains; the file may be damaged "
             "or not a CSV file. Export it again as CSV."
         )
-    if _is_utf8(raw):
+    bad = _first_non_utf8(raw)
+    if bad is None:
         return raw, "utf-8"
+    mixed = _UTF8_TEXT.search(raw)
+    if mixed:  # read as cp1252, its UTF-8 rows would be garbled ('Café' as 'CafÃ©') without a word
+        line = raw.count(b"\n", 0, bad) + 1
+        other = raw.count(b"\n", 0, mixed.start()) + 1
+        near = raw[max(0, mixed.start() - 12):mixed.end() + 12].decode("utf-8", errors="replace")
+        sample = short(" ".join(near.replace("\ufffd", "").split()), 30)
+        raise ContentlabError(
+            f"{path}: mixes two encodings: row {other} holds UTF-8 text ('{sample}') but row {line} holds a byte "
+            f"(0x{raw[bad]:02X}) that is not UTF-8, so either way part of its text would be read garbled. Correct "
+            f"row {line} and save the file as CSV UTF-8 (in a spreadsheet: Save As, 'CSV UTF-8'), then try again."
+        )
     unused = _CP1252_UNUSED.search(raw)
     if unused:  # neither UTF-8 nor cp1252: read as cp1252 its text would be silently garbled
         line = raw.count(b"\n", 0, unused.start()) + 1
@@ -154,12 +168,34 @@ _SIGNATURES = (
     (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1", "an Excel 97-2003 (.xls) workbook or another Office file"),
     (b"%PDF-", "a PDF document"),
     (b"SQLite format 3\x00", "an SQLite database"),
+    (b"\x89PNG\r\n\x1a\n", "a PNG image"),
+    (b"\xff\xd8\xff", "a JPEG image"),
+    (b"GIF8", "a GIF image"),
+    (b"BZh", "a bzip2-compressed file (contentlab reads .gz only)"),
+    (b"\xfd7zXZ\x00", "an xz-compressed file (contentlab reads .gz only)"),
+    (b"7z\xbc\xaf\x27\x1c", "a 7-Zip archive"),
+)
+
+# Text files that are not CSV: by their first non-blank characters (lower case).
+_TEXT_SIGNATURES = (
+    (b"<!doctype html", "a web page (HTML)"),
+    (b"<html", "a web page (HTML)"),
+    (b"<?xml", "an XML file"),
+    (b"{", "JSON"),
+    (b"[{", "JSON"),
+    (b"[\n", "JSON"),
+    (b"[]", "JSON"),
 )
 
 
 def _not_a_csv(raw: bytes) -> str | None:
     """What a file is when its first bytes say it is a known non-CSV format, else None."""
-    return next((kind for magic, kind in _SIGNATURES if raw.startswith(magic)), None)
+    kind = next((kind for magic, kind in _SIGNATURES if raw.startswith(magic)), None)
+    if kind:
+        return kind
+    head = raw[:64].removeprefix(b"\xef\xbb\xbf").lstrip().lower()
+    head = head[:1] + head[1:].lstrip(b" \t\r") if head.startswith(b"[") else head
+    return next((kind for magic, kind in _TEXT_SIGNATURES if head.startswith(magic)), None)
 
 
 def _wide_encoding(raw: bytes) -> str | None:
@@ -173,17 +209,28 @@ def _wide_encoding(raw: bytes) -> str | None:
     return None
 
 
-def _is_utf8(raw: bytes, block: int = 1 << 20) -> bool:
-    """Whether ``raw`` decodes as UTF-8, checked a megabyte at a time (no full-size copy)."""
+def _first_non_utf8(raw: bytes, block: int = 1 << 20) -> int | None:
+    """Offset of the first byte that is not UTF-8 (None when all of ``raw`` is), checked a megabyte at a time
+    (no full-size copy)."""
     decoder = codecs.getincrementaldecoder("utf-8")()
     view = memoryview(raw)
+    start = 0
     try:
         for start in range(0, len(raw), block):
             decoder.decode(view[start:start + block], final=False)
+        start = len(raw)
         decoder.decode(b"", final=True)
-    except UnicodeDecodeError:
-        return False
-    return True
+    except UnicodeDecodeError as exc:
+        pending = len(decoder.getstate()[0])  # bytes of an unfinished sequence carried over from the block before
+        return max(0, start - pending + exc.start) if start < len(raw) else max(0, len(raw) - pending)
+    return None
+
+
+# UTF-8 sequences of accented Latin letters, punctuation and symbols (U+00A0-U+017F, U+2000-U+20BF) and emoji:
+# found in a file that is not UTF-8 as a whole, they mean rows in two encodings (read as cp1252 they would be
+# 'Ã©', 'â€”'). Read as cp1252 text they are an accented capital followed by a symbol, which text hardly holds.
+_UTF8_TEXT = re.compile(rb"(?:\xc2[\xa0-\xbf]|[\xc3-\xc5][\x80-\xbf]|\xe2[\x80-\x82][\x80-\xbf]"
+                        rb"|\xf0\x9f[\x80-\xbf][\x80-\xbf])+")
 
 
 def file_digest(raw: bytes) -> str:
@@ -259,6 +306,7 @@ def read_cells(path: str | Path, what: str = "file") -> pd.DataFrame:
     frame.attrs["source"] = str(path)
     frame.attrs["digest"] = file_digest(whole)
     frame.attrs["header_row"] = 1 + skipped
+    frame.attrs["controls"] = _CONTROL_BYTES.search(raw) is not None
     return frame
 
 
@@ -388,7 +436,10 @@ def count_cells(cells: pd.Series, column: str) -> tuple[np.ndarray, np.ndarray, 
     for i in np.flatnonzero(negative):
         problems.append((i, column, f"{short(raw.iat[i])} is negative; counts cannot be below 0"))
     for i in np.flatnonzero(fractional):
-        problems.append((i, column, f"{short(raw.iat[i])} is fractional; counts must be whole numbers"))
+        text = raw.iat[i]
+        hint = (f"; if it means {text.replace('.', '')}, write it without the thousands separator"
+                if re.fullmatch(r"[+]?\d{1,3}(\.\d{3})+", text) else "")
+        problems.append((i, column, f"{short(text)} is fractional; counts must be whole numbers{hint}"))
     for i in np.flatnonzero(too_large):
         problems.append((i, column, f"{short(raw.iat[i])} is too large to be a count (the limit is 2^53)"))
     bad = empty | named_nan | nonnum | infinite | negative | fractional | too_large
@@ -410,6 +461,33 @@ def long_cells(cells: pd.Series, column: str, limit: int, noun: str) -> list[tup
     lengths = cells.astype(str).str.len().to_numpy()
     return [(int(i), column, f"has {lengths[i]:,} characters; {noun} may have at most {limit}")
             for i in np.flatnonzero(lengths > limit)]
+
+
+_CONTROL = CONTROL_CHARS  # and their bytes in a UTF-8 or cp1252 file:
+_CONTROL_BYTES = re.compile(rb"[\x00-\x08\x0b\x0c\x0e-\x1f\x7f]|\xc2[\x80-\x9f]")
+_CONTROL_NAMES = {0x00: "NUL", 0x07: "bell", 0x08: "backspace", 0x0B: "vertical tab", 0x0C: "form feed",
+                  0x1B: "escape", 0x7F: "delete"}
+
+
+def control_cells(cells: pd.Series, column: str) -> list[tuple[int, str, str]]:
+    """Problems for cells holding a control character (not tab or line breaks), one per cell, as (position,
+    column, reason): refused, never dropped silently, so what is stored is what the user sees."""
+    text = cells.astype(object).where(cells.notna(), "").astype(str)
+    hits = np.flatnonzero(text.str.contains(_CONTROL).to_numpy(dtype=bool))
+    problems = []
+    for i in hits:
+        value = text.iat[i]
+        at = _CONTROL.search(value).start()
+        code = ord(value[at])
+        name = _CONTROL_NAMES.get(code, "a control character")
+        problems.append((int(i), column, f"holds U+{code:04X} ({name}) at character {at + 1}, an invisible control "
+                                         "character; delete it (retype the text around it if you cannot see it)"))
+    return problems
+
+
+def may_hold_controls(frame: pd.DataFrame) -> bool:
+    """False when :func:`read_cells` saw no control byte in the file (so its cells need no check)."""
+    return bool(frame.attrs.get("controls", True))
 
 
 # ------------------------------------------------------------------ drafts
@@ -481,7 +559,7 @@ def read_drafts(path: str | Path) -> pd.DataFrame:
             "A drafts file needs headline and may have channel, publish_at (or time), group and arm."
         )
     if frame.empty:
-        raise ContentlabError(f"{path}: has a header but no drafts.")
+        raise ContentlabError(f"{path}: has a header but no drafts; write one headline a row below the header.")
     frame["row"] = frame.index.to_numpy()
     frame = frame.reset_index(drop=True)
     frame.attrs["source"] = str(path)
@@ -532,7 +610,14 @@ def prepare_drafts(
                 f"{_draft_where(out, source, i, 'headline')}: the draft has {len(text)} characters; a headline "
                 f"may have at most {MAX_DRAFT_CHARS}. Is this body text? Score the headline alone."
             )
+    controls = [p for column in ("headline", "channel", "group") if column in out
+                for p in control_cells(out[column], column)]
+    if controls:
+        i, column, reason = min(controls)
+        raise ContentlabError(f"{_draft_where(out, source, i, column)}: {reason}")
     if channel is not None:
+        if _CONTROL.search(channel):
+            raise ContentlabError(f"--channel: {control_cells(pd.Series([channel]), 'channel')[0][2]}")
         if len(channel.strip()) > MAX_NAME_CHARS:
             raise ContentlabError(f"--channel: has {len(channel.strip())} characters; a channel may have at most {MAX_NAME_CHARS}")
         if "channel" not in out:
@@ -600,7 +685,8 @@ def read_results(path: str | Path) -> pd.DataFrame:
             f"clicks and optionally at and event_id; it has: {', '.join(frame.columns)}."
         )
     if frame.empty:
-        raise ContentlabError(f"{path}: has a header but no results; nothing was recorded.")
+        raise ContentlabError(f"{path}: has a header but no results; nothing was recorded. Write one result a row "
+                              "below the header (arm, impressions, clicks).")
     frame["row"] = frame.index.to_numpy()
     frame = frame.reset_index(drop=True)
     return frame
@@ -662,6 +748,7 @@ def check_results(
         at = parsed.stored
     event_id = text("event_id")
     found += long_cells(event_id, "event_id", MAX_ID_CHARS, "an event id")
+    found += control_cells(event_id, "event_id")
     if found:
         found.sort(key=lambda p: (rows[p[0]], p[1]))
         raise ContentlabError(_one_line([f"{here(i, c)}: {r}" for i, c, r in found], "nothing was recorded"))

@@ -241,7 +241,8 @@ class Workspace:
                 f"{path} is a file, not a workspace folder; give --workspace a folder (new or existing)."
             )
         if db.exists() and not db.is_file():
-            raise ContentlabError(f"{db} is not a file, so {path} is not a usable workspace.")
+            raise ContentlabError(f"{db} is not a file, so {path} is not a usable workspace; move that folder out "
+                                  "of the way, or give --workspace another folder.")
         if db.is_file() and _empty_database(db):
             # SQLite would take an empty file for a new database: a workspace cut to nothing would quietly
             # start again, empty. Say so instead; only the user may decide to start afresh.
@@ -268,8 +269,11 @@ class Workspace:
                 conn = sqlite3.connect(f"{db.resolve().as_uri()}?immutable=1", uri=True, timeout=LOCK_NOTICE_SECONDS,
                                        factory=WaitingConnection)
                 conn.execute("PRAGMA query_only=ON")
+                _refuse_foreign(conn, path, db)
             else:
                 conn = sqlite3.connect(db, timeout=LOCK_NOTICE_SECONDS, factory=WaitingConnection)
+                if not created:
+                    _refuse_foreign(conn, path, db)  # before anything is written to it, the journal mode included
                 conn.execute("PRAGMA journal_mode=WAL")
                 # In WAL mode NORMAL is still safe from corruption; a power cut can lose
                 # only the last commits, and it makes a large import several times faster.
@@ -550,6 +554,21 @@ def not_usable(path: Path, exc: BaseException) -> str:
     """The one message for a workspace database that SQLite cannot read."""
     return (f"{path} is not a usable workspace: {path / DB_NAME} cannot be read as a contentlab database "
             f"({exc}). Restore it from a backup, or use another --workspace.")
+
+
+def _refuse_foreign(conn: sqlite3.Connection, path: Path, db: Path) -> None:
+    """An SQLite file with tables but no contentlab ``meta`` table is another program's database (or one whose
+    settings table was lost): adding contentlab's tables to it would change a file that is not ours."""
+    tables = [name for (name,) in conn.execute(
+        "SELECT name FROM sqlite_master WHERE type='table' AND name NOT LIKE 'sqlite_%' ORDER BY name")]
+    if tables and "meta" not in tables:
+        conn.close()
+        shown = ", ".join(tables[:5]) + (f" and {len(tables) - 5} more" if len(tables) > 5 else "")
+        raise ContentlabError(
+            f"{path} is not a usable workspace: {db} is an SQLite database without contentlab's settings table "
+            f"(it holds the table(s) {shown}), so it belongs to another program or lost part of itself; nothing "
+            "was changed in it. Give --workspace another folder, or restore the workspace from a backup."
+        )
 
 
 def _is_corrupt(exc: sqlite3.DatabaseError) -> bool:

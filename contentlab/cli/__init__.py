@@ -18,7 +18,7 @@ import importlib
 import os
 import sys
 
-from ..errors import ContentlabError
+from ..errors import ContentlabError, visible
 
 # Modules that add subcommands, in the order they appear in --help.
 AREAS = ["importing", "modelling", "scoring", "experimenting", "reporting", "serving", "demoing"]
@@ -72,6 +72,38 @@ def add_workspace_option(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--workspace", metavar="DIR", default=argparse.SUPPRESS, help=WORKSPACE_HELP)
 
 
+def whole_number(text: str) -> int:
+    """argparse type for counts, seeds and ports: the value itself and what to write instead when it is not one."""
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"'{visible(text)[:40]}' is not a whole number; write it in digits without "
+                                         "separators or decimals, e.g. 1000") from None
+
+
+def decimal_number(text: str) -> float:
+    """argparse type for rates, thresholds and strengths (their ranges are checked by the command)."""
+    try:
+        return float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"'{visible(text)[:40]}' is not a number; write it in digits with a "
+                                         "decimal point, e.g. 0.95") from None
+
+
+def check_out_dir(value: str | None, default: str) -> None:
+    """Refuse an --out that cannot be the report folder before any work is done: empty (it would mean the
+    current folder) or an existing file."""
+    from pathlib import Path
+
+    if value is None:
+        return
+    if not str(value).strip():
+        raise ContentlabError(f"--out is empty: give the folder for the report, or leave the option out for {default}.")
+    if Path(value).exists() and not Path(value).is_dir():
+        raise ContentlabError(f"--out {value}: is a file, not a folder; give a folder for the report (new or "
+                              "existing).")
+
+
 def add_format_option(parser: argparse.ArgumentParser, choices=("table", "json", "csv")) -> None:
     parser.add_argument("--format", choices=choices, default=choices[0], help="output format (default: %(default)s)")
 
@@ -114,7 +146,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         result = args.handler(args)
     except ContentlabError as exc:
-        print(f"contentlab {name}: {exc}", file=sys.stderr)
+        print(f"contentlab {name}: {visible(str(exc))}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
         print("interrupted; nothing more was written", file=sys.stderr)
@@ -125,7 +157,7 @@ def main(argv: list[str] | None = None) -> int:
         if os.environ.get("CONTENTLAB_DEBUG") == "1":
             raise
         message, code = explain_failure(exc, getattr(args, "workspace", None))
-        print(f"contentlab {name}: {message}", file=sys.stderr)
+        print(f"contentlab {name}: {visible(message)}", file=sys.stderr)
         return code
     return int(result or 0)
 

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from . import command_parser
+from . import check_out_dir, command_parser
 
 
 def register(subparsers) -> None:
@@ -32,5 +32,6 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
     if args.workspace is not None:
         resolve_dir(args.workspace)  # refuses an empty --workspace "" rather than building the demo elsewhere
+    check_out_dir(args.out, "a reports folder inside the demo workspace")
     run_demo(args.workspace or "demo-workspace", args.out)
     return 0

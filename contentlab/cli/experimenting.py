@@ -7,7 +7,7 @@ import json
 import math
 import sys
 
-from . import add_format_option, add_workspace_option, command_parser
+from . import add_format_option, add_workspace_option, command_parser, decimal_number, whole_number
 
 POLICY_TEXT = (
     "Thompson sampling (thompson) gives each draft a share of traffic that grows with "
@@ -75,11 +75,11 @@ def register(subparsers) -> None:
     p.add_argument("--group", help="use only the drafts of this group (when the file has a group column)")
     p.add_argument("--channel", help="channel of every arm (overrides the file's channel column)")
     p.add_argument("--flat-prior", action="store_true", help="start every arm at the flat Beta(1, 1) prior")
-    p.add_argument("--prior-strength", type=float, metavar="S",
+    p.add_argument("--prior-strength", type=decimal_number, metavar="S",
                    help="use the model's predictions with this strength (pseudo-impressions) instead of the chosen one")
     p.add_argument("--policy", default="thompson", choices=["thompson", "top-two"], help=POLICY_HELP)
-    p.add_argument("--seed", type=int, help="random seed for the allocations, 0 to 2147483647 (default: a fresh one, stored)")
-    p.add_argument("--budget", type=int, metavar="N",
+    p.add_argument("--seed", type=whole_number, help="random seed for the allocations, 0 to 2147483647 (default: a fresh one, stored)")
+    p.add_argument("--budget", type=whole_number, metavar="N",
                    help="impressions the whole test will get: explore more while much remains, commit as it runs "
                         "out (default: twice your typical past test with past tests; else no budget, a fixed balance)")
     p.add_argument("--ends-at", metavar="TIME",
@@ -108,7 +108,7 @@ def register(subparsers) -> None:
         example="contentlab experiment next makerspace --impressions 5000",
     )
     p.add_argument("name")
-    p.add_argument("--impressions", type=int, default=1000, metavar="N", help="impressions to split (default 1000)")
+    p.add_argument("--impressions", type=whole_number, default=1000, metavar="N", help="impressions to split (default 1000)")
     p.add_argument("--policy", choices=["thompson", "top-two"],
                    help="thompson or top-two (see above); default: the experiment's own")
     p.add_argument("--single", action="store_true", help="name the single draft to post next")
@@ -131,13 +131,13 @@ def register(subparsers) -> None:
         example="contentlab experiment status makerspace --discount 0.9 --format json",
     )
     p.add_argument("name")
-    p.add_argument("--discount", type=float, metavar="D",
+    p.add_argument("--discount", type=decimal_number, metavar="D",
                    help="down-weight older results: each recording round (in event-time order) multiplies earlier "
                         "results by D in (0, 1]; default 1 (no discount)")
-    p.add_argument("--loss-threshold", type=float, metavar="RATE",
+    p.add_argument("--loss-threshold", type=decimal_number, metavar="RATE",
                    help="stop when choosing the leader gives up less than this click-through rate in expectation, "
                         "e.g. 0.0002 for 0.02 percentage points (default: 1%% of the leader's rate)")
-    p.add_argument("--prob-threshold", type=float, metavar="P", help="stop when P(best) >= P (default 0.95)")
+    p.add_argument("--prob-threshold", type=decimal_number, metavar="P", help="stop when P(best) >= P (default 0.95)")
     add_format_option(p)
     add_workspace_option(p)
     p.set_defaults(handler=cmd_status)

@@ -6,7 +6,7 @@ import argparse
 import json
 import sys
 
-from . import add_format_option, add_workspace_option, command_parser
+from . import add_format_option, add_workspace_option, command_parser, whole_number
 
 # Topic words `drivers` lists unless --top says otherwise (learn saves that table with the model).
 DEFAULT_TOP_TERMS = 15
@@ -27,7 +27,7 @@ def register(subparsers) -> None:
     )
     p.add_argument("--outcome", choices=("clicks", "engagements"), default="clicks",
                    help="what to model per impression (default: %(default)s)")
-    p.add_argument("--bootstrap", type=int, default=100, metavar="N",
+    p.add_argument("--bootstrap", type=whole_number, default=100, metavar="N",
                    help="bootstrap refits for the intervals (default: %(default)s; 0 for none)")
     p.add_argument("--no-meaning", action="store_true",
                    help="leave out headline meaning (sentence embeddings; with many A/B tests it ranks headlines "
@@ -52,7 +52,7 @@ def register(subparsers) -> None:
     )
     p.add_argument("--outcome", choices=("clicks", "engagements"), default=None,
                    help="which saved model (default: the newest)")
-    p.add_argument("--top", type=int, default=DEFAULT_TOP_TERMS, metavar="N",
+    p.add_argument("--top", type=whole_number, default=DEFAULT_TOP_TERMS, metavar="N",
                    help="topic words to list (default: %(default)s)")
     add_format_option(p)
     add_workspace_option(p)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 
-from . import add_workspace_option, command_parser
+from . import add_workspace_option, check_out_dir, command_parser
 
 
 def register(subparsers) -> None:
@@ -41,8 +41,11 @@ def cmd_report(args: argparse.Namespace) -> int:
 
     if args.date_to and not args.date_from:
         raise ContentlabError("--to needs --from: give both dates of the range.")
+    check_out_dir(args.out, "./reports")
     with Workspace.open(args.workspace, create=False) as ws:
         _check_something_to_report(ws, args)
+        if args.drafts:
+            _check_drafts(ws, args.drafts)
         report = build_report(ws, week=args.week, start=args.date_from, end=args.date_to, outcome=args.outcome,
                               drafts=args.drafts)
     files = write_report(report, args.out)
@@ -78,3 +81,21 @@ def _check_something_to_report(ws, args: argparse.Namespace) -> None:
     if start > today:
         raise ContentlabError(f"nothing to report: {label} has not begun yet (today is {today} in {ws.timezone}). "
                               "Choose a week that has posts, or leave out --week for the last complete one.")
+
+
+def _check_drafts(ws, path: str) -> None:
+    """The drafts file the user gave is read and checked as ``score --input`` checks it, before anything is
+    written: a bad row stops the command (exit 2) instead of a report that silently leaves drafts out."""
+    from ..errors import ContentlabError
+    from ..readers import prepare_drafts, read_drafts
+
+    frame = read_drafts(path)
+    channels = sorted(c for (c,) in ws.conn.execute("SELECT DISTINCT channel FROM posts WHERE channel IS NOT NULL"))
+    prepared = prepare_drafts(frame, ws.timezone, known_channels=channels or None, source=path)
+    if len(channels) > 1 and "channel" in prepared and prepared["channel"].isna().any():
+        row = int(prepared.loc[prepared["channel"].isna(), "row"].iloc[0])
+        raise ContentlabError(f"{path}: row {row}, column 'channel': is empty; give every draft one of your "
+                              f"history's channels ({', '.join(channels)}) so it can be scored.")
+    if len(channels) > 1 and "channel" not in prepared:
+        raise ContentlabError(f"{path}: has no 'channel' column; your history has several channels "
+                              f"({', '.join(channels)}), so give every draft one to score it in the report.")

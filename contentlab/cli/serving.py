@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import argparse
 
-from . import add_workspace_option, command_parser
+from . import add_workspace_option, command_parser, whole_number
 
 LOOPBACK = {"127.0.0.1", "localhost", "::1"}
 
@@ -25,7 +25,7 @@ def register(subparsers) -> None:
     add_workspace_option(p)
     p.add_argument("--host", default="127.0.0.1",
                    help="address to listen on (default: %(default)s, this computer only)")
-    p.add_argument("--port", type=int, default=8765, help="port (default: %(default)s)")
+    p.add_argument("--port", type=whole_number, default=8765, help="port (default: %(default)s)")
     p.add_argument("--no-browser", action="store_true", help="do not open a browser window")
     p.add_argument("--token", metavar="T",
                    help="access token every page and API call must carry (generated when --host is not local)")

@@ -47,8 +47,8 @@ async def page(request: Request):
 
 async def _score_form(request: Request, form) -> dict:
     state = request.app.state.workspace
-    values = {"headlines": text(form, "headlines"), "channel": text(form, "channel", 200),
-              "publish_at": text(form, "publish_at", 40)}
+    values = {"headlines": text(form, "headlines"), "channel": text(form, "channel", 1000),
+              "publish_at": text(form, "publish_at", 1000)}
     drafts = parse_lines(values["headlines"], values["channel"], values["publish_at"])
     result = {"drafts": [], "groups": [], "error": None, "notes": [], "cautions": []}
     if len(drafts) > MAX_LINES:
@@ -87,9 +87,9 @@ async def make_experiment(request: Request):
     """One step from a group of drafts to a running experiment (priors from the model, as the CLI does)."""
     form = await checked_form(request)
     state = request.app.state.workspace
-    name = text(form, "name", 200).strip()
-    channel = text(form, "channel", 200)
-    publish_at = text(form, "publish_at", 40)
+    name = text(form, "name", 1000).strip()
+    channel = text(form, "channel", 1000)
+    publish_at = text(form, "publish_at", 1000)
     drafts = [{"headline": d["headline"], "publish_at": d["publish_at"] or ""}
               for d in parse_lines(text(form, "headlines"), channel, publish_at)]
     try:

@@ -88,7 +88,7 @@ async def record(request: Request):
     name = request.path_params["name"]
     state = request.app.state.workspace
     form = await checked_form(request)
-    values = {k: text(form, k, 200).strip() for k in RECORD_FIELDS}
+    values = {k: text(form, k, 1000).strip() for k in RECORD_FIELDS}  # record names longer ones
     row = {k: v for k, v in values.items() if v or k in ("arm", "impressions", "clicks")}
     errors: dict[str, str] = {}
     general = done = None
@@ -114,7 +114,7 @@ async def stop(request: Request):
     state = request.app.state.workspace
     form = await checked_form(request)
     await blocking(services.require_experiment, state, name)
-    await blocking(services.stop, state, name, text(form, "winner", 200) or None)
+    await blocking(services.stop, state, name, text(form, "winner", 1000) or None)
     return RedirectResponse(f"/experiments/{quote(name, safe='')}", status_code=303)
 
 

@@ -20,9 +20,15 @@ async def checked_form(request: Request, *, files: int = 0):
 
 
 def text(form, name: str, limit: int = 100_000) -> str:
-    """A text field (files and missing fields count as empty), cut at ``limit`` characters."""
+    """A text field (files and missing fields count as empty); one over ``limit`` characters is refused, never
+    cut (a cut event id or time would be stored as something the user did not type)."""
     value = form.get(name)
-    return value[:limit] if isinstance(value, str) else ""
+    if not isinstance(value, str):
+        return ""
+    if len(value) > limit:
+        raise ApiError(f"The field '{name}' has {len(value):,} characters; it may have at most {limit:,}. Shorten it "
+                       "and send the form again (nothing was changed).")
+    return value
 
 
 def is_htmx(request: Request) -> bool:
