@@ -46,7 +46,10 @@ def ws(base, tmp_path) -> Path:
 
 def run(capsys, argv: list[str]) -> tuple[int, str, str]:
     capsys.readouterr()
-    code = main(argv)
+    try:
+        code = main(argv)
+    except SystemExit as exc:  # a mistyped option: argparse exits (code 2) before the command runs
+        code = exc.code
     out, err = capsys.readouterr()
     return code, out, err
 
@@ -163,6 +166,52 @@ CASES = [
      "cannot be read (File name too long); check the path"),
     ("bootstrap refits beyond any use", {}, ["learn", "--bootstrap", "100000000"],  # was "ran out of memory"
      "--bootstrap must be from 0 to 5,000; got 100,000,000"),
+    # Mixed encodings: read as cp1252 (the fallback) the UTF-8 rows were stored garbled ('CafÃ©') without a word.
+    ("export mixing UTF-8 and latin-1 rows",
+     {"f.csv": (HEAD + "p1,2026-03-02,Café opens,10,1,blog\n").encode() + b"p2,2026-03-02,Na\xefve,10,1,blog\n"},
+     ["import", "{tmp}/f.csv"], "mixes two encodings: row 2 holds UTF-8 text"),
+    ("results mixing UTF-8 and cp1252 rows",
+     {"r.csv": "arm,impressions,clicks,event_id\nA,10,1,café\n".encode() + b"B,10,1,caf\xe9\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 3 holds a byte (0xE9) that is not UTF-8"),
+    ("drafts mixing UTF-8 and cp1252 rows",
+     {"d.csv": "headline,channel\nCafé — open late,blog\n".encode() + b"Caf\xe9 opens,blog\n"},
+     ["score", "--input", "{tmp}/d.csv"], "mixes two encodings"),
+    # Control characters were stored and printed as they were: an escape sequence drove the user's terminal.
+    ("escape sequence in an export headline",
+     {"f.csv": (HEAD + "p1,2026-03-02,Red \x1b[31malert,10,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "row 2, column 'headline': holds U+001B (escape) at character 5"),
+    ("bell in a results event id", {"r.csv": b"arm,impressions,clicks,event_id\nA,10,1,e\x07\n"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "row 2, column 'event_id': holds U+0007 (bell)"),
+    ("control character in a drafts file", {"d.csv": b"headline,channel\nDraft\x08 one,blog\n"},
+     ["score", "--input", "{tmp}/d.csv"], "row 2, column 'headline': holds U+0008 (backspace)"),
+    ("control character in a headline argument", {}, ["score", "Red \x1b[31malert", "--channel", "newsletter"],
+     "draft 1, headline: holds U+001B (escape)"),
+    ("control character in an arm name is not echoed", {}, ["record", "laser", "--arm", "A\x1b[2J", "--impressions",
+                                                            "5", "--clicks", "1"], "--arm: 'A\\x1b[2J' is not an arm"),
+    # Other files given as CSV were read as CSV: a header of JSON text, "column appears twice" or "missing column".
+    ("JSON given as drafts", {"d.json": b'[{"headline": "One", "channel": "blog"}]'}, ["score", "--input", "{tmp}/d.json"],
+     "is JSON, not a CSV file"),
+    ("web page given as results", {"r.csv": b"<!DOCTYPE html><html><body>sign in</body></html>"},
+     ["record", "laser", "--input", "{tmp}/r.csv"], "is a web page (HTML), not a CSV file"),
+    ("PNG image given as the export", {"f.csv": b"\x89PNG\r\n\x1a\n" + bytes(200)}, ["import", "{tmp}/f.csv"],
+     "is a PNG image, not a CSV file"),
+    ("export with a header and no rows", {"f.csv": HEAD.encode()}, ["import", "{tmp}/f.csv"],
+     "has a header but no rows; nothing was imported. Export the posts again"),
+    ("count with a thousands dot", {"f.csv": (HEAD + "p1,2026-03-02,Hello,1.234,1,blog\n").encode()},
+     ["import", "{tmp}/f.csv"], "1.234 is fractional; counts must be whole numbers; if it means 1234, write it without"),
+    # report --drafts: a bad file was written into the report as "could not be scored", exit 0.
+    ("report --drafts with a bad time", {"d.csv": b"headline,channel,publish_at\nA draft,blog,soon\n"},
+     ["report", "--drafts", "{tmp}/d.csv", "--out", "{tmp}/out"], "row 2, column 'publish_at': 'soon' is not an ISO 8601"),
+    ("report --drafts without channels", {"d.csv": b"headline\nA draft here\n"},
+     ["report", "--drafts", "{tmp}/d.csv", "--out", "{tmp}/out"], "has no 'channel' column; your history has several"),
+    ("report --drafts with an unknown channel", {"d.csv": b"headline,channel\nA draft here,tiktok\n"},
+     ["report", "--drafts", "{tmp}/d.csv", "--out", "{tmp}/out"], "row 2, column 'channel': 'tiktok' is not a channel"),
+    ("report --out empty", {}, ["report", "--out", ""], "--out is empty"),  # wrote the report into the current folder
+    ("report --out a file", {"afile": b"mine"}, ["report", "--out", "{tmp}/afile"], "is a file, not a folder"),
+    ("number option with a thousands separator", {}, ["experiment", "next", "laser", "--impressions", "1,000"],
+     "'1,000' is not a whole number; write it in digits without separators"),
+    ("decimal option that is not a number", {}, ["experiment", "status", "laser", "--discount", "half"],
+     "'half' is not a number; write it in digits"),
 ]
 
 
@@ -178,8 +227,10 @@ def test_bad_input_exit_2_one_clear_line_workspace_unchanged(ws, tmp_path, capsy
     before = workspace_digest(ws)
     code, _out, err = run(capsys, args)
     assert code == 2, err
-    assert "Traceback" not in err
+    assert "Traceback" not in err and "usage:" not in err
     assert err.startswith(f"contentlab {args[0]}"), err
+    assert "\x1b" not in err and "\x07" not in err  # never echoed to the terminal as they are
+    assert err.count("\n") == 1 or args[0] == "import", err  # one line (import lists its bad rows below)
     assert fragment in " ".join(err.split()), err
     assert workspace_digest(ws) == before
 
@@ -243,6 +294,25 @@ def test_empty_workspace_option_is_refused_not_taken_for_the_default(tmp_path, c
     code, _, err = run(capsys, argv)
     assert code == 2 and "--workspace is empty" in err, err
     assert list(tmp_path.iterdir()) == []
+
+
+@pytest.mark.parametrize("argv", [["settings", "--timezone", "UTC"], ["import", str(CORPUS / "posts.csv"), "--quiet"],
+                                  ["experiment", "list"], ["drivers"]])
+def test_another_programs_database_is_not_taken_for_a_workspace(tmp_path, capsys, argv):
+    """An SQLite file of another program got contentlab's tables (and WAL mode) added to it."""
+    folder = tmp_path / "ws"
+    folder.mkdir()
+    db = folder / "workspace.sqlite"
+    conn = sqlite3.connect(db)
+    conn.execute("CREATE TABLE contacts (name TEXT)")
+    conn.execute("INSERT INTO contacts VALUES ('Ann')")
+    conn.commit()
+    conn.close()
+    before = db.read_bytes()
+    code, _, err = run(capsys, argv + ["--workspace", str(folder)])
+    assert code == 2 and "without contentlab's settings table (it holds the table(s) contacts)" in err, err
+    assert "nothing was changed in it" in err
+    assert db.read_bytes() == before and sorted(p.name for p in folder.iterdir()) == ["workspace.sqlite"]
 
 
 def test_workspace_path_that_is_a_file(tmp_path, capsys):

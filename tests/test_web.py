@@ -168,6 +168,31 @@ def test_record_form_errors_beside_the_field_and_nothing_written(client, ws_dir)
     assert totals(ws_dir, "winter-reading") == before
 
 
+@pytest.mark.parametrize("fields, words", [
+    # Cut at 200 characters, a 300-character event id was recorded as another id without a word.
+    ({"event_id": "e" * 300}, "has 300 characters; an event id may have at most 200"),
+    # Cut at 200 characters, a time with trailing junk was recorded as the time alone.
+    ({"at": "2026-11-30T10:00" + " " * 1000 + "x"}, "has 1,017 characters; it may have at most 1,000"),
+])
+def test_record_form_long_field_is_refused_not_cut(client, ws_dir, fields, words):
+    before = totals(ws_dir, "winter-reading")
+    r = client.post("/experiments/winter-reading/record",
+                    data={"csrf_token": csrf(client), "arm": "A", "impressions": "10", "clicks": "1", **fields})
+    assert r.status_code == 400 and words in " ".join(re.sub(r"<[^>]+>", " ", r.text).split())
+    assert totals(ws_dir, "winter-reading") == before
+
+
+def test_api_control_characters_are_refused(client, ws_dir):
+    """An escape sequence in a headline or id would be stored and printed as it is by every later command."""
+    before = totals(ws_dir, "winter-reading")
+    r = client.post("/api/score", json={"drafts": [{"headline": "Red \x1b[31malert", "channel": "newsletter"}]})
+    assert r.status_code == 400 and "holds U+001B (escape)" in r.json()["error"]
+    r = client.post("/api/experiments/winter-reading/results",
+                    json={"results": [{"arm": "A", "impressions": 5, "clicks": 1, "event_id": "e\x07"}]})
+    assert r.status_code == 400 and "row 1, column 'event_id': holds U+0007 (bell)" in r.json()["error"]
+    assert totals(ws_dir, "winter-reading") == before
+
+
 def test_record_form_records_and_status_changes(client, ws_dir):
     before = totals(ws_dir, "winter-reading")
     r = client.post("/experiments/winter-reading/record",

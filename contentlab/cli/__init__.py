@@ -40,8 +40,16 @@ new here?  contentlab demo   runs all of it on an invented demo organisation.
 """
 
 
+class OneLineParser(argparse.ArgumentParser):
+    """A mistyped option gets the one line every refusal gets (exit code 2), naming where --help tells more,
+    instead of the whole usage text."""
+
+    def error(self, message: str):
+        self.exit(2, f"{self.prog}: {visible(message)}; see {self.prog} --help.\n")
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = OneLineParser(
         prog="contentlab",
         description=(
             "Learn from your own post history what drives engagement, score draft headlines "

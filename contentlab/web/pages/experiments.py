@@ -28,10 +28,16 @@ def field_errors(message: str) -> tuple[dict[str, str], str]:
         body = body[: -len(tail)]
     fields: dict[str, list[str]] = {}
     rest: list[str] = []
+    current: str | None = None
     for part in body.split("; "):
         m = _OPTION.match(part)
         if m:
-            fields.setdefault(m.group(1).replace("-", "_"), []).append(part[m.end():])
+            current = m.group(1).replace("-", "_")
+            fields.setdefault(current, []).append(part[m.end():])
+        elif current is not None and not part.startswith("(and "):
+            # The rest of that field's problem ("has 300 characters; an event id may have at most 200"):
+            # its what-to-do stays beside the field.
+            fields[current][-1] += "; " + part
         else:
             rest.append(part)
     general = "; ".join(rest)
