@@ -89,7 +89,8 @@ def why_not_iso(text: str) -> str:
         off = m.group("offset")
         if off and len(off) > 3 and int(off[-2:]) >= 60:
             return f"'{shown}': the offset '{off}' has more than 59 minutes"
-        return f"'{shown}' is not an ISO 8601 date or date-time: no such calendar date or clock time"
+        return (f"'{shown}' is not an ISO 8601 date or date-time: no such calendar date or clock time; check the day, "
+                "month and hour")
     return f"'{shown}' is not an ISO 8601 date or date-time ({EXAMPLES})"
 
 

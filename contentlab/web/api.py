@@ -26,7 +26,8 @@ async def _json_body(request: Request):
     try:
         return json.loads(raw, parse_constant=_no_constant)
     except (ValueError, UnicodeDecodeError) as exc:
-        raise ApiError(f"The body is not valid JSON ({exc}).") from None
+        raise ApiError(f"The body is not valid JSON ({exc}); send one JSON object, as the README's API section "
+                       "shows.") from None
     except RecursionError:
         raise ApiError("The body is not valid JSON for this API: its lists or objects are nested too deeply.") from None
 
