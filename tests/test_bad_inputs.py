@@ -687,3 +687,22 @@ def test_any_results_or_drafts_file_is_read_or_refused_with_a_message(tmp_path_f
             check(read(path))
         except ContentlabError as exc:
             assert str(exc)
+
+
+@pytest.mark.parametrize("raw, offset", [
+    (b"plain ascii", None),
+    ("Café — all UTF-8".encode(), None),
+    (b"abc\xffdef", 3),
+    (b"xxxxx\xc3\xa9\xff", 7),  # a two-byte letter across the block edge, then a stray byte
+    (b"xxxxx\xc3A", 5),  # a sequence cut by an ASCII letter: the lead byte is the first bad one
+    (b"xxxxxx\xe2\x80", 6),  # cut short at the end of the file
+])
+def test_first_byte_that_is_not_utf8_across_blocks(raw, offset):
+    """The row named in the mixed-encoding message is found a block at a time (block of 6 bytes here)."""
+    from contentlab.readers import _first_non_utf8
+
+    assert _first_non_utf8(raw, block=6) == offset
+    if offset is not None:  # the same offset the whole-file decoder reports
+        with pytest.raises(UnicodeDecodeError) as info:
+            raw.decode("utf-8")
+        assert info.value.start == offset

@@ -78,7 +78,8 @@ def register(subparsers) -> None:
     p.add_argument("--prior-strength", type=decimal_number, metavar="S",
                    help="use the model's predictions with this strength (pseudo-impressions) instead of the chosen one")
     p.add_argument("--policy", default="thompson", choices=["thompson", "top-two"], help=POLICY_HELP)
-    p.add_argument("--seed", type=whole_number, help="random seed for the allocations, 0 to 2147483647 (default: a fresh one, stored)")
+    p.add_argument("--seed", type=whole_number,
+                   help="random seed for the allocations, 0 to 2147483647 (default: a fresh one, stored)")
     p.add_argument("--budget", type=whole_number, metavar="N",
                    help="impressions the whole test will get: explore more while much remains, commit as it runs "
                         "out (default: twice your typical past test with past tests; else no budget, a fixed balance)")
@@ -108,7 +109,8 @@ def register(subparsers) -> None:
         example="contentlab experiment next makerspace --impressions 5000",
     )
     p.add_argument("name")
-    p.add_argument("--impressions", type=whole_number, default=1000, metavar="N", help="impressions to split (default 1000)")
+    p.add_argument("--impressions", type=whole_number, default=1000, metavar="N",
+                   help="impressions to split (default 1000)")
     p.add_argument("--policy", choices=["thompson", "top-two"],
                    help="thompson or top-two (see above); default: the experiment's own")
     p.add_argument("--single", action="store_true", help="name the single draft to post next")
