@@ -319,10 +319,14 @@ def normalise_drafts(
         row = int(frame["row"].iat[i])
         return f"{where}: row {row}, column '{column}'" if source else f"draft {row}"
 
+    from .readers import MAX_DRAFT_CHARS, control_cells
+
+    for column in ("headline", "channel"):
+        if column in frame.columns:
+            problems += [f"{here(i, c)}: {reason}" for i, c, reason in control_cells(frame[column], column)]
     headline = frame["headline"].map(clean_headline)
     for i in np.flatnonzero((headline == "").to_numpy()):
         problems.append(f"{here(i, 'headline')}: is empty after removing markup")
-    from .readers import MAX_DRAFT_CHARS
 
     for i in np.flatnonzero(headline.str.len().to_numpy() > MAX_DRAFT_CHARS):
         problems.append(f"{here(i, 'headline')}: longer than {MAX_DRAFT_CHARS} characters")
