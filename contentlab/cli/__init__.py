@@ -157,7 +157,9 @@ def main(argv: list[str] | None = None) -> int:
         print(f"contentlab {name}: {visible(str(exc))}", file=sys.stderr)
         return exc.exit_code
     except KeyboardInterrupt:
-        print("interrupted; nothing more was written", file=sys.stderr)
+        print("interrupted: work finished before the interruption is kept and nothing more was written; run the "
+              "command again to finish (a file already imported or recorded is recognised, not counted twice)",
+              file=sys.stderr)
         return 130
     except BrokenPipeError:
         return 0
