@@ -2,7 +2,7 @@
 
 * :func:`read_cells` reads any CSV the user gives (post history, drafts,
   results) into text cells, refusing what would otherwise be read wrongly: a
-  UTF-16 file, NUL bytes, a header that names a column twice, a row with more
+  damaged UTF-16 file, NUL bytes, a header that names a column twice, a row with more
   cells than the header, a quote that never closes. Row numbers are physical
   lines as a text editor shows them (a quoted headline over two lines moves
   the rows below it down).
@@ -101,8 +101,10 @@ def file_bytes(path: Path, instead_of_a_folder: str) -> bytes:
 def read_bytes(path: str | Path) -> tuple[bytes, str]:
     """File bytes (gunzipped, BOM removed) and their encoding: UTF-8 if they are valid UTF-8, else cp1252.
 
-    A UTF-16 or UTF-32 file is recognised (by its byte-order mark, or by the
-    NUL byte beside every ASCII letter) and refused with a way to fix it.
+    A UTF-16 or UTF-32 file (a spreadsheet's "Unicode Text" export) is
+    recognised by its byte-order mark, or by the NUL byte beside every ASCII
+    letter, and read as text re-encoded to UTF-8; one that does not decode
+    cleanly is refused with a way to fix it, never read garbled.
     """
     path = Path(path)
     raw = file_bytes(path, "the CSV file inside it")
@@ -121,10 +123,7 @@ def read_bytes(path: str | Path) -> tuple[bytes, str]:
         return raw[3:], "utf-8"
     wide = _wide_encoding(raw)
     if wide:
-        raise ContentlabError(
-            f"{path}: is encoded as {wide}, which contentlab does not read; save it as CSV UTF-8 "
-            "(in a spreadsheet: Save As, 'CSV UTF-8') and try again."
-        )
+        raw = _from_wide(path, raw, wide)
     nul = raw.find(b"\x00")
     if nul >= 0:
         line = raw.count(b"\n", 0, nul) + 1
@@ -199,14 +198,32 @@ def _not_a_csv(raw: bytes) -> str | None:
 
 
 def _wide_encoding(raw: bytes) -> str | None:
+    """The Python codec of a UTF-32 or UTF-16 file (by its byte-order mark, else by where its NUL bytes sit), or None."""
     if raw[:4] in (b"\xff\xfe\x00\x00", b"\x00\x00\xfe\xff"):
-        return "UTF-32"
+        return "utf-32"
     if raw[:2] in (b"\xff\xfe", b"\xfe\xff"):
-        return "UTF-16"
+        return "utf-16"
     head = raw[:200]
     if len(head) >= 4 and head.count(b"\x00") * 3 >= len(head):
-        return "UTF-16 (no byte-order mark)"
+        # ASCII text in UTF-16: the NUL is the high byte, second in little-endian order, first in big-endian.
+        odd = head[1::2].count(b"\x00")
+        return "utf-16-le" if odd >= head[0::2].count(b"\x00") else "utf-16-be"
     return None
+
+
+def _from_wide(path: Path, raw: bytes, codec: str) -> bytes:
+    """UTF-8 bytes of a UTF-16 or UTF-32 file; refused, naming the row, where it does not decode cleanly."""
+    try:
+        text = raw.decode(codec)
+    except UnicodeDecodeError as exc:
+        line = raw[:exc.start].decode(codec, errors="replace").count("\n") + 1
+        name = codec.upper().replace("-LE", "").replace("-BE", "")
+        raise ContentlabError(
+            f"{path}: reads as {name} text up to row {line}, where it holds bytes that are not {name} (the file may "
+            "be cut short or damaged); save it again as CSV UTF-8 (in a spreadsheet: Save As, 'CSV UTF-8') and try "
+            "again."
+        ) from None
+    return text.removeprefix("\ufeff").encode("utf-8")
 
 
 def _first_non_utf8(raw: bytes, block: int = 1 << 20) -> int | None:

@@ -79,7 +79,8 @@ CASES = [
      ["import", "{tmp}/f.csv"], "row 5, column 'clicks': 50 clicks is more than its 10 impressions"),
     ("unbalanced quote", {"f.csv": (HEAD + GOOD + 'p2,2026-03-02,"Unclosed,10,1,blog\n' + GOOD.replace("p1", "p3")).encode()},
      ["import", "{tmp}/f.csv"], "row 3: a quote (\") opens a cell that never closes"),
-    ("UTF-16 file", {"f.csv": (HEAD + GOOD).encode("utf-16")}, ["import", "{tmp}/f.csv"], "is encoded as UTF-16"),
+    ("UTF-16 file cut inside a character", {"f.csv": (HEAD + GOOD).encode("utf-16")[:-1] + b"\x00\xd8"},
+     ["import", "{tmp}/f.csv"], "reads as UTF-16 text up to row 3"),
     # Read as cp1252 (the fallback), Shift-JIS text was stored garbled without a word.
     ("Shift-JIS file", {"f.csv": (HEAD + GOOD + "p2,2026-03-02,冬の読書チャレンジ,10,1,blog\n").encode("shift_jis")},
      ["import", "{tmp}/f.csv"], "row 3 holds a byte (0x8F) that neither UTF-8 nor Windows-1252 text uses"),
@@ -709,3 +710,23 @@ def test_first_byte_that_is_not_utf8_across_blocks(raw, offset):
         with pytest.raises(UnicodeDecodeError) as info:
             raw.decode("utf-8")
         assert info.value.start == offset
+
+
+@pytest.mark.parametrize("codec, delimiter", [
+    ("utf-16", "\t"),  # a spreadsheet's "Unicode Text" export: UTF-16 little-endian with a mark, tab-separated
+    ("utf-16-be", ","),  # no byte-order mark: told by where the NUL bytes sit
+    ("utf-16-le", ";"),
+    ("utf-32", ","),
+])
+def test_wide_unicode_files_read_like_utf8(tmp_path, codec, delimiter):
+    """UTF-16 and UTF-32 files give the same posts as the same text in UTF-8, accents and emoji included."""
+    from contentlab.ingest import read_history
+
+    text = (HEAD + "p1,2026-03-02,Café déjà vu 🎉,10,1,blog\n").replace(",", delimiter)
+    wide, plain = tmp_path / "wide.csv", tmp_path / "plain.csv"
+    wide.write_bytes(text.encode(codec))
+    plain.write_bytes(text.encode("utf-8"))
+    got, want = read_history(wide, timezone="UTC").posts, read_history(plain, timezone="UTC").posts
+    assert got["headline"].tolist() == ["Café déjà vu 🎉"]
+    assert got.drop(columns=[c for c in got.columns if "source" in c]).equals(
+        want.drop(columns=[c for c in want.columns if "source" in c]))
