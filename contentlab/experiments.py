@@ -326,14 +326,15 @@ def normalise_drafts(
             problems += [f"{here(i, c)}: {reason}" for i, c, reason in control_cells(frame[column], column)]
     headline = frame["headline"].map(clean_headline)
     for i in np.flatnonzero((headline == "").to_numpy()):
-        problems.append(f"{here(i, 'headline')}: is empty after removing markup")
+        problems.append(f"{here(i, 'headline')}: is empty after removing markup; write its headline or leave it out")
 
     for i in np.flatnonzero(headline.str.len().to_numpy() > MAX_DRAFT_CHARS):
-        problems.append(f"{here(i, 'headline')}: longer than {MAX_DRAFT_CHARS} characters")
+        problems.append(f"{here(i, 'headline')}: longer than {MAX_DRAFT_CHARS} characters; shorten it")
     seen: dict[str, int] = {}
     for i, text in enumerate(headline):
         if text and text in seen:
-            problems.append(f"{here(i, 'headline')}: repeats the headline of {here(seen[text], 'headline').split(': ', 1)[-1]}")
+            problems.append(f"{here(i, 'headline')}: repeats the headline of "
+                            f"{here(seen[text], 'headline').split(': ', 1)[-1]}; change one or leave it out")
         seen.setdefault(text, i)
 
     if "arm" in frame.columns and (frame["arm"] != "").any():

@@ -213,11 +213,13 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
     # Compared only where both cells are valid counts, so one bad cell gives one problem.
     if clicks is not None:
         for i in np.flatnonzero((clicks > impressions) & ~invalid["clicks"] & ~bad_impressions):
-            found.append((i, "clicks", f"{clicks[i]} clicks is more than its {impressions[i]} impressions"))
+            found.append((i, "clicks", f"{clicks[i]} clicks is more than its {impressions[i]} impressions; check the "
+                                      "two columns are not swapped"))
     if engagements is not None:
         name = "engagements" if "engagements" in frame.columns else "+".join(parts)
         for i in np.flatnonzero((engagements > impressions) & ~bad_engagements & ~bad_impressions):
-            found.append((i, name, f"{engagements[i]} engagements is more than its {impressions[i]} impressions"))
+            found.append((i, name, f"{engagements[i]} engagements is more than its {impressions[i]} impressions; "
+                                  "check the two columns are not swapped"))
 
     cost = np.full(n, np.nan)
     if "cost" in frame.columns:

@@ -451,7 +451,7 @@ def count_cells(cells: pd.Series, column: str) -> tuple[np.ndarray, np.ndarray, 
     for i in np.flatnonzero(infinite):
         problems.append((i, column, f"'{short(raw.iat[i])}' is infinite; write the real count"))
     for i in np.flatnonzero(negative):
-        problems.append((i, column, f"{short(raw.iat[i])} is negative; counts cannot be below 0"))
+        problems.append((i, column, f"{short(raw.iat[i])} is negative; counts cannot be below 0, so check the value and the column"))
     for i in np.flatnonzero(fractional):
         text = raw.iat[i]
         hint = (f"; if it means {text.replace('.', '')}, write it without the thousands separator"
@@ -756,7 +756,8 @@ def check_results(
     clicks, bad_k, p2 = count_cells(text("clicks"), "clicks")
     found += p1 + p2
     for i in np.flatnonzero((clicks > impressions) & ~bad_n & ~bad_k):
-        found.append((i, "clicks", f"{clicks[i]:,} clicks is more than its {impressions[i]:,} impressions"))
+        found.append((i, "clicks", f"{clicks[i]:,} clicks is more than its {impressions[i]:,} impressions; check the "
+                                      "two columns are not swapped"))
     at = np.full(n, "", dtype=object)
     if "at" in frame.columns:
         parsed = parse_datetimes(text("at"), timezone)

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import re
 from dataclasses import dataclass
-from datetime import date, timedelta
+from datetime import UTC, date, datetime, timedelta
 
 import numpy as np
 
@@ -85,13 +85,26 @@ def why_not_iso(text: str) -> str:
     if m:
         year = int(m.group("year"))
         if not YEAR_MIN <= year <= YEAR_MAX:
-            return f"'{shown}': year {year} is outside the years contentlab works with ({YEAR_MIN} to {YEAR_MAX})"
+            return (f"'{shown}': year {year} is outside the years contentlab works with ({YEAR_MIN} to {YEAR_MAX}); "
+                    "check the year")
         off = m.group("offset")
         if off and len(off) > 3 and int(off[-2:]) >= 60:
             return f"'{shown}': the offset '{off}' has more than 59 minutes"
         return (f"'{shown}' is not an ISO 8601 date or date-time: no such calendar date or clock time; check the day, "
                 "month and hour")
+    epoch = _epoch_hint(text)
+    if epoch:
+        return f"'{shown}' looks like a Unix time (counted from 1970); write it as {epoch} ({EXAMPLES})"
     return f"'{shown}' is not an ISO 8601 date or date-time ({EXAMPLES})"
+
+
+def _epoch_hint(text: str) -> str | None:
+    """The UTC time a 9-10 digit number (or 12-13 digits, in milliseconds) stands for as a Unix time, or None."""
+    if not re.fullmatch(r"\d{9,10}(\d{3})?", text):
+        return None
+    seconds = int(text) / (1000 if len(text) > 10 else 1)
+    when = datetime.fromtimestamp(seconds, tz=UTC)
+    return when.strftime("%Y-%m-%dT%H:%M:%SZ") if YEAR_MIN <= when.year <= YEAR_MAX else None
 
 
 def _norm_offset(off: str) -> str:
@@ -244,7 +257,8 @@ def parse_iso_week(value, where: str = "--week") -> tuple[date, date]:
     year, week = int(m.group(1)), int(m.group(2))
     if not YEAR_MIN <= year <= YEAR_MAX:
         raise ContentlabError(
-            f"{where} {text!r}: year {year} is outside the years contentlab works with ({YEAR_MIN} to {YEAR_MAX})."
+            f"{where} {text!r}: year {year} is outside the years contentlab works with ({YEAR_MIN} to {YEAR_MAX}); "
+            "check the year."
         )
     try:
         monday = date.fromisocalendar(year, week, 1)

@@ -730,3 +730,26 @@ def test_wide_unicode_files_read_like_utf8(tmp_path, codec, delimiter):
     assert got["headline"].tolist() == ["Café déjà vu 🎉"]
     assert got.drop(columns=[c for c in got.columns if "source" in c]).equals(
         want.drop(columns=[c for c in want.columns if "source" in c]))
+
+
+@pytest.mark.parametrize("text, fragment", [
+    # 1763629200 s after 1970-01-01 UTC is 2025-11-20 09:00 UTC (checked with GNU date: date -u -d @1763629200)
+    ("1763629200", "looks like a Unix time (counted from 1970); write it as 2025-11-20T09:00:00Z"),
+    ("1763629200000", "write it as 2025-11-20T09:00:00Z"),
+    ("2999-01-01", "year 2999 is outside the years contentlab works with (1970 to 2200); check the year"),
+    ("123456", "is not an ISO 8601 date or date-time (e.g."),
+])
+def test_a_time_that_is_refused_says_what_to_write(text, fragment):
+    from contentlab.timeparse import why_not_iso
+
+    assert fragment in why_not_iso(text)
+
+
+def test_count_problems_say_what_to_check(tmp_path):
+    from contentlab.ingest import read_history
+
+    path = tmp_path / "f.csv"
+    path.write_text(HEAD + "p1,2026-03-02,Hello,10,50,blog\np2,2026-03-02,Hi,-5,1,blog\n", encoding="utf-8")
+    problems = str(read_history(path, timezone="UTC").problems)
+    assert "50 clicks is more than its 10 impressions; check the two columns are not swapped" in problems
+    assert "-5 is negative; counts cannot be below 0, so check the value and the column" in problems
