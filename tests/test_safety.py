@@ -102,3 +102,22 @@ def test_interrupted_write_leaves_the_earlier_file_whole(tmp_path, monkeypatch, 
     assert sorted(p.name for p in tmp_path.iterdir()) == ["table.csv"]
     write_csv(pd.DataFrame({"a": ["y"]}), target)  # and a whole write replaces it
     assert target.read_bytes() == b"a\r\ny\r\n"
+
+
+@pytest.mark.parametrize("fault", [KeyboardInterrupt, OSError])
+def test_failed_replace_leaves_no_temporary_file(tmp_path, monkeypatch, fault):
+    """The last step can fail too (a stop signal arriving just before it, a disk that refuses the rename):
+    the earlier file stays and the temporary file is removed."""
+    import contentlab.safety as safety
+
+    target = tmp_path / "page.html"
+    target.write_text("earlier", encoding="utf-8")
+
+    def refuse(src, dst):
+        raise fault("stopped at the rename")
+
+    monkeypatch.setattr(safety.os, "replace", refuse)
+    with pytest.raises(fault):
+        safety.write_text(target, "new page")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["page.html"]
+    assert target.read_text(encoding="utf-8") == "earlier"

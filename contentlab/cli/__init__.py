@@ -16,7 +16,9 @@ import argparse
 import errno
 import importlib
 import os
+import signal
 import sys
+import threading
 
 from ..errors import ContentlabError, visible
 
@@ -151,16 +153,18 @@ def main(argv: list[str] | None = None) -> int:
         parser.print_help()
         return 0
     name = " ".join(str(p) for p in (args.command, getattr(args, "action", None)) if p)
+    previous = _stop_on_signals()
     try:
         result = args.handler(args)
     except ContentlabError as exc:
         print(f"contentlab {name}: {visible(str(exc))}", file=sys.stderr)
         return exc.exit_code
-    except KeyboardInterrupt:
-        print("interrupted: work finished before the interruption is kept and nothing more was written; run the "
-              "command again to finish (a file already imported or recorded is recognised, not counted twice)",
-              file=sys.stderr)
-        return 130
+    except KeyboardInterrupt as exc:
+        signum = exc.signum if isinstance(exc, Stopped) else signal.SIGINT
+        print(f"contentlab {name}: {_signal_words(signum)}: work finished before it is kept and nothing more was "
+              "written; run the command again to finish (a file already imported or recorded is recognised, not "
+              "counted twice)", file=sys.stderr)
+        return 128 + signum
     except BrokenPipeError:
         return 0
     except Exception as exc:  # the safety net: one line, never a traceback (unless CONTENTLAB_DEBUG=1)
@@ -169,7 +173,54 @@ def main(argv: list[str] | None = None) -> int:
         message, code = explain_failure(exc, getattr(args, "workspace", None))
         print(f"contentlab {name}: {visible(message)}", file=sys.stderr)
         return code
+    finally:
+        _restore_signals(previous)
     return int(result or 0)
+
+
+class Stopped(KeyboardInterrupt):
+    """A stop signal other than Ctrl-C (SIGTERM from ``kill`` or a service manager, SIGHUP from a closed terminal).
+
+    Raised like Ctrl-C, so it unwinds the same way: the open transaction rolls back, a half-written file is
+    removed (``safety.atomic_path``) and one true line is printed, instead of the process vanishing mid-way.
+    """
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
+STOP_SIGNALS = tuple(getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n))
+
+
+def _raise_stopped(signum, frame):
+    raise Stopped(signum)
+
+
+def _stop_on_signals() -> dict:
+    """Turn SIGTERM and SIGHUP into :class:`Stopped` while a command runs; the handlers it replaced.
+
+    Only from the main thread (Python's rule for signal handlers), and never over a handler someone else set
+    (a test runner, an embedding program).
+    """
+    previous = {}
+    if threading.current_thread() is not threading.main_thread():
+        return previous
+    for signum in STOP_SIGNALS:
+        if signal.getsignal(signum) is signal.SIG_DFL:
+            previous[signum] = signal.signal(signum, _raise_stopped)
+    return previous
+
+
+def _restore_signals(previous: dict) -> None:
+    for signum, handler in previous.items():
+        signal.signal(signum, handler)
+
+
+def _signal_words(signum: int) -> str:
+    if signum == signal.SIGINT:
+        return "interrupted (Ctrl-C)"
+    return f"stopped by {signal.Signals(signum).name}"
 
 
 def explain_failure(exc: Exception, workspace=None) -> tuple[str, int]:
