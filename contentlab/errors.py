@@ -36,3 +36,9 @@ class WorkspaceReadOnly(ContentlabError):
     """A write to a workspace the user may not change."""
 
     http_status = 403
+
+
+class WorkspaceDiskFull(ContentlabError):
+    """A write to a workspace whose disk has no room left: free some space, then try again."""
+
+    http_status = 507  # Insufficient Storage (RFC 4918)

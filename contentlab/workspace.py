@@ -13,6 +13,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import shutil
 import sqlite3
 import sys
 import time
@@ -25,7 +26,7 @@ from typing import Iterable, Iterator
 import numpy as np
 import pandas as pd
 
-from .errors import ContentlabError, WorkspaceBusy, WorkspaceReadOnly
+from .errors import ContentlabError, WorkspaceBusy, WorkspaceDiskFull, WorkspaceReadOnly
 
 DEFAULT_DIR = "contentlab-workspace"
 DB_NAME = "workspace.sqlite"
@@ -138,6 +139,7 @@ class WaitingConnection(sqlite3.Connection):
 
     workspace_path: str = "the workspace"
     read_only: bool = False
+    disk_full: bool = False  # opened for reading only because its disk had no room left
 
     def __enter__(self):
         if not self.in_transaction:
@@ -145,6 +147,8 @@ class WaitingConnection(sqlite3.Connection):
         return super().__enter__()
 
     def begin_immediate(self) -> None:
+        if self.disk_full:
+            raise WorkspaceDiskFull(disk_full_message(self.workspace_path))
         if self.read_only:
             raise WorkspaceReadOnly(read_only_message(self.workspace_path))
         limit = lock_wait_seconds()
@@ -263,24 +267,31 @@ class Workspace:
                 raise ContentlabError(f"cannot create the workspace folder {path} ({exc.strerror}).") from None
             created = True
         read_only = not created and not _writable(path, db)
+        full = False
         try:
             if read_only:
-                # Nobody can write here, so nothing changes under us: open without the WAL's side files.
-                conn = sqlite3.connect(f"{db.resolve().as_uri()}?immutable=1", uri=True, timeout=LOCK_NOTICE_SECONDS,
-                                       factory=WaitingConnection)
-                conn.execute("PRAGMA query_only=ON")
-                _refuse_foreign(conn, path, db)
+                conn = _open_immutable(path, db)
             else:
                 conn = sqlite3.connect(db, timeout=LOCK_NOTICE_SECONDS, factory=WaitingConnection)
-                if not created:
-                    _refuse_foreign(conn, path, db)  # before anything is written to it, the journal mode included
-                conn.execute("PRAGMA journal_mode=WAL")
+                try:
+                    if not created:
+                        _refuse_foreign(conn, path, db)  # before anything is written to it, the journal mode included
+                    conn.execute("PRAGMA journal_mode=WAL")
+                except sqlite3.OperationalError as exc:
+                    # A full disk has no room for the WAL's side files, so even reading fails. With no
+                    # unsaved WAL content the file itself is whole: read it as it is, refuse writes plainly.
+                    if created or _is_corrupt(exc) or not disk_is_full(path) or _pending_wal(db):
+                        raise
+                    conn.close()
+                    conn, read_only, full = _open_immutable(path, db), True, True
                 # In WAL mode NORMAL is still safe from corruption; a power cut can lose
                 # only the last commits, and it makes a large import several times faster.
-                conn.execute("PRAGMA synchronous=NORMAL")
+                if not full:
+                    conn.execute("PRAGMA synchronous=NORMAL")
             conn.execute("PRAGMA foreign_keys=ON")
             conn.workspace_path = str(path)
             conn.read_only = read_only
+            conn.disk_full = full
             ws = cls(path, conn)
             ws.read_only = read_only
             ws.created = created
@@ -548,6 +559,47 @@ def read_only_message(path) -> str:
     return (f"the workspace at {path} is read-only (its folder or database file cannot be written), and this "
             "command needs to write to it; nothing was written. Reading commands still work; to change it, "
             "copy it to a folder you may write to, or ask for write access.")
+
+
+def disk_full_message(path) -> str:
+    """The one message for a write to a workspace whose disk has no room left."""
+    return (f"the disk holding the workspace at {path} is full; nothing was written (reading commands still work). "
+            "Free some space and run the command again.")
+
+
+# Below this much free space a SQLite error on opening or writing is taken for a full disk: the WAL's side
+# files and one transaction's pages need at least this much (common practice: SQLite's default page cache
+# is 2 MiB, a WAL index 32 KiB).
+FULL_DISK_BYTES = 1 << 20
+
+
+def disk_is_full(path) -> bool:
+    """Whether the disk holding ``path`` (or its nearest existing parent) has less than FULL_DISK_BYTES free."""
+    path = Path(path)
+    while not path.exists() and path != path.parent:
+        path = path.parent
+    try:
+        return shutil.disk_usage(path).free < FULL_DISK_BYTES
+    except OSError:
+        return False
+
+
+def _pending_wal(db: Path) -> bool:
+    """Whether the database has a write-ahead log with content not yet copied back (left by a crash)."""
+    wal = db.with_name(db.name + "-wal")
+    try:
+        return wal.stat().st_size > 0
+    except OSError:
+        return False
+
+
+def _open_immutable(path: Path, db: Path) -> sqlite3.Connection:
+    """Nobody can write here, so nothing changes under us: open without the WAL's side files."""
+    conn = sqlite3.connect(f"{db.resolve().as_uri()}?immutable=1", uri=True, timeout=LOCK_NOTICE_SECONDS,
+                           factory=WaitingConnection)
+    conn.execute("PRAGMA query_only=ON")
+    _refuse_foreign(conn, path, db)
+    return conn
 
 
 def not_usable(path: Path, exc: BaseException) -> str:

@@ -232,13 +232,14 @@ def explain_failure(exc: Exception, workspace=None) -> tuple[str, int]:
     """
     import sqlite3
 
-    from ..workspace import not_usable, read_only_message, resolve_dir
+    from ..workspace import disk_is_full, not_usable, read_only_message, resolve_dir
 
     where = resolve_dir(workspace or None)
     text = str(exc)
     if isinstance(exc, sqlite3.OperationalError):
         low = text.lower()
-        if "disk is full" in low:
+        # SQLite says "disk I/O error" when a full disk stops its side files (-wal, -shm) from growing
+        if "disk is full" in low or "disk i/o" in low and disk_is_full(where):
             return (f"the disk holding the workspace at {where} is full; nothing was written (the change was rolled "
                     "back). Free some space and run the command again."), 2
         if "readonly" in low or "read-only" in low:
