@@ -1676,7 +1676,7 @@ def _record_locked(ws, exp, clean, cumulative, source_file, kinds, single) -> Re
         event_ids=tuple(it[0] for it in items) if len(items) <= 20 else (),
         cumulative=cumulative,
         notes=tuple(_record_notes(kinds, skipped, in_input, single)) + _stopped_note(exp, len(items))
-        + _future_note(items, single, where),
+        + _date_notes(items, exp["created_at"], single, where),
     )
 
 
@@ -1685,18 +1685,27 @@ def _record_locked(ws, exp, clean, cumulative, source_file, kinds, single) -> Re
 FUTURE_SLACK_HOURS = 24
 
 
-def _future_note(items: list[tuple], single: bool, where: str) -> tuple[str, ...]:
-    """Recorded results dated after now (beyond the slack) are kept as given, and the summary names them."""
+def _date_notes(items: list[tuple], created_at: str, single: bool, where: str) -> tuple[str, ...]:
+    """Results dated after now, or before the experiment was created (each beyond the slack), are kept as given,
+    and the summary names them: usually a wrong year, time zone, or day and month swapped."""
     if not items:
         return ()
     at = pd.to_datetime(pd.Series([it[2] for it in items]), utc=True, format="ISO8601", errors="coerce")
-    later = (at > pd.Timestamp.now(tz="UTC") + pd.Timedelta(hours=FUTURE_SLACK_HOURS)).to_numpy()
-    if not later.any():
-        return ()
-    shown = "--at" if single else f"{where}{_rows_text([it[5] for it, x in zip(items, later) if x])}, column 'at'"
-    return (f"{shown}: dated after now (latest {at[later].max():%Y-%m-%d %H:%M} UTC). The results are recorded as "
-            "given and count in the weeks they are dated; if that is wrong, check the workspace's time zone and "
-            "whether day and month are swapped in the file.",)
+    slack = pd.Timedelta(hours=FUTURE_SLACK_HOURS)
+    notes = []
+    later = (at > pd.Timestamp.now(tz="UTC") + slack).to_numpy()
+    start = pd.to_datetime(created_at, utc=True, format="ISO8601", errors="coerce")
+    earlier = (at < start - slack).to_numpy() if not pd.isna(start) else np.zeros(len(at), dtype=bool)
+    for mask, what in ((later, f"dated after now (latest {at[later].max():%Y-%m-%d %H:%M} UTC)" if later.any() else ""),
+                       (earlier, f"dated before the experiment was created on {start:%Y-%m-%d %H:%M} UTC (earliest "
+                                 f"{at[earlier].min():%Y-%m-%d %H:%M} UTC)" if earlier.any() else "")):
+        if not mask.any():
+            continue
+        shown = "--at" if single else f"{where}{_rows_text([it[5] for it, x in zip(items, mask) if x])}, column 'at'"
+        notes.append(f"{shown}: {what}. The results are recorded as given and count in the weeks they are dated; "
+                     "if that is wrong, check the year, the workspace's time zone and whether day and month are "
+                     "swapped in the file.")
+    return tuple(notes)
 
 
 def _stopped_note(exp: dict, added: int) -> tuple[str, ...]:

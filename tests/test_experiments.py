@@ -225,6 +225,20 @@ def test_results_dated_after_now_are_kept_and_named(exp, tmp_path):
     assert not any("dated after now" in n for n in past.notes)
 
 
+def test_results_dated_before_the_experiment_are_kept_and_named(exp, tmp_path):
+    # The experiment was created now: results dated years earlier usually carry a wrong year, zone or swapped
+    # day and month. Recorded as given (never dropped, totals include them) and named; a day earlier says nothing.
+    yesterday = (pd.Timestamp.now(tz="UTC") - pd.Timedelta(hours=12)).strftime("%Y-%m-%dT%H:%M")
+    path = tmp_path / "old.csv"
+    path.write_text(f"arm,impressions,clicks,at\nA,100,2,{yesterday}\nB,100,3,2020-01-05T09:00\n", encoding="utf-8")
+    summary = record_results(exp, "laser", read_results(path), source_file=str(path))
+    assert summary.added == 2 and summary.impressions_added == 200
+    before = [n for n in summary.notes if "dated before the experiment was created" in n]
+    assert len(before) == 1 and f"{path}: row 3, column 'at'" in before[0] and "2020-01-05 09:00 UTC" in before[0]
+    single = record_results(exp, "laser", results([("A", 10, 1)], at="2021-06-01T09:00", event_id="z"))
+    assert any(n.startswith("--at: dated before the experiment was created") for n in single.notes)
+
+
 def test_given_event_ids_and_conflicts(exp):
     record_results(exp, "laser", results([("A", 100, 3)], event_id="e1"))
     same = record_results(exp, "laser", results([("A", 100, 3)], event_id="e1"))
