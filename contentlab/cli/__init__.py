@@ -156,6 +156,7 @@ def main(argv: list[str] | None = None) -> int:
     previous = _stop_on_signals()
     try:
         result = args.handler(args)
+        _running.clear()  # finished: a stop signal from here on comes too late to stop anything
     except ContentlabError as exc:
         print(f"contentlab {name}: {visible(str(exc))}", file=sys.stderr)
         return exc.exit_code
@@ -193,8 +194,12 @@ class Stopped(KeyboardInterrupt):
 STOP_SIGNALS = tuple(getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n))
 
 
+_running: set[int] = set()  # holds 1 while a command runs under the handlers below
+
+
 def _raise_stopped(signum, frame):
-    raise Stopped(signum)
+    if _running:
+        raise Stopped(signum)
 
 
 def _stop_on_signals() -> dict:
@@ -209,10 +214,12 @@ def _stop_on_signals() -> dict:
     for signum in STOP_SIGNALS:
         if signal.getsignal(signum) is signal.SIG_DFL:
             previous[signum] = signal.signal(signum, _raise_stopped)
+    _running.add(1)
     return previous
 
 
 def _restore_signals(previous: dict) -> None:
+    _running.clear()
     for signum, handler in previous.items():
         signal.signal(signum, handler)
 
