@@ -31,6 +31,17 @@ def learned_demo_workspace(path: Path, bootstrap: int) -> Path:
     return path
 
 
+def laser_test_workspace(path: Path) -> Path:
+    """A learned demo workspace (no bootstrap) with one flat-prior experiment, 'laser', and no results yet."""
+    from contentlab.cli import main
+
+    learned_demo_workspace(path, bootstrap=0)
+    assert main(["experiment", "new", "laser", "Inside the makerspace laser cutter",
+                 "5 things to know about the makerspace laser cutter", "--channel", "newsletter", "--flat-prior",
+                 "--seed", "3", "--workspace", str(path)]) == 0
+    return path
+
+
 GOOD_ROWS = [
     # post_id, published_at, headline, impressions, clicks, channel
     ("p1", "2026-03-02T09:15:00+00:00", "Seven ways to use the library", "1000", "25", "blog"),

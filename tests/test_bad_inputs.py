@@ -18,7 +18,7 @@ import pytest
 
 from contentlab.cli import main
 
-from conftest import CORPUS, learned_demo_workspace, workspace_digest
+from conftest import CORPUS, laser_test_workspace, workspace_digest
 
 HEAD = "post_id,published_at,headline,impressions,clicks,channel\n"
 GOOD = "p1,2026-03-02T09:15:00+00:00,Seven ways to use the library,1000,25,blog\n"
@@ -28,10 +28,7 @@ GOOD = "p1,2026-03-02T09:15:00+00:00,Seven ways to use the library,1000,25,blog\
 def base(tmp_path_factory) -> Path:
     """The demo corpus imported and learned (no bootstrap), with one experiment that has one result."""
     path = tmp_path_factory.mktemp("bad-inputs") / "ws"
-    learned_demo_workspace(path, bootstrap=0)
-    assert main(["experiment", "new", "laser", "Inside the makerspace laser cutter",
-                 "5 things to know about the makerspace laser cutter", "--channel", "newsletter", "--flat-prior",
-                 "--seed", "3", "--workspace", str(path)]) == 0
+    laser_test_workspace(path)
     assert main(["record", "laser", "--arm", "A", "--impressions", "300", "--clicks", "5", "--event-id", "b1",
                  "--workspace", str(path)]) == 0
     return path

@@ -17,7 +17,7 @@ import pytest
 import contentlab.workspace as workspace
 from contentlab.cli import explain_failure, main
 
-from conftest import learned_demo_workspace, workspace_digest
+from conftest import laser_test_workspace, workspace_digest
 
 
 class FullDiskConnection(workspace.WaitingConnection):
@@ -30,10 +30,7 @@ class FullDiskConnection(workspace.WaitingConnection):
 @pytest.fixture(scope="module")
 def base(tmp_path_factory) -> Path:
     path = tmp_path_factory.mktemp("full-disk") / "ws"
-    learned_demo_workspace(path, bootstrap=0)
-    assert main(["experiment", "new", "laser", "Inside the makerspace laser cutter",
-                 "5 things to know about the makerspace laser cutter", "--channel", "newsletter", "--flat-prior",
-                 "--seed", "3", "--workspace", str(path)]) == 0
+    laser_test_workspace(path)
     return path
 
 

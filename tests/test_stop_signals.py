@@ -17,7 +17,7 @@ import pytest
 
 from contentlab.cli import main
 
-from conftest import learned_demo_workspace, workspace_digest
+from conftest import laser_test_workspace, workspace_digest
 
 pytestmark = pytest.mark.skipif(
     not hasattr(signal, "SIGTERM") or signal.getsignal(signal.SIGTERM) is not signal.SIG_DFL,
@@ -28,10 +28,7 @@ pytestmark = pytest.mark.skipif(
 @pytest.fixture(scope="module")
 def base(tmp_path_factory) -> Path:
     path = tmp_path_factory.mktemp("stop-signals") / "ws"
-    learned_demo_workspace(path, bootstrap=0)
-    assert main(["experiment", "new", "laser", "Inside the makerspace laser cutter",
-                 "5 things to know about the makerspace laser cutter", "--channel", "newsletter", "--flat-prior",
-                 "--seed", "3", "--workspace", str(path)]) == 0
+    laser_test_workspace(path)
     return path
 
 
