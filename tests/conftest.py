@@ -42,6 +42,28 @@ def laser_test_workspace(path: Path) -> Path:
     return path
 
 
+def copy_workspace(base: Path, tmp_path: Path) -> Path:
+    """A fresh copy of a module's prepared workspace, so each test may change or break its own."""
+    import shutil
+
+    target = tmp_path / "ws"
+    shutil.copytree(base, target)
+    return target
+
+
+def run_cli(capsys, argv: list[str]) -> tuple[int, str, str]:
+    """Exit code, stdout and stderr of one command, as the shell would see them."""
+    from contentlab.cli import main
+
+    capsys.readouterr()
+    try:
+        code = main(argv)
+    except SystemExit as exc:  # a mistyped option: argparse exits (code 2) before the command runs
+        code = exc.code
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
 GOOD_ROWS = [
     # post_id, published_at, headline, impressions, clicks, channel
     ("p1", "2026-03-02T09:15:00+00:00", "Seven ways to use the library", "1000", "25", "blog"),

@@ -9,7 +9,6 @@ locked by another writer) follow the table, with the fault simulated.
 
 from __future__ import annotations
 
-import shutil
 import sqlite3
 import threading
 from pathlib import Path
@@ -18,7 +17,7 @@ import pytest
 
 from contentlab.cli import main
 
-from conftest import CORPUS, laser_test_workspace, workspace_digest
+from conftest import CORPUS, copy_workspace, laser_test_workspace, run_cli as run, workspace_digest
 
 HEAD = "post_id,published_at,headline,impressions,clicks,channel\n"
 GOOD = "p1,2026-03-02T09:15:00+00:00,Seven ways to use the library,1000,25,blog\n"
@@ -36,19 +35,7 @@ def base(tmp_path_factory) -> Path:
 
 @pytest.fixture
 def ws(base, tmp_path) -> Path:
-    target = tmp_path / "ws"
-    shutil.copytree(base, target)
-    return target
-
-
-def run(capsys, argv: list[str]) -> tuple[int, str, str]:
-    capsys.readouterr()
-    try:
-        code = main(argv)
-    except SystemExit as exc:  # a mistyped option: argparse exits (code 2) before the command runs
-        code = exc.code
-    out, err = capsys.readouterr()
-    return code, out, err
+    return copy_workspace(base, tmp_path)
 
 
 # A gzip header followed by a compressed block of an invalid type (zlib: "invalid block type").

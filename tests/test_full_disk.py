@@ -8,16 +8,15 @@ as full (a real full disk, a small tmpfs, behaves the same: /work/scratch/faults
 
 from __future__ import annotations
 
-import shutil
 import sqlite3
 from pathlib import Path
 
 import pytest
 
 import contentlab.workspace as workspace
-from contentlab.cli import explain_failure, main
+from contentlab.cli import explain_failure
 
-from conftest import laser_test_workspace, workspace_digest
+from conftest import copy_workspace, laser_test_workspace, run_cli as run, workspace_digest
 
 
 class FullDiskConnection(workspace.WaitingConnection):
@@ -36,18 +35,10 @@ def base(tmp_path_factory) -> Path:
 
 @pytest.fixture
 def full(base, tmp_path, monkeypatch) -> Path:
-    target = tmp_path / "ws"
-    shutil.copytree(base, target)
+    target = copy_workspace(base, tmp_path)
     monkeypatch.setattr(workspace, "WaitingConnection", FullDiskConnection)
     monkeypatch.setattr(workspace, "disk_is_full", lambda path: True)
     return target
-
-
-def run(capsys, argv):
-    capsys.readouterr()
-    code = main(argv)
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 @pytest.mark.parametrize("argv", [

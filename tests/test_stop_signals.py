@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import importlib
 import os
-import shutil
 import signal
 from pathlib import Path
 
@@ -17,7 +16,7 @@ import pytest
 
 from contentlab.cli import main
 
-from conftest import laser_test_workspace, workspace_digest
+from conftest import copy_workspace, laser_test_workspace, run_cli as run, workspace_digest
 
 pytestmark = pytest.mark.skipif(
     not hasattr(signal, "SIGTERM") or signal.getsignal(signal.SIGTERM) is not signal.SIG_DFL,
@@ -34,16 +33,7 @@ def base(tmp_path_factory) -> Path:
 
 @pytest.fixture
 def ws(base, tmp_path) -> Path:
-    target = tmp_path / "ws"
-    shutil.copytree(base, target)
-    return target
-
-
-def run(capsys, argv):
-    capsys.readouterr()
-    code = main(argv)
-    out, err = capsys.readouterr()
-    return code, out, err
+    return copy_workspace(base, tmp_path)
 
 
 def send_after(monkeypatch, target: str, signum: int) -> None:
