@@ -1543,11 +1543,14 @@ def record_results(
 
     * a given ``event_id`` already stored with the same values is skipped, and
       with other values refused;
-    * rows of a file (a frame from :func:`read_results`, or ``source_file``
-      given) without one are identified by a digest of the file's whole
-      content plus the row, never by the file's name: the identical file again
-      changes nothing, a new batch saved under the same name is recorded in full;
-    * other rows with ``at`` are identified by arm, time and figures;
+    * rows with ``at`` are identified by arm, time and figures (in a file, the
+      k-th identical row by its k as well);
+    * other rows of a file (a frame from :func:`read_results`, or
+      ``source_file`` given) by the file's checked rows and the row's place
+      (:func:`_file_row_ids`), never by its name or bytes: the same file again,
+      even re-saved, changes nothing, the same sheet with rows added below
+      records only the new rows, and a new batch saved under the same name is
+      recorded in full;
     * a row with neither ``event_id``, ``at`` nor a file cannot be told from a
       repeat: it is always recorded, and the summary says so.
 
@@ -1566,7 +1569,7 @@ def record_results(
         by_option = source_file is None and len(frame) == 1 and "digest" not in frame.attrs
     clean = check_results(frame, exp["arms"]["arm"].tolist(), ws.timezone, source=source_file,
                           options=by_option, experiment=name)
-    kinds = _event_ids(clean, frame, cumulative, source_file)
+    kinds, repeats = _event_ids(clean, frame, cumulative, source_file)
     conn = ws.conn
     if conn.in_transaction:
         conn.commit()
@@ -1575,7 +1578,7 @@ def record_results(
     # locked part is plain Python on lists: it runs once per call, in series.
     conn.begin_immediate()
     try:
-        summary = _record_locked(ws, exp, clean, cumulative, source_file, kinds, by_option)
+        summary = _record_locked(ws, exp, clean, cumulative, source_file, kinds, repeats, by_option)
         conn.commit()
     except BaseException:
         conn.rollback()
@@ -1583,11 +1586,12 @@ def record_results(
     return summary
 
 
-def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool, source_file: str | None) -> list[str]:
-    """Fill ``clean['event_id']`` and ``clean['at']``; return how each id was made: given, file, values or new."""
+def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool,
+               source_file: str | None) -> tuple[list[str], _FileRepeats]:
+    """Fill ``clean['event_id']`` and ``clean['at']``; return how each id was made (given, file, values or new)
+    and, for a file, how its rows are told from repeats."""
     now = _now_precise()
     given_at = clean["at"].to_numpy(dtype=object) != ""
-    clean["at"] = np.where(given_at, clean["at"].to_numpy(dtype=object), now)
     ids = clean["event_id"].to_numpy(dtype=object).copy()
     kinds = ["given" if e != "" else "" for e in ids]
     digest = frame.attrs.get("digest")
@@ -1597,15 +1601,27 @@ def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool, sourc
         digest = _digest(json.dumps([cols] + frame[cols].astype(str).values.tolist()))
     kind = "total" if cumulative else "increment"
     rows = clean["row"].tolist()
+    repeats = _FileRepeats()
+    if digest is not None:  # before missing times become now: the rows as the file gives them
+        repeats = _file_row_ids(clean, (ids == "") & ~given_at, kind)
+    clean["at"] = np.where(given_at, clean["at"].to_numpy(dtype=object), now)
+    occurrences: dict[str, int] = {}
     for i in np.flatnonzero(ids == ""):
-        if digest is not None:
-            ids[i], kinds[i] = "c-" + _digest(f"{digest}\x1e{int(rows[i])}"), "file"
-        elif given_at[i]:
-            ids[i], kinds[i] = "v-" + _digest(
+        if given_at[i]:
+            # Identified by arm, time and figures, from a file or not: a file saved again in another order or
+            # form, or holding results recorded before, counts each once. The k-th identical row of one input
+            # is the k-th such result, so identical rows of one file all count.
+            values = "v-" + _digest(
                 f"{clean['arm'].iat[i]}\x1e{clean['at'].iat[i]}\x1e{clean['impressions'].iat[i]}"
-                f"\x1e{clean['clicks'].iat[i]}\x1e{kind}"), "values"
+                f"\x1e{clean['clicks'].iat[i]}\x1e{kind}")
+            k = occurrences[values] = occurrences.get(values, -1) + 1
+            ids[i], kinds[i] = (values if k == 0 or digest is None else "v-" + _digest(f"{values}\x1e{k}")), "values"
+        elif digest is not None:
+            ids[i], kinds[i] = repeats.ids[i], "file"
         else:
             ids[i], kinds[i] = "u-" + _digest(f"{now}\x1e{i}\x1e{secrets.token_hex(8)}"), "new"
+        if digest is not None:  # recorded before ids came from rows: by the file's bytes and its row
+            repeats.aliases[int(i)] = ["c-" + _digest(f"{digest}\x1e{int(rows[i])}")]
     clean["event_id"] = ids
     # The same id twice in one input: fine when identical, an error otherwise.
     values = list(zip(clean["arm"], clean["impressions"], clean["clicks"]))
@@ -1619,10 +1635,54 @@ def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool, sourc
                             f"row {int(rows[j])} with different values")
     if problems:
         raise ContentlabError(_problem_line(problems, "nothing was recorded"))
-    return kinds
+    return kinds, repeats
 
 
-def _record_locked(ws, exp, clean, cumulative, source_file, kinds, single) -> RecordSummary:
+@dataclass
+class _FileRepeats:
+    """How the rows of a results file are told from repeats: ids by content, other ids they may be stored under,
+    and the marks that say "an earlier file ended here" (see :func:`_file_row_ids`)."""
+
+    ids: dict[int, str] = field(default_factory=dict)
+    aliases: dict[int, list[str]] = field(default_factory=dict)
+    ends: list[tuple[int, str]] = field(default_factory=list)  # (row index, the mark of a file of rows 0..index)
+
+
+# An earlier file found at the start of a longer one counts as the same rows saved again only when it had at
+# least this many rows: one matching first row is too often a new batch with the same figures (our choice).
+MIN_REPEATED_ROWS = 2
+
+
+def _file_row_ids(clean: pd.DataFrame, free: np.ndarray, kind: str) -> _FileRepeats:
+    """Ids for a results file's rows with neither event id nor time (``free``), from its rows, not its bytes or name.
+
+    A spreadsheet that re-saves a file changes its bytes (quotes, line ends,
+    number format) but not its rows, so each such row's id is a digest of all
+    the file's checked rows (arm, figures, time, event id) and its place. The
+    last one carries instead the mark of the whole file; a later file whose
+    first rows hold an earlier file's rows exactly (the same sheet with new
+    rows added below) has that mark at the earlier file's last row, so those
+    rows are known as recorded and only the rows below them are new.
+    """
+    out = _FileRepeats()
+    free = np.flatnonzero(free)
+    if free.size == 0:
+        return out
+    rolling = hashlib.blake2b(digest_size=10)
+    prefix = []
+    for arm, n, k, at, event in zip(clean["arm"], clean["impressions"], clean["clicks"], clean["at"],
+                                    clean["event_id"]):
+        rolling.update(f"{arm}\x1f{int(n)}\x1f{int(k)}\x1f{at}\x1f{event}\x1f{kind}\x1e".encode())
+        prefix.append(rolling.copy().hexdigest())
+    whole = prefix[-1]
+    for i in free:
+        out.ids[int(i)] = "f-" + _digest(f"{whole}\x1e{int(i)}")
+    out.ids[int(free[-1])] = "e-" + whole
+    out.ends = [(i, "e-" + d) for i, d in enumerate(prefix) if i + 1 >= MIN_REPEATED_ROWS or i + 1 == len(prefix)]
+    return out
+
+
+def _record_locked(ws, exp, clean, cumulative, source_file, kinds, repeats, single) -> RecordSummary:
     conn = ws.conn
     name = exp["name"]
     ids = clean["event_id"].tolist()
@@ -1635,12 +1695,21 @@ def _record_locked(ws, exp, clean, cumulative, source_file, kinds, single) -> Re
     for i, e in enumerate(ids):
         first.setdefault(e, i)
     order = list(first.values())  # identical repeats within the input were checked; keep the first
-    stored = _stored_events(conn, name, list(first))
+    others = [a for alts in repeats.aliases.values() for a in alts] + [mark for _, mark in repeats.ends]
+    stored = _stored_events(conn, name, list(first) + others)
+    # The longest start of this file that an earlier file's rows fill exactly (the sheet saved again, rows added).
+    repeated_upto = max((i for i, mark in repeats.ends if mark in stored), default=-1)
     where = f"{source_file}: " if source_file else ""
     fresh, conflicts = [], []
     skipped: dict[str, list[int]] = {}
     for i in order:
         old = stored.get(ids[i])
+        if old is None and kinds[i] == "file" and i <= repeated_upto:
+            skipped.setdefault("resaved", []).append(rows[i])
+            continue
+        if old is None and any(a in stored for a in repeats.aliases.get(i, ())):
+            skipped.setdefault("file", []).append(rows[i])  # the identical file, recorded before ids came from rows
+            continue
         if old is None:
             fresh.append(i)
         elif not cumulative and old != (arms[i], ns[i], ks[i]):
@@ -1742,7 +1811,9 @@ def _record_notes(kinds: list[str], skipped: dict[str, list[int]], in_input: lis
         return notes
     reasons = {
         "given": "their event_id is already recorded with the same values",
-        "file": "an identical file (same content, whatever its name) was already recorded",
+        "file": "a file with the same rows (whatever its name or format) was already recorded",
+        "resaved": "they are the rows of a results file already recorded, in the same order (the same sheet saved "
+                   "again with rows added below); only the rows after them are new",
         "values": "a result with the same arm, at and figures is already recorded",
     }
     for kind, rows in skipped.items():
@@ -1751,9 +1822,10 @@ def _record_notes(kinds: list[str], skipped: dict[str, list[int]], in_input: lis
         notes.append(f"Skipped {_rows_text(in_input)}: the same event_id with the same values appears earlier in the input.")
     n_file = sum(k == "file" for k in kinds)
     if n_file:
-        notes.append(f"{n_file} row(s) had no event_id: each is identified by this file's whole content and its row, "
-                     "so recording the identical file again changes nothing, and a new batch is recorded in full "
-                     "even under the same file name.")
+        notes.append(f"{n_file} row(s) had no event_id: each is identified by the rows of this file and its place "
+                     "in them (never the file's name or bytes), so recording the same file again, even re-saved by a "
+                     "spreadsheet or with new rows added below, counts each result once, and a new batch is recorded "
+                     "in full even under the same file name.")
     n_new = sum(k == "new" for k in kinds)
     if n_new:
         notes.append(f"{n_new} row(s) had neither event_id nor at: they were recorded as new, and recording them "

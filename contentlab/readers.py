@@ -691,8 +691,9 @@ def read_results(path: str | Path) -> pd.DataFrame:
     """A results CSV as text cells: ``arm, impressions, clicks``; optional ``at``, ``event_id``.
 
     Adds ``row`` (each result's line); ``attrs['digest']`` identifies the
-    whole content, so that replaying the identical file is recognised and a new
-    batch saved under the same name is not.
+    whole content: it marks the rows as a file's (record identifies them by
+    the file's rows, see ``experiments._file_row_ids``) and still matches rows
+    recorded before that rule.
     """
     frame = _canonical_columns(read_cells(path, "results file"), path, RESULT_COLUMNS, {})
     missing = [c for c in ("arm", "impressions", "clicks") if c not in frame.columns]
