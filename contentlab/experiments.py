@@ -858,8 +858,9 @@ def replay_learned(
     return {key: v / equal if equal > 0 else np.full(repeats, np.nan) for key, v in out.items()}
 
 
-def _model_inputs(ws: Workspace, arms: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame, int, list[str]] | None:
-    """The latest clicks model's predictions for the drafts and its out-of-fold predictions on history."""
+def _model_inputs(ws: Workspace, arms: pd.DataFrame) -> tuple[np.ndarray, pd.DataFrame, int, list[str], list[str]] | None:
+    """The latest clicks model's predictions for the drafts, its out-of-fold predictions on history, its id, notes,
+    and the arms whose drafts are unlike the posts it learned from."""
     row = ws.latest_model_row("clicks")
     if row is None:
         return None
@@ -883,13 +884,14 @@ def _model_inputs(ws: Workspace, arms: pd.DataFrame) -> tuple[np.ndarray, pd.Dat
     notes = []
     if row[3] != ws.fingerprint("clicks"):
         notes.append("The model was learned before the latest changes to the history; run contentlab learn to refresh it.")
+    far = []
     if "far_from_history" in pred.columns and bool(np.any(pred["far_from_history"])):
         far = [a for a, f in zip(arms["arm"], pred["far_from_history"]) if f]
         notes.append(
             f"{_list(far)} {'is' if len(far) == 1 else 'are'} unlike the posts the model learned from; "
             "its prediction is a rough guess."
         )
-    return rates, _oof_history(model, ws), int(row[0]), notes
+    return rates, _oof_history(model, ws), int(row[0]), notes, far
 
 
 def _oof_history(model, ws: Workspace) -> pd.DataFrame:
@@ -980,6 +982,7 @@ def create_experiment(
         )
     notes: list[str] = []
     predicted = None
+    inputs = None
     if flat_prior:
         prior = PriorChoice(0.0, "flat", "--flat-prior: every arm starts at the flat Beta(1, 1) prior")
     elif prior_means is not None:
@@ -1005,7 +1008,7 @@ def create_experiment(
                 f"prior; {_no_tests_words(ws)}",
             )
         else:
-            predicted, history, model_id, model_notes = inputs
+            predicted, history, model_id, model_notes, _far = inputs
             notes += model_notes
             predicted = np.clip(predicted, 1e-6, 1 - 1e-6)
             if prior_strength is None:
@@ -1036,6 +1039,8 @@ def create_experiment(
         "prob_threshold": PROB_THRESHOLD,
         "prior": prior.to_dict(),
         "first_cap": first_split_cap(len(arms)),
+        # The model's validation on past tests does not reach drafts unlike them: the first split's cap holds.
+        "far_arms": [] if inputs is None or predicted is None else list(inputs[4]),
         "budget": None if budget is None else int(budget),
         "ends_at": end,
         "allocation": ALLOCATION if prior.learned is not None else None,
@@ -1453,10 +1458,16 @@ def _split_words(bandit: ThompsonBandit, settings: Mapping, plan: Mapping | None
         else:
             lift = " unless the prior, validated on your past tests, gives it a higher probability of being best" \
                 if bandit.cap_lift else ""
+            far = settings.get("far_arms") or []
+            held = ""
+            if far and bandit.prior_offsets is not None:
+                held = (f" The cap holds even where the model's gaps would give a draft more: {_list(far)} "
+                        f"{'is' if len(far) == 1 else 'are'} unlike the posts the model learned from, beyond what "
+                        "its check on your past tests covers.")
             out.append(
                 "No results yet: each draft's share is its probability of being best under the prior alone (plain "
                 f"Thompson sampling, not sharpened), and no draft gets more than {cap:.0%} of the first impressions "
-                f"(twice an equal share, at most 60%){lift}, so every draft keeps learning."
+                f"(twice an equal share, at most 60%){lift}, so every draft keeps learning.{held}"
             )
         if lookahead:
             learned = (settings.get("prior") or {}).get("learned") or {}
@@ -2205,7 +2216,8 @@ def _bandit(ws: Workspace, exp: dict, *, policy: str | None = None, discount: fl
         "n_draws": DEFAULT_N_DRAWS,
         "random_state": int(settings.get("seed", 0)),
         "first_cap": settings.get("first_cap"),
-        "cap_lift": (settings.get("prior") or {}).get("source") in ("model", "past tests + model"),
+        "cap_lift": (settings.get("prior") or {}).get("source") in ("model", "past tests + model")
+        and not settings.get("far_arms"),
         "budget": settings.get("budget"),
     }
     if settings.get("ends_at"):

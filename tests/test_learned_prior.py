@@ -361,3 +361,38 @@ def test_a_settled_split_is_named_in_status_and_the_report(learned_ws, tmp_path)
     # Before results, nothing has settled.
     create_experiment(learned_ws, "fresh", DRAFTS, seed=3)
     assert experiment_status(learned_ws, "fresh").settled_on is None
+
+
+@pytest.fixture(scope="module")
+def demo_learned(tmp_path_factory):
+    """The demo corpus learned (its 101 past tests keep the model's gaps: the replay check passes there)."""
+    from conftest import learned_demo_workspace
+
+    return learned_demo_workspace(tmp_path_factory.mktemp("demo-learned") / "ws", bootstrap=0)
+
+
+def test_first_split_cap_holds_for_drafts_unlike_the_history_and_lifts_for_drafts_like_it(demo_learned, capsys):
+    """Issue 12, item 3: the model's gaps may lift the first split's cap only where its check on past tests
+    reaches; drafts the model calls unlike its history keep the cap (and headlines given after an option
+    count, as a user types them)."""
+    from contentlab.cli import main
+
+    cap = first_split_cap(3)
+    runs = {
+        "unlike": ["Winter reads for cold evenings", "7 cosy books for the long nights", "Why our librarians love winter"],
+        "like": ["Updates on the summer reading challenge from Quayside", "Inside exam-season opening hours and we love it",
+                 "A visiting author: 4 dates for your diary starting next month"],
+    }
+    shares = {}
+    for name, drafts in runs.items():
+        assert main(["experiment", "new", name, "--channel", "newsletter", "--seed", "1", "--workspace",
+                     str(demo_learned), *drafts]) == 0
+        with Workspace.open(demo_learned, create=False) as w:
+            alloc = next_allocation(w, name, 2000)
+        assert len(alloc.arms) == 3 and alloc.arms["impressions"].sum() == 2000
+        shares[name] = (alloc.arms["share"].max(), " ".join(alloc.why))
+    capsys.readouterr()
+    top, why = shares["unlike"]
+    assert top <= cap + 1e-9 and "The cap holds even where the model's gaps would give a draft more" in why
+    top, why = shares["like"]
+    assert top > cap and "unless the prior, validated on your past tests" in why and "The cap holds" not in why

@@ -140,10 +140,25 @@ def _tolerant_output() -> None:
                 pass
 
 
+def _parse(parser: argparse.ArgumentParser, argv: list[str] | None) -> argparse.Namespace:
+    """Parse the command line; headlines given after an option (``score --channel blog "A" "B"``) still count.
+
+    argparse fills a many-valued positional at its first place, so words after
+    an option would be refused as unknown; commands that take headlines add
+    them in the order given. Anything else unknown is refused as before.
+    """
+    args, extra = parser.parse_known_args(argv)
+    if extra and isinstance(getattr(args, "headlines", None), list) and not any(e.startswith("-") for e in extra):
+        args.headlines += extra
+    elif extra:
+        parser.error(f"unrecognized arguments: {' '.join(extra)}")
+    return args
+
+
 def main(argv: list[str] | None = None) -> int:
     _tolerant_output()
     parser = build_parser()
-    args = parser.parse_args(argv)
+    args = _parse(parser, argv)
     if args.version:
         from importlib.metadata import version
 
