@@ -1594,7 +1594,7 @@ def record_results(
     except BaseException:
         conn.rollback()
         raise
-    return summary
+    return dataclasses.replace(summary, notes=summary.notes + clean.attrs.get("time_notes", ()))  # clock changes
 
 
 def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool,

@@ -22,6 +22,7 @@ class ImportSummary:
     rejected_file: str | None = None
     repeated: int = 0  # rows identical to an earlier row of the same file (same post_id and values)
     unused: tuple[str, ...] = ()  # columns of the file that contentlab does not read
+    notes: tuple[str, ...] = ()  # local times at a clock change: how they were read (shown below the line)
 
     def line(self) -> str:
         text = (
@@ -101,7 +102,7 @@ def import_history(
     repeated = history.rows_read - len(history.posts) - len(history.rejected)
     return ImportSummary(
         str(path), history.rows_read, added, updated, unchanged, len(history.rejected), out_file, repeated,
-        tuple(history.ignored_columns),
+        tuple(history.ignored_columns), tuple(history.notes),
     )
 
 

@@ -8,7 +8,7 @@ the caller decides whether to write anything.
 from __future__ import annotations
 
 import tomllib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -17,7 +17,7 @@ import pandas as pd
 from .errors import ContentlabError
 from .features import clean_headline
 from .readers import (MAX_HEADLINE_CHARS, MAX_ID_CHARS, MAX_NAME_CHARS, control_cells, count_cells, file_bytes,
-                      header_row, known_names, long_cells, may_hold_controls, read_cells, unused_columns)
+                      header_row, known_names, long_cells, may_hold_controls, read_cells, rows_text, unused_columns)
 from .readers import read_bytes, sniff_delimiter  # noqa: F401  (their home is readers; kept importable here)
 from .readers import short as _short
 from .timeparse import parse_datetimes
@@ -67,6 +67,7 @@ class History:
     problems: list[Problem]
     rows_read: int
     ignored_columns: list[str]
+    notes: list[str] = field(default_factory=list)  # how local times at a clock change were read
 
 
 # ------------------------------------------------------------------ reading
@@ -292,6 +293,8 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
     for i, _, _ in found:
         bad_rows[i] = True
     good = clean.loc[~bad_rows].drop_duplicates("post_id", keep="first")
+    notes = times.clock_notes(lambda positions: f"{file}: {rows_text(rows[positions])}, column 'published_at'",
+                              among=clean.index.isin(good.index))  # the rows stored
     rejected = frame.loc[bad_rows].copy()
     rejected.insert(0, "row", rows[bad_rows], allow_duplicates=True)
     reasons: dict[int, list[str]] = {}
@@ -304,6 +307,7 @@ def read_history(path: Path | str, mapping_path: Path | str | None = None, timez
         problems=problems,
         rows_read=n,
         ignored_columns=ignored,
+        notes=notes,
     )
 
 

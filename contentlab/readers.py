@@ -40,7 +40,7 @@ import numpy as np
 import pandas as pd
 
 from .errors import CONTROL_CHARS, ContentlabError
-from .timeparse import parse_datetime, parse_datetimes
+from .timeparse import parse_datetimes
 
 MAX_ID_CHARS = 200
 MAX_NAME_CHARS = 100
@@ -81,6 +81,14 @@ def short(text: str, limit: int = 40) -> str:
 
 
 # ------------------------------------------------------------------ bytes and structure
+
+def rows_text(rows: Sequence[int], limit: int = 8) -> str:
+    """``row 5`` or ``rows 5, 9, 12 and 3 more``: file lines named in a message."""
+    rows = [int(r) for r in rows]
+    shown = ", ".join(str(r) for r in rows[:limit])
+    more = f" and {len(rows) - limit} more" if len(rows) > limit else ""
+    return ("row " if len(rows) == 1 else "rows ") + shown + more
+
 
 def file_bytes(path: Path, instead_of_a_folder: str) -> bytes:
     """A file's bytes, or one clear line for every input file the tool reads: missing, a folder, unreadable."""
@@ -584,11 +592,16 @@ def read_drafts(path: str | Path) -> pd.DataFrame:
 
 
 def _draft_where(frame: pd.DataFrame, source: str | None, i: int, column: str) -> str:
-    if source and "row" in frame.columns:
-        return f"{source}: row {int(frame['row'].iat[i])}, column '{column}'"
+    return _drafts_where(frame, source, [i], column)
+
+
+def _drafts_where(frame: pd.DataFrame, source: str | None, positions: Sequence[int], column: str) -> str:
+    """Where drafts are: ``drafts.csv: rows 3, 5, column 'publish_at'``, or ``drafts 1, 3, publish_at`` without a file."""
     if source:
-        return f"{source}: row {i + 2}, column '{column}'"
-    return f"draft {i + 1}, {column}"
+        rows = [int(frame["row"].iat[i]) for i in positions] if "row" in frame.columns else [i + 2 for i in positions]
+        return f"{source}: {rows_text(rows)}, column '{column}'"
+    numbers = rows_text([i + 1 for i in positions]).replace("row", "draft", 1)
+    return f"{numbers}, {column}"
 
 
 def prepare_drafts(
@@ -603,11 +616,12 @@ def prepare_drafts(
     """Check drafts and add ``local_hour``, ``local_weekday`` and ``local_date`` from their publish time.
 
     The publish time is ``publish_at`` (or ``published_at``, ``at``, ``time``),
-    else ``at``; it is read by :func:`contentlab.timeparse.parse_datetime` in
+    else ``at``; it is read by :func:`contentlab.timeparse.parse_datetimes` in
     ``timezone``. ``channel`` fills drafts that name none. Raises
     :class:`ContentlabError` naming the row and column for an empty or
     over-long headline, a time that is not ISO 8601, an over-long channel, or a
-    channel not in ``known_channels`` (when given). Input columns are kept.
+    channel not in ``known_channels`` (when given). Input columns are kept;
+    ``attrs['time_notes']`` says how local times at a clock change were read.
     """
     if not isinstance(frame, pd.DataFrame):
         raise ContentlabError("drafts must be a DataFrame with a 'headline' column, or a list of headlines")
@@ -655,30 +669,68 @@ def prepare_drafts(
                     f"{_draft_where(out, source, i, 'channel')}: '{short(c)}' is not a channel in your history; "
                     f"use one of: {', '.join(sorted(known))}"
                 )
-    column = next((c for c in PUBLISH_ALIASES if c in out), None)
-    own = out[column].tolist() if column else [None] * len(out)
-    if at is not None:
-        parse_datetime(at, timezone, "--at")  # a bad --at is refused even when every draft has its own time
-    hours = np.full(len(out), np.nan)
-    weekdays = np.full(len(out), np.nan)
-    dates: list[str | None] = [None] * len(out)
-    cache: dict[str, tuple] = {}
-    for i, v in enumerate(own):
-        key = (at or "") if _blank(v) else str(v)
-        if key not in cache:
-            where = _draft_where(out, source, i, column) if column and not _blank(v) else "--at"
-            cache[key] = parse_datetime(key or None, timezone, where)
-        stamp, has_time = cache[key]
-        if stamp is None:
-            continue
-        weekdays[i] = stamp.weekday()
-        dates[i] = stamp.date().isoformat()
-        if has_time:
-            hours[i] = stamp.hour + stamp.minute / 60.0
-    out["local_hour"] = hours
-    out["local_weekday"] = weekdays
-    out["local_date"] = dates
+    column, own = _publish_times(out, timezone)
+    notes: list[str] = []
+    stored, has_time = own.stored.copy(), own.has_time.copy()
+    if at is not None:  # a bad --at is refused even when every draft has its own time
+        given = parse_datetimes([_time_text(at)], timezone)
+        if given.errors[0] is not None:
+            raise ContentlabError(f"--at: {given.errors[0]}.")
+        notes += given.clock_notes(lambda positions: "--at")
+        stored[own.empty], has_time[own.empty] = given.stored[0], given.has_time[0]
+    bad = np.flatnonzero(own.failed)
+    if len(bad):
+        raise ContentlabError(f"{_draft_where(out, source, int(bad[0]), column)}: {own.errors[bad[0]]}.")
+    notes += own.clock_notes(lambda positions: _drafts_where(out, source, positions, column))
+    out["local_hour"], out["local_weekday"], out["local_date"] = _local_parts(stored, has_time, timezone)
+    out.attrs["time_notes"] = notes  # how local times at a clock change were read (timeparse.ParsedTimes.clock_notes)
     return out
+
+
+def publish_time_notes(drafts, timezone: str, *, source: str | None = None, group: str | None = None) -> list[str]:
+    """How the drafts' local publish times at a clock change are read, for a command that keeps them as given
+    (``experiment new``); ``group`` limits the notes to the drafts of that group."""
+    if not isinstance(drafts, pd.DataFrame):
+        return []
+    frame = drafts.reset_index(drop=True)
+    if group is not None and "group" in frame:
+        frame = frame[frame["group"].astype(str).str.strip() == group].reset_index(drop=True)
+    column, parsed = _publish_times(frame, timezone)
+    source = source if source is not None else frame.attrs.get("source")
+    return parsed.clock_notes(lambda positions: _drafts_where(frame, source, positions, column))
+
+
+def _publish_times(frame: pd.DataFrame, timezone: str):
+    """(the drafts' publish-time column or None, its values read by :func:`contentlab.timeparse.parse_datetimes`)."""
+    column = next((c for c in PUBLISH_ALIASES if c in frame), None)
+    values = frame[column].tolist() if column else [None] * len(frame)
+    return column, parse_datetimes([None if _blank(v) else _time_text(v) for v in values], timezone)
+
+
+def _time_text(value) -> str:
+    """A publish time as text for :func:`contentlab.timeparse.parse_datetimes` (a pandas Timestamp in ISO form)."""
+    return value.isoformat() if isinstance(value, pd.Timestamp) else str(value)
+
+
+def _local_parts(stored: np.ndarray, has_time: np.ndarray, timezone: str) -> tuple[np.ndarray, np.ndarray, list]:
+    """Stored times (UTC date-times, dates alone, "" for none) -> local hour (NaN for a date alone), weekday, date."""
+    n = len(stored)
+    hours, weekdays = np.full(n, np.nan), np.full(n, np.nan)
+    dates: list[str | None] = [None] * n
+    timed = np.flatnonzero(has_time & (stored != ""))
+    if len(timed):
+        local = pd.to_datetime(pd.Series(stored[timed], dtype=object), utc=True, format="ISO8601").dt.tz_convert(timezone)
+        hours[timed] = (local.dt.hour + local.dt.minute / 60.0).to_numpy()
+        weekdays[timed] = local.dt.weekday.to_numpy()
+        for i, day in zip(timed, local.dt.strftime("%Y-%m-%d")):
+            dates[i] = day
+    dated = np.flatnonzero(~has_time & (stored != ""))
+    if len(dated):
+        days = pd.to_datetime(pd.Series(stored[dated], dtype=object), format="%Y-%m-%d")
+        weekdays[dated] = days.dt.weekday.to_numpy()
+        for i in dated:
+            dates[i] = stored[i]
+    return hours, weekdays, dates
 
 
 def _blank(v) -> bool:
@@ -760,21 +812,27 @@ def check_results(
         found.append((i, "clicks", f"{clicks[i]:,} clicks is more than its {impressions[i]:,} impressions; check the "
                                       "two columns are not swapped"))
     at = np.full(n, "", dtype=object)
+    notes: list[str] = []
     if "at" in frame.columns:
         parsed = parse_datetimes(text("at"), timezone)
         for i in np.flatnonzero(parsed.failed):
             found.append((int(i), "at", parsed.errors[i]))
         at = parsed.stored
+        prefix = f"{source}: " if source else ""
+        notes = parsed.clock_notes(lambda positions: "--at" if options else
+                                   f"{prefix}{rows_text(rows[positions])}, column 'at'")
     event_id = text("event_id")
     found += long_cells(event_id, "event_id", MAX_ID_CHARS, "an event id")
     found += control_cells(event_id, "event_id")
     if found:
         found.sort(key=lambda p: (rows[p[0]], p[1]))
         raise ContentlabError(_one_line([f"{here(i, c)}: {r}" for i, c, r in found], "nothing was recorded"))
-    return pd.DataFrame({
+    clean = pd.DataFrame({
         "arm": arm.to_numpy(dtype=object), "impressions": impressions, "clicks": clicks, "at": at,
         "event_id": event_id.to_numpy(dtype=object), "row": rows,
     })
+    clean.attrs["time_notes"] = tuple(notes)  # local times at a clock change: how they were read
+    return clean
 
 
 def _one_line(problems: list[str], outcome: str, limit: int = 3) -> str:

@@ -484,6 +484,7 @@ def score_drafts(
     eng = engine_for(model)
     known = eng.channels or None
     prepared = prepare_drafts(frame, tz, channel=channel, at=at, known_channels=known)
+    notes += prepared.attrs.get("time_notes", [])  # local publish times at a clock change: how they were read
     if (("channel" not in prepared) or prepared["channel"].isna().any()) and known and len(known) > 1 \
             and "(none)" not in known:
         missing = np.flatnonzero(prepared["channel"].isna().to_numpy()) if "channel" in prepared else [0]

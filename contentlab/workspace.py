@@ -268,6 +268,9 @@ class Workspace:
             created = True
         read_only = not created and not _writable(path, db)
         full = False
+        if read_only and _pending_wal(db):
+            # Read-only, the database is opened without its log: the changes still in it would be missing.
+            raise WorkspaceReadOnly(unsaved_log_message(path, db, "read-only"))
         try:
             if read_only:
                 conn = _open_immutable(path, db)
@@ -280,8 +283,11 @@ class Workspace:
                 except sqlite3.OperationalError as exc:
                     # A full disk has no room for the WAL's side files, so even reading fails. With no
                     # unsaved WAL content the file itself is whole: read it as it is, refuse writes plainly.
-                    if created or _is_corrupt(exc) or not disk_is_full(path) or _pending_wal(db):
+                    if created or _is_corrupt(exc) or not disk_is_full(path):
                         raise
+                    if _pending_wal(db):
+                        conn.close()
+                        raise WorkspaceDiskFull(unsaved_log_message(path, db, "full")) from None
                     conn.close()
                     conn, read_only, full = _open_immutable(path, db), True, True
                 # In WAL mode NORMAL is still safe from corruption; a power cut can lose
@@ -565,6 +571,21 @@ def disk_full_message(path) -> str:
     """The one message for a write to a workspace whose disk has no room left."""
     return (f"the disk holding the workspace at {path} is full; nothing was written (reading commands still work). "
             "Free some space and run the command again.")
+
+
+def unsaved_log_message(path, db: Path, why: str) -> str:
+    """The one message for a workspace whose last changes are still in its ``-wal`` file when it cannot be written
+    (``why``: "read-only" or "full"): read without them it would show figures from before those changes."""
+    wal = db.with_name(db.name + "-wal")
+    if why == "full":
+        cannot, fix = (f"the disk holding the workspace at {path} is full", "Free some space and run the command again")
+    else:
+        cannot, fix = (f"the workspace at {path} is read-only (its folder or database file cannot be written)",
+                       "Make the folder writable (or copy the whole workspace folder somewhere you may write) and run "
+                       "the command again")
+    return (f"{cannot}, and its last changes are still in {wal} (a command stopped before saving them, or another "
+            "is writing): they can only be applied with write access, and without them the workspace would show "
+            f"figures from before those changes. Nothing was read, changed or deleted. {fix}.")
 
 
 # Below this much free space a SQLite error on opening or writing is taken for a full disk: the WAL's side

@@ -208,6 +208,8 @@ def register(subparsers) -> None:
 def cmd_new(args: argparse.Namespace) -> int:
     from ..errors import ContentlabError
     from ..experiments import create_experiment, read_drafts
+    from ..readers import publish_time_notes
+    from ..timeparse import clock_notes_for
     from ..workspace import opened
 
     if args.drafts and args.headlines:
@@ -226,10 +228,15 @@ def cmd_new(args: argparse.Namespace) -> int:
             prior_strength=args.prior_strength, policy=args.policy, source=args.drafts, seed=args.seed,
             budget=args.budget, ends_at=args.ends_at,
         )
+        # Local times at a clock change: how they were read (the drafts' publish times are kept as given).
+        notes = publish_time_notes(drafts, ws.timezone, source=args.drafts, group=args.group)
+        if args.ends_at is not None:
+            notes += clock_notes_for(args.ends_at, ws.timezone, "--ends-at")
+    notes += created.notes
     frame = created.arms
     if args.format == "json":
         _print_json({"experiment": created.name, "arms": _records(frame), "prior": created.prior.to_dict(),
-                     "notes": list(created.notes)})
+                     "notes": notes})
         return 0
     if args.format == "csv":
         _print_csv(frame)
@@ -244,7 +251,7 @@ def cmd_new(args: argparse.Namespace) -> int:
     ], extra={"90% prior interval": [f"{_pct(lo)} to {_pct(hi)}" for lo, hi in zip(frame["prior_low"], frame["prior_high"])]}))
     print()
     print(_wrap("Prior: " + created.prior.reason + "."))
-    for note in created.notes:
+    for note in notes:
         print(_wrap("Note: " + note))
     print(f"\nNext: contentlab experiment next {created.name} --impressions 1000")
     return 0

@@ -68,6 +68,8 @@ def cmd_import(args: argparse.Namespace) -> int:
                 ws.set_setting("timezone", previous)  # a failed import changes nothing
             raise
     print(summary.line())
+    for note in summary.notes:
+        print(f"Note: {note}")
     return 0
 
 

@@ -44,8 +44,7 @@ def cmd_report(args: argparse.Namespace) -> int:
     check_out_dir(args.out, "./reports")
     with Workspace.open(args.workspace, create=False) as ws:
         _check_something_to_report(ws, args)
-        if args.drafts:
-            _check_drafts(ws, args.drafts)
+        notes = _check_drafts(ws, args.drafts) if args.drafts else []
         report = build_report(ws, week=args.week, start=args.date_from, end=args.date_to, outcome=args.outcome,
                               drafts=args.drafts)
     files = write_report(report, args.out)
@@ -53,6 +52,8 @@ def cmd_report(args: argparse.Namespace) -> int:
     print(f"  {report.headline['idea']}")
     print(f"wrote {files.html}")
     print(f"  and {len(files.tables)} CSV tables in {files.folder}/")
+    for note in notes:
+        print(f"Note: {note}")
     for item in report.missing:
         print(f"  not included: {item}", file=sys.stderr)
     return 0
@@ -83,9 +84,10 @@ def _check_something_to_report(ws, args: argparse.Namespace) -> None:
                               "Choose a week that has posts, or leave out --week for the last complete one.")
 
 
-def _check_drafts(ws, path: str) -> None:
+def _check_drafts(ws, path: str) -> list[str]:
     """The drafts file the user gave is read and checked as ``score --input`` checks it, before anything is
-    written: a bad row stops the command (exit 2) instead of a report that silently leaves drafts out."""
+    written: a bad row stops the command (exit 2) instead of a report that silently leaves drafts out.
+    Returns the notes on local publish times at a clock change (how they were read)."""
     from ..errors import ContentlabError
     from ..readers import prepare_drafts, read_drafts
 
@@ -99,3 +101,4 @@ def _check_drafts(ws, path: str) -> None:
     if len(channels) > 1 and "channel" not in prepared:
         raise ContentlabError(f"{path}: has no 'channel' column; your history has several channels "
                               f"({', '.join(channels)}), so give every draft one to score it in the report.")
+    return list(prepared.attrs.get("time_notes", []))

@@ -80,7 +80,7 @@ def cmd_score(args: argparse.Namespace) -> int:
         from ..safety import write_csv
 
         write_csv(result, sys.stdout)
-        for line in result.attrs["cautions"]:
+        for line in list(result.attrs.get("notes") or []) + result.attrs["cautions"]:
             print(f"note: {line}", file=sys.stderr)
     elif args.format == "json":
         print(to_json(result))

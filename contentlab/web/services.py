@@ -220,11 +220,13 @@ def create(state: WorkspaceState, name: str, drafts: list[dict], channel: str | 
     import pandas as pd
 
     from ..experiments import create_experiment
+    from ..readers import publish_time_notes
 
     frame = pd.DataFrame(drafts)
     with state.open() as ws:
         created = create_experiment(ws, name, frame, channel=channel or None)
-    return {"experiment": created.name, "arms": _records(created.arms), "notes": list(created.notes)}
+        notes = publish_time_notes(frame, ws.timezone)  # local publish times at a clock change: how they are read
+    return {"experiment": created.name, "arms": _records(created.arms), "notes": notes + list(created.notes)}
 
 
 # ------------------------------------------------------------------ drivers

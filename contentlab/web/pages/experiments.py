@@ -87,7 +87,8 @@ async def detail(request: Request):
         view["split_error"] = problem
     if is_htmx(request) and request.query_params.get("part") == "split":
         return render(request, "experiment_split.html", name=name, **view)
-    return render(request, "experiment.html", name=name, record={}, errors={}, general=None, done=None, **view)
+    return render(request, "experiment.html", name=name, record={}, errors={}, general=None, done=None, done_notes=[],
+                  **view)
 
 
 async def record(request: Request):
@@ -98,10 +99,11 @@ async def record(request: Request):
     row = {k: v for k, v in values.items() if v or k in ("arm", "impressions", "clicks")}
     errors: dict[str, str] = {}
     general = done = None
+    done_notes: list[str] = []
     await blocking(services.require_experiment, state, name)
     try:
         out = await blocking(services.record, state, name, [row], False)
-        done = out["summary"]
+        done, done_notes = out["summary"], out["notes"]
         values = {}
     except ContentlabError as exc:
         errors, general = field_errors(str(exc))
@@ -112,7 +114,7 @@ async def record(request: Request):
     if is_htmx(request):
         status = 200
     return render(request, template, status=status, name=name, record=values, errors=errors, general=general,
-                  done=done, **view)
+                  done=done, done_notes=done_notes, **view)
 
 
 async def stop(request: Request):

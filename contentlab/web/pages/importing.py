@@ -68,7 +68,7 @@ def _import(state, data: UploadFile, mapping: UploadFile | None, shown: str, sho
                 summary = import_history(ws, path, map_path)
         except ContentlabError as exc:
             raise ContentlabError(named(str(exc))) from None
-    return {"rejected": False, "summary": named(summary.line())}
+    return {"rejected": False, "summary": named(summary.line()), "notes": [named(n) for n in summary.notes]}
 
 
 async def page(request: Request):
