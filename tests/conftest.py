@@ -51,6 +51,18 @@ def copy_workspace(base: Path, tmp_path: Path) -> Path:
     return target
 
 
+@pytest.fixture(scope="module")
+def laser_base(tmp_path_factory) -> Path:
+    """One module's learned demo workspace with the 'laser' experiment (see :func:`laser_test_workspace`)."""
+    return laser_test_workspace(tmp_path_factory.mktemp("laser") / "ws")
+
+
+@pytest.fixture
+def laser_ws(laser_base, tmp_path) -> Path:
+    """A fresh copy of ``laser_base`` for one test to change or break."""
+    return copy_workspace(laser_base, tmp_path)
+
+
 def run_cli(capsys, argv: list[str]) -> tuple[int, str, str]:
     """Exit code, stdout and stderr of one command, as the shell would see them."""
     from contentlab.cli import main

@@ -16,7 +16,7 @@ import pytest
 import contentlab.workspace as workspace
 from contentlab.cli import explain_failure
 
-from conftest import copy_workspace, laser_test_workspace, run_cli as run, workspace_digest
+from conftest import run_cli as run, workspace_digest
 
 
 class FullDiskConnection(workspace.WaitingConnection):
@@ -26,19 +26,11 @@ class FullDiskConnection(workspace.WaitingConnection):
         return super().execute(sql, *args)
 
 
-@pytest.fixture(scope="module")
-def base(tmp_path_factory) -> Path:
-    path = tmp_path_factory.mktemp("full-disk") / "ws"
-    laser_test_workspace(path)
-    return path
-
-
 @pytest.fixture
-def full(base, tmp_path, monkeypatch) -> Path:
-    target = copy_workspace(base, tmp_path)
+def full(laser_ws, monkeypatch) -> Path:
     monkeypatch.setattr(workspace, "WaitingConnection", FullDiskConnection)
     monkeypatch.setattr(workspace, "disk_is_full", lambda path: True)
-    return target
+    return laser_ws
 
 
 @pytest.mark.parametrize("argv", [

@@ -16,24 +16,12 @@ import pytest
 
 from contentlab.cli import main
 
-from conftest import copy_workspace, laser_test_workspace, run_cli as run, workspace_digest
+from conftest import run_cli as run, workspace_digest
 
 pytestmark = pytest.mark.skipif(
     not hasattr(signal, "SIGTERM") or signal.getsignal(signal.SIGTERM) is not signal.SIG_DFL,
     reason="needs SIGTERM with its default handler in the test process (the CLI only installs its own over that)",
 )
-
-
-@pytest.fixture(scope="module")
-def base(tmp_path_factory) -> Path:
-    path = tmp_path_factory.mktemp("stop-signals") / "ws"
-    laser_test_workspace(path)
-    return path
-
-
-@pytest.fixture
-def ws(base, tmp_path) -> Path:
-    return copy_workspace(base, tmp_path)
 
 
 def send_after(monkeypatch, target: str, signum: int) -> None:
@@ -66,24 +54,24 @@ ROW = "new1,2026-03-02T09:15:00+00:00,Seven ways to use the library,1000,25,blog
     ("contentlab.modelfile.dumps", ["learn", "--bootstrap", "0", "--no-meaning", "--quiet"]),
     ("contentlab.workspace.Workspace.record_import", ["import", "{tmp}/f.csv", "--quiet"]),
 ])
-def test_stop_signal_inside_a_write_rolls_it_back(ws, tmp_path, capsys, monkeypatch, target, argv, signum):
+def test_stop_signal_inside_a_write_rolls_it_back(laser_ws, tmp_path, capsys, monkeypatch, target, argv, signum):
     send_after(monkeypatch, target, signum)
     (tmp_path / "f.csv").write_text(HEAD + ROW, encoding="utf-8")
-    before = workspace_digest(ws)
-    args = [a.replace("{tmp}", str(tmp_path)) for a in argv] + ["--workspace", str(ws)]
+    before = workspace_digest(laser_ws)
+    args = [a.replace("{tmp}", str(tmp_path)) for a in argv] + ["--workspace", str(laser_ws)]
     code, _, err = run(capsys, args)
     assert code == 128 + signum, err
     assert f"stopped by {signal.Signals(signum).name}" in err and "nothing more was written" in err
     assert "Traceback" not in err
-    assert workspace_digest(ws) == before
+    assert workspace_digest(laser_ws) == before
     monkeypatch.undo()
     assert main(args) == 0  # and the same command finishes when run again
     assert signal.getsignal(signal.SIGTERM) is signal.SIG_DFL  # the handler is the caller's again
 
 
-def test_stop_signal_while_the_report_is_written_keeps_the_earlier_page(ws, tmp_path, capsys, monkeypatch):
+def test_stop_signal_while_the_report_is_written_keeps_the_earlier_page(laser_ws, tmp_path, capsys, monkeypatch):
     out = tmp_path / "reports"
-    assert main(["report", "--out", str(out), "--workspace", str(ws)]) == 0
+    assert main(["report", "--out", str(out), "--workspace", str(laser_ws)]) == 0
     before = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
     import contentlab.safety as safety
 
@@ -95,7 +83,7 @@ def test_stop_signal_while_the_report_is_written_keeps_the_earlier_page(ws, tmp_
         return real_replace(src, dst)
 
     monkeypatch.setattr(safety.os, "replace", signal_then_replace)
-    code, _, err = run(capsys, ["report", "--out", str(out), "--workspace", str(ws)])
+    code, _, err = run(capsys, ["report", "--out", str(out), "--workspace", str(laser_ws)])
     assert code == 128 + signal.SIGTERM and "stopped by SIGTERM" in err
     after = {p.relative_to(out): p.read_bytes() for p in out.rglob("*") if p.is_file()}
     assert not [p for p in after if p.name.endswith(".tmp")]
@@ -103,10 +91,10 @@ def test_stop_signal_while_the_report_is_written_keeps_the_earlier_page(ws, tmp_
     assert page and all(after[p] == before[p] for p in page)
 
 
-def test_ctrl_c_names_itself(ws, capsys, monkeypatch):
+def test_ctrl_c_names_itself(laser_ws, capsys, monkeypatch):
     send_after(monkeypatch, "contentlab.experiments._sync_posts", signal.SIGINT)
-    before = workspace_digest(ws)
+    before = workspace_digest(laser_ws)
     code, _, err = run(capsys, ["record", "laser", "--arm", "A", "--impressions", "9", "--clicks", "1",
-                                "--event-id", "c1", "--workspace", str(ws)])
+                                "--event-id", "c1", "--workspace", str(laser_ws)])
     assert code == 130 and "interrupted (Ctrl-C)" in err
-    assert workspace_digest(ws) == before
+    assert workspace_digest(laser_ws) == before

@@ -82,22 +82,20 @@ def add_workspace_option(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--workspace", metavar="DIR", default=argparse.SUPPRESS, help=WORKSPACE_HELP)
 
 
-def whole_number(text: str) -> int:
-    """argparse type for counts, seeds and ports: the value itself and what to write instead when it is not one."""
-    try:
-        return int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"'{visible(text)[:40]}' is not a whole number; write it in digits without "
-                                         "separators or decimals, e.g. 1000") from None
+def _number_type(convert, what: str):
+    """An argparse type: the value converted, or a message naming the value and what to write instead."""
+    def parse(text: str):
+        try:
+            return convert(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"'{visible(text)[:40]}' is not {what}") from None
+    return parse
 
 
-def decimal_number(text: str) -> float:
-    """argparse type for rates, thresholds and strengths (their ranges are checked by the command)."""
-    try:
-        return float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"'{visible(text)[:40]}' is not a number; write it in digits with a "
-                                         "decimal point, e.g. 0.95") from None
+# Counts, seeds and ports.
+whole_number = _number_type(int, "a whole number; write it in digits without separators or decimals, e.g. 1000")
+# Rates, thresholds and strengths (their ranges are checked by the command).
+decimal_number = _number_type(float, "a number; write it in digits with a decimal point, e.g. 0.95")
 
 
 def check_out_dir(value: str | None, default: str) -> None:
