@@ -1643,7 +1643,7 @@ def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool,
         j = first.setdefault(e, i)
         if j != i and values[i] != values[j]:
             problems.append(f"{where}row {int(rows[i])}, column 'event_id': '{_short(e)}' is also used by "
-                            f"row {int(rows[j])} with different values")
+                            f"row {int(rows[j])} with different values; give each result its own event_id")
     if problems:
         raise ContentlabError(_problem_line(problems, "nothing was recorded"))
     return kinds, repeats

@@ -118,13 +118,13 @@ def why_not_iso(text: str) -> str:
                     "check the year")
         off = m.group("offset")
         if off and len(off) > 3 and int(off[-2:]) >= 60:
-            return f"'{shown}': the offset '{off}' has more than 59 minutes"
+            return f"'{shown}': the offset '{off}' has more than 59 minutes; check it (e.g. +05:30)"
         return (f"'{shown}' is not an ISO 8601 date or date-time: no such calendar date or clock time; check the day, "
                 "month and hour")
     epoch = _epoch_hint(text)
     if epoch:
         return f"'{shown}' looks like a Unix time (counted from 1970); write it as {epoch} ({EXAMPLES})"
-    return f"'{shown}' is not an ISO 8601 date or date-time ({EXAMPLES})"
+    return f"'{shown}' is not an ISO 8601 date or date-time ({EXAMPLES}); write it in one of those forms"
 
 
 def _epoch_hint(text: str) -> str | None:

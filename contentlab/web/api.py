@@ -29,7 +29,8 @@ async def _json_body(request: Request):
         raise ApiError(f"The body is not valid JSON ({exc}); send one JSON object, as the README's API section "
                        "shows.") from None
     except RecursionError:
-        raise ApiError("The body is not valid JSON for this API: its lists or objects are nested too deeply.") from None
+        raise ApiError("The body is not valid JSON for this API: its lists or objects are nested too deeply; send the flat "
+                       "form the README's API section shows.") from None
 
 
 def _no_constant(name: str):

@@ -50,7 +50,8 @@ class BodyTooLarge(Exception):
     """Raised while reading a request body that passes the size limit (answered with 413)."""
 
     def __init__(self, limit: int):
-        super().__init__(f"The upload is larger than the limit of {limit // 1_000_000} MB; nothing was read.")
+        super().__init__(f"The upload is larger than the limit of {limit // 1_000_000} MB; nothing was read. "
+                         "Split the file and upload the parts one by one.")
         self.limit = limit
 
 
@@ -144,7 +145,8 @@ class SecurityMiddleware:
                 too_big = True
             if too_big:
                 await _plain(send, 413, is_api,
-                             f"The request is larger than the limit of {self.max_body // 1_000_000} MB; nothing was read.")
+                             f"The request is larger than the limit of {self.max_body // 1_000_000} MB; nothing was read. "
+                             "Send it in smaller parts.")
                 return
         limit = self.max_body
         seen = 0

@@ -92,7 +92,9 @@ def _listed(payload: Any, key: str, option: str, limit: int, unit: str, example:
         raise ApiError(f'The body must be a JSON object with "{key}": {example}.')
     unknown = sorted(set(payload) - {key, option})
     if unknown:
-        raise ApiError(f"Unknown field(s) {', '.join(unknown)}; the body has \"{key}\" and optionally \"{option}\".")
+        from ..readers import short
+
+        raise ApiError(f"Unknown field(s) {', '.join(short(u) for u in unknown[:5])}; remove them: the body has \"{key}\" and optionally \"{option}\".")
     items = payload[key]
     if not isinstance(items, list) or not items:
         raise ApiError(f'"{key}" must be a non-empty list of objects.')
@@ -133,7 +135,9 @@ def experiment_exists(state: WorkspaceState, name: str) -> bool:
 
 def require_experiment(state: WorkspaceState, name: str) -> None:
     if not experiment_exists(state, name):
-        raise ApiError(f"No experiment named '{name}' in this workspace; see GET /api/experiments.", 404)
+        from ..readers import short
+
+        raise ApiError(f"No experiment named '{short(name)}' in this workspace; see GET /api/experiments.", 404)
 
 
 def experiments_list(state: WorkspaceState) -> list[dict]:
