@@ -1616,17 +1616,16 @@ def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool,
     if digest is not None:  # before missing times become now: the rows as the file gives them
         repeats = _file_row_ids(clean, (ids == "") & ~given_at, kind)
     clean["at"] = np.where(given_at, clean["at"].to_numpy(dtype=object), now)
+    arm, at, n, k = (clean[c].tolist() for c in ("arm", "at", "impressions", "clicks"))
     occurrences: dict[str, int] = {}
     for i in np.flatnonzero(ids == ""):
         if given_at[i]:
             # Identified by arm, time and figures, from a file or not: a file saved again in another order or
             # form, or holding results recorded before, counts each once. The k-th identical row of one input
             # is the k-th such result, so identical rows of one file all count.
-            values = "v-" + _digest(
-                f"{clean['arm'].iat[i]}\x1e{clean['at'].iat[i]}\x1e{clean['impressions'].iat[i]}"
-                f"\x1e{clean['clicks'].iat[i]}\x1e{kind}")
-            k = occurrences[values] = occurrences.get(values, -1) + 1
-            ids[i], kinds[i] = (values if k == 0 or digest is None else "v-" + _digest(f"{values}\x1e{k}")), "values"
+            values = "v-" + _digest(f"{arm[i]}\x1e{at[i]}\x1e{n[i]}\x1e{k[i]}\x1e{kind}")
+            seen = occurrences[values] = occurrences.get(values, -1) + 1
+            ids[i], kinds[i] = (values if seen == 0 or digest is None else "v-" + _digest(f"{values}\x1e{seen}")), "values"
         elif digest is not None:
             ids[i], kinds[i] = repeats.ids[i], "file"
         else:
