@@ -66,8 +66,9 @@ from .bandit import (
 )
 from .errors import ContentlabError
 from .features import clean_headline
-from .ingest import _short
 from .percentages import probability
+from .readers import rows_text
+from .readers import short as _short
 from .workspace import Workspace, now_utc, stored_json
 
 __all__ = [
@@ -1788,7 +1789,7 @@ def _date_notes(items: list[tuple], created_at: str, single: bool, where: str) -
                                  f"{at[earlier].min():%Y-%m-%d %H:%M} UTC)" if earlier.any() else "")):
         if not mask.any():
             continue
-        shown = "--at" if single else f"{where}{_rows_text([it[5] for it, x in zip(items, mask) if x])}, column 'at'"
+        shown = "--at" if single else f"{where}{rows_text([it[5] for it, x in zip(items, mask) if x])}, column 'at'"
         notes.append(f"{shown}: {what}. The results are recorded as given and count in the weeks they are dated; "
                      "if that is wrong, check the year, the workspace's time zone and whether day and month are "
                      "swapped in the file.")
@@ -1802,11 +1803,6 @@ def _stopped_note(exp: dict, added: int) -> tuple[str, ...]:
     winner = exp["settings"].get("winner")
     return (f"{exp['name']} was stopped{' with ' + winner + ' as the winner' if winner else ''}; these results are "
             "added to its totals (its winner stays as it was).",)
-
-
-def _rows_text(rows: list[int], limit: int = 8) -> str:
-    shown = ", ".join(str(r) for r in rows[:limit])
-    return ("row " if len(rows) == 1 else "rows ") + shown + (f" and {len(rows) - limit} more" if len(rows) > limit else "")
 
 
 def _record_notes(kinds: list[str], skipped: dict[str, list[int]], in_input: list[int], single: bool) -> list[str]:
@@ -1835,9 +1831,9 @@ def _record_notes(kinds: list[str], skipped: dict[str, list[int]], in_input: lis
         "values": "a result with the same arm, at and figures is already recorded",
     }
     for kind, rows in skipped.items():
-        notes.append(f"Skipped {_rows_text(rows)}: {reasons[kind]}.")
+        notes.append(f"Skipped {rows_text(rows)}: {reasons[kind]}.")
     if in_input:
-        notes.append(f"Skipped {_rows_text(in_input)}: the same event_id with the same values appears earlier in the input.")
+        notes.append(f"Skipped {rows_text(in_input)}: the same event_id with the same values appears earlier in the input.")
     n_file = sum(k == "file" for k in kinds)
     if n_file:
         notes.append(f"{n_file} row(s) had no event_id: each is identified by the rows of this file and its place "
