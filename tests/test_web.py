@@ -7,6 +7,7 @@ The workspace is the demo corpus (invented Alderbank Libraries) with a model lea
 
 from __future__ import annotations
 
+import html
 import json
 import re
 import shutil
@@ -191,6 +192,39 @@ def test_api_control_characters_are_refused(client, ws_dir):
                     json={"results": [{"arm": "A", "impressions": 5, "clicks": 1, "event_id": "e\x07"}]})
     assert r.status_code == 400 and "row 1, column 'event_id': holds U+0007 (bell)" in r.json()["error"]
     assert totals(ws_dir, "winter-reading") == before
+
+
+def test_results_file_uploaded_on_the_page_records_once_even_saved_again(client, ws_dir):
+    """A results CSV uploaded in the browser is recorded as `record --input` records it: the same sheet uploaded
+    again, re-saved by a spreadsheet or with a row added below, counts each result once."""
+    before = totals(ws_dir, "winter-reading")
+    sheet = "arm,impressions,clicks\nA,400,9\nB,400,14\n"
+    r = client.post("/experiments/winter-reading/record-file", data={"csrf_token": csrf(client)},
+                    files={"results": ("week 49.csv", sheet.encode(), "text/csv")})
+    assert r.status_code == 200 and 'id="recorded"' in r.text and "2 recorded" in r.text
+    resaved = b'\xef\xbb\xbf"arm","impressions","clicks"\r\n"A","400","9"\r\n"B","400","14"\r\n"A","100","3"\r\n'
+    r = client.post("/experiments/winter-reading/record-file", data={"csrf_token": csrf(client)},
+                    files={"results": ("week 49 (1).csv", resaved, "text/csv")})
+    assert r.status_code == 200 and "1 recorded" in r.text and "2 already recorded" in r.text
+    assert totals(ws_dir, "winter-reading") == (before[0] + 900, before[1] + 26)
+
+
+@pytest.mark.parametrize("upload, words", [
+    (("bad.csv", b"arm,impressions,clicks\nA,40,9\nB,30,50\n", "text/csv"),
+     "bad.csv: row 3, column 'clicks': 50 clicks is more than its 30 impressions"),
+    (("empty.csv", b"", "text/csv"), "empty.csv: the file is empty; nothing was recorded"),
+    (("sheet.xlsx", b"PK\x03\x04" + b"\0" * 40, "application/octet-stream"), "sheet.xlsx"),
+])
+def test_a_bad_results_upload_names_the_file_and_row_and_records_nothing(client, ws_dir, upload, words):
+    before = totals(ws_dir, "winter-reading")
+    r = client.post("/experiments/winter-reading/record-file", data={"csrf_token": csrf(client)},
+                    files={"results": upload})
+    assert r.status_code == 400 and 'id="record-error"' in r.text
+    assert html.unescape(words) in html.unescape(r.text) and "contentlab-upload-" not in r.text
+    assert totals(ws_dir, "winter-reading") == before
+    r = client.post("/experiments/winter-reading/record-file",
+                    files={"results": ("r.csv", b"arm,impressions,clicks\nA,1,0\n", "text/csv")})
+    assert r.status_code == 403 and totals(ws_dir, "winter-reading") == before  # no CSRF value: nothing read
 
 
 def test_record_form_records_and_status_changes(client, ws_dir):

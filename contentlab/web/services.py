@@ -188,6 +188,31 @@ def record(state: WorkspaceState, name: str, rows: list[dict], cumulative: bool 
                           for r in rows])
     with state.open() as ws:
         summary = record_results(ws, name, frame, cumulative=cumulative, by_option=by_option)
+    return _recorded(summary)
+
+
+def record_file(state: WorkspaceState, name: str, path, shown: str, cumulative: bool = False) -> dict:
+    """Record a results CSV saved at ``path`` (an upload) as ``record --input`` does; messages name it ``shown``.
+
+    The rows are identified as the command identifies a file's rows, so the same
+    sheet uploaded again, even re-saved or with rows added below, counts each
+    result once.
+    """
+    from ..experiments import read_results, record_results
+
+    try:
+        with state.open() as ws:
+            frame = read_results(path)
+            summary = record_results(ws, name, frame, cumulative=cumulative, source_file=shown)
+    except ContentlabError as exc:
+        raise ContentlabError(str(exc).replace(str(path), shown)) from None
+    reply = _recorded(summary)
+    reply["notes"] = [n.replace(str(path), shown) for n in reply["notes"]]
+    return reply
+
+
+def _recorded(summary) -> dict:
+    """A record summary as the API and the pages show it."""
     return {"experiment": summary.name, "rows_read": summary.rows_read, "recorded": summary.added,
             "already_recorded": summary.duplicates, "unchanged_totals": summary.unchanged,
             "impressions_added": summary.impressions_added, "clicks_added": summary.clicks_added,

@@ -13,7 +13,7 @@ from ...errors import ContentlabError
 from .. import insight, services
 from ..common import ApiError, blocking, render
 from ..svg import line_chart
-from .forms import checked_form, is_htmx, text
+from .forms import checked_form, is_htmx, save_upload, text, upload_name
 
 RECORD_FIELDS = ("arm", "impressions", "clicks", "at", "event_id")
 # record's messages for one row name the option: "--impressions: ...", "--event-id: ...".
@@ -117,6 +117,49 @@ async def record(request: Request):
                   done=done, done_notes=done_notes, **view)
 
 
+def _record_upload(state, name: str, upload, shown: str, cumulative: bool) -> dict:
+    """Save the upload under a fixed name in a private temporary folder and record it (all rows or none)."""
+    import tempfile
+    from pathlib import Path
+
+    with tempfile.TemporaryDirectory(prefix="contentlab-upload-") as tmp:
+        path = Path(tmp) / "results.csv"
+        if save_upload(upload, path) == 0:
+            raise ContentlabError(f"{shown}: the file is empty; nothing was recorded. Upload a CSV with a header "
+                                  "(arm, impressions, clicks) and one result a row.")
+        with open(path, "rb") as fh:
+            if fh.read(2) == b"\x1f\x8b":
+                path = path.rename(path.with_name("results.csv.gz"))
+        return services.record_file(state, name, path, shown, cumulative)
+
+
+async def record_file(request: Request):
+    """A results file uploaded on the experiment's page: recorded as ``contentlab record NAME --input FILE``."""
+    from starlette.datastructures import UploadFile
+
+    name = request.path_params["name"]
+    state = request.app.state.workspace
+    form = await checked_form(request, files=1)
+    upload = form.get("results")
+    cumulative = text(form, "cumulative", 10) == "on"
+    general = done = None
+    done_notes: list[str] = []
+    await blocking(services.require_experiment, state, name)
+    if not isinstance(upload, UploadFile) or not upload.filename:
+        general = "Choose a results file to upload (CSV: arm, impressions, clicks, and optionally at and event_id)."
+    else:
+        try:
+            out = await blocking(_record_upload, state, name, upload, upload_name(upload, "results.csv"), cumulative)
+            done, done_notes = out["summary"], out["notes"]
+        except ContentlabError as exc:
+            general = str(exc)
+        finally:
+            await upload.close()
+    view = await blocking(_view, state, name, None)
+    return render(request, "experiment.html", status=400 if general else 200, name=name, record={}, errors={},
+                  general=general, done=done, done_notes=done_notes, **view)
+
+
 async def stop(request: Request):
     name = request.path_params["name"]
     state = request.app.state.workspace
@@ -130,5 +173,6 @@ routes = [
     Route("/experiments", index, methods=["GET"]),
     Route("/experiments/{name}", detail, methods=["GET"]),
     Route("/experiments/{name}/record", record, methods=["POST"]),
+    Route("/experiments/{name}/record-file", record_file, methods=["POST"]),
     Route("/experiments/{name}/stop", stop, methods=["POST"]),
 ]

@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import shutil
+from pathlib import Path
+
+from starlette.datastructures import UploadFile
 from starlette.requests import Request
 
 from ..common import ApiError
@@ -33,3 +37,17 @@ def text(form, name: str, limit: int = 100_000) -> str:
 
 def is_htmx(request: Request) -> bool:
     return request.headers.get("hx-request") == "true"
+
+
+def upload_name(upload: UploadFile | None, default: str) -> str:
+    """The uploaded file's own name (no folders, at most 120 characters) for messages; never used as a path."""
+    name = (upload.filename if upload is not None else None) or default
+    return Path(name.replace("\\", "/")).name[:120] or default
+
+
+def save_upload(upload: UploadFile, target: Path) -> int:
+    """Write the upload to ``target`` (a fixed name in a private temporary folder); its size in bytes."""
+    upload.file.seek(0)
+    with open(target, "wb") as out:
+        shutil.copyfileobj(upload.file, out)
+    return target.stat().st_size

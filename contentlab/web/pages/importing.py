@@ -9,7 +9,6 @@ temporary path.
 
 from __future__ import annotations
 
-import shutil
 import tempfile
 from pathlib import Path
 
@@ -19,21 +18,9 @@ from starlette.routing import Route
 
 from ...errors import ContentlabError
 from ..common import blocking, render
-from .forms import checked_form
+from .forms import checked_form, save_upload, upload_name
 
 MAX_PROBLEMS_SHOWN = 500
-
-
-def _display_name(upload: UploadFile | None, default: str) -> str:
-    name = (upload.filename if upload is not None else None) or default
-    return Path(name.replace("\\", "/")).name[:120] or default
-
-
-def _copy(upload: UploadFile, target: Path) -> int:
-    upload.file.seek(0)
-    with open(target, "wb") as out:
-        shutil.copyfileobj(upload.file, out)
-    return target.stat().st_size
 
 
 def _import(state, data: UploadFile, mapping: UploadFile | None, shown: str, shown_map: str) -> dict:
@@ -43,7 +30,7 @@ def _import(state, data: UploadFile, mapping: UploadFile | None, shown: str, sho
     with tempfile.TemporaryDirectory(prefix="contentlab-upload-") as tmp:
         folder = Path(tmp)
         path = folder / "export.csv"
-        if _copy(data, path) == 0:
+        if save_upload(data, path) == 0:
             raise ContentlabError(f"{shown}: the file is empty; nothing was imported.")
         with open(path, "rb") as fh:
             if fh.read(2) == b"\x1f\x8b":
@@ -51,7 +38,7 @@ def _import(state, data: UploadFile, mapping: UploadFile | None, shown: str, sho
         map_path = None
         if mapping is not None:
             map_path = folder / "columns.toml"
-            _copy(mapping, map_path)
+            save_upload(mapping, map_path)
 
         def named(text: str) -> str:
             text = text.replace(str(path), shown)
@@ -83,8 +70,8 @@ async def upload(request: Request):
         return render(request, "import.html", status=400, outcome=None, error="Choose an export file to upload.")
     if not isinstance(mapping, UploadFile) or not mapping.filename:
         mapping = None
-    shown = _display_name(data, "export.csv")
-    shown_map = _display_name(mapping, "columns.toml")
+    shown = upload_name(data, "export.csv")
+    shown_map = upload_name(mapping, "columns.toml")
     try:
         outcome = await blocking(_import, request.app.state.workspace, data, mapping, shown, shown_map)
     except ContentlabError as exc:
