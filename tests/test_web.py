@@ -227,6 +227,20 @@ def test_a_bad_results_upload_names_the_file_and_row_and_records_nothing(client,
     assert r.status_code == 403 and totals(ws_dir, "winter-reading") == before  # no CSRF value: nothing read
 
 
+def test_a_totals_upload_that_goes_down_names_the_box_to_untick(client, ws_dir):
+    with Workspace.open(ws_dir, create=False) as ws:
+        create_experiment(ws, "running-totals", DRAFTS, flat_prior=True, seed=5)
+    url = "/experiments/running-totals/record-file"
+    r = client.post(url, data={"csrf_token": csrf(client), "cumulative": "on"},
+                    files={"results": ("totals.csv", b"arm,impressions,clicks\nA,500,10\n", "text/csv")})
+    assert r.status_code == 200 and totals(ws_dir, "running-totals") == (500, 10)
+    r = client.post(url, data={"csrf_token": csrf(client), "cumulative": "on"},
+                    files={"results": ("totals.csv", b"arm,impressions,clicks\nA,1,0\n", "text/csv")})
+    assert r.status_code == 400 and "totals.csv: row 2" in r.text and "cumulative total goes down" in r.text
+    assert "untick &#39;The figures are totals so far&#39;" in r.text and "--cumulative" not in r.text
+    assert totals(ws_dir, "running-totals") == (500, 10)
+
+
 def test_record_form_records_and_status_changes(client, ws_dir):
     before = totals(ws_dir, "winter-reading")
     r = client.post("/experiments/winter-reading/record",

@@ -152,7 +152,8 @@ async def record_file(request: Request):
             out = await blocking(_record_upload, state, name, upload, upload_name(upload, "results.csv"), cumulative)
             done, done_notes = out["summary"], out["notes"]
         except ContentlabError as exc:
-            general = str(exc)
+            # The page's word for the command's option.
+            general = str(exc).replace("leave out --cumulative", "untick 'The figures are totals so far'")
         finally:
             await upload.close()
     view = await blocking(_view, state, name, None)
