@@ -229,7 +229,7 @@ def test_a_bad_results_upload_names_the_file_and_row_and_records_nothing(client,
 
 def test_a_totals_upload_that_goes_down_names_the_box_to_untick(client, ws_dir):
     with Workspace.open(ws_dir, create=False) as ws:
-        create_experiment(ws, "running-totals", DRAFTS, flat_prior=True, seed=5)
+        create_experiment(ws, "running-totals", DRAFTS, channel="newsletter", flat_prior=True, seed=5)
     url = "/experiments/running-totals/record-file"
     r = client.post(url, data={"csrf_token": csrf(client), "cumulative": "on"},
                     files={"results": ("totals.csv", b"arm,impressions,clicks\nA,500,10\n", "text/csv")})
@@ -286,9 +286,25 @@ def test_driver_drilldown_splits_the_posts(client):
     assert client.get("/history/drivers/999").status_code == 404
 
 
-def test_post_page_shows_features_prediction_and_residual(client, ws_dir):
+def test_post_page_of_a_post_without_a_channel_shows_what_it_can(client, ws_dir):
+    """A test created without a channel in a history of several channels gives posts the model cannot score as
+    drafts: their page still shows the values and features, and says why there is no prediction."""
     with Workspace.open(ws_dir, create=False) as ws:
-        post = ws.posts().iloc[-1]
+        create_experiment(ws, "no-channel", ["Late opening at the reading room", "The reading room opens late"],
+                          flat_prior=True, seed=6)
+    r = client.post("/api/experiments/no-channel/results",
+                    json={"results": [{"arm": "A", "impressions": 300, "clicks": 9, "event_id": "nc-1"}]})
+    assert r.status_code == 200
+    r = client.get("/history/posts/no-channel:A")
+    assert r.status_code == 200 and 'id="observed"' in r.text and "3.00%" in r.text
+    assert 'id="unscored"' in r.text and "channel" in r.text and 'id="predicted"' not in r.text
+
+
+def test_post_page_shows_features_prediction_and_residual(client, ws_dir):
+    last_imported = pd.read_csv(CORPUS / "posts.csv")["post_id"].iloc[-1]  # a post the model learned from
+    with Workspace.open(ws_dir, create=False) as ws:
+        posts = ws.posts()
+        post = posts[posts["post_id"] == last_imported].iloc[0]
     r = client.get(f"/history/posts/{post['post_id']}")
     assert r.status_code == 200, (post.to_dict(), r.text[-600:])
     assert 'id="predicted"' in r.text and 'id="residual"' in r.text and "n_chars" in r.text

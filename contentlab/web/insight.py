@@ -17,6 +17,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from ..errors import ContentlabError
 from .common import ApiError, finite
 from .state import Warm, WorkspaceState
 
@@ -163,25 +164,36 @@ def post_detail(state: WorkspaceState, warm: Warm, post_id: str) -> dict:
         draft["publish_at"] = post["published_at"]
     elif post.get("local_date"):
         draft["publish_at"] = post["local_date"]
-    scored = score_drafts(pd.DataFrame([draft]), model=warm.model, history=warm.history, timezone=warm.timezone,
-                          suggest=False, impressions=float(post["impressions"]))
-    fitted = scored.iloc[0]
-    predicted = held_out if held_out is not None else float(fitted["predicted_rate"])
-    n, k = float(post["impressions"]), float(post["outcome"])
-    expected = n * predicted
-    sd = float(np.sqrt(max(n * predicted * (1 - predicted), 1e-12)))
-    return {
+    view = {
         "post": {key: post.get(key) for key in ("post_id", "headline", "channel", "published_at", "impressions",
                                                  "outcome", "rate", "experiment_id", "local_date")},
         "outcome_name": getattr(warm.model, "outcome_", "clicks"),
         "features": features,
         "terms": topic_tokens(str(post["headline"])),
+        "unscored": None,
+    }
+    try:
+        scored = score_drafts(pd.DataFrame([draft]), model=warm.model, history=warm.history, timezone=warm.timezone,
+                              suggest=False, impressions=float(post["impressions"]))
+    except ContentlabError as exc:
+        # A post the model cannot score as a draft (no channel in a history of several): its values and
+        # features still show, with the reason, and its held-out prediction when the model kept one.
+        scored, view["unscored"] = None, str(exc)
+    if scored is None and held_out is None:
+        return {**view, "predicted_rate": None}
+    fitted = scored.iloc[0] if scored is not None else {}
+    predicted = held_out if held_out is not None else float(fitted["predicted_rate"])
+    n, k = float(post["impressions"]), float(post["outcome"])
+    expected = n * predicted
+    sd = float(np.sqrt(max(n * predicted * (1 - predicted), 1e-12)))
+    return {
+        **view,
         "predicted_rate": predicted,
         "prediction_kind": "held out (the model had not seen this post)" if held_out is not None
         else "in sample (this post was among those the model learned from)",
-        "rate_low": finite(fitted["rate_low"]),
-        "rate_high": finite(fitted["rate_high"]),
-        "reasons": (scored.attrs.get("reasons") or [[]])[0],
+        "rate_low": finite(fitted.get("rate_low")) if scored is not None else None,
+        "rate_high": finite(fitted.get("rate_high")) if scored is not None else None,
+        "reasons": (scored.attrs.get("reasons") or [[]])[0] if scored is not None else [],
         "residual": float(post["rate"]) - predicted,
         "relative": float(post["rate"]) / predicted - 1 if predicted > 0 else None,
         "z": (k - expected) / sd,
