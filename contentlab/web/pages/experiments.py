@@ -13,7 +13,7 @@ from ...errors import ContentlabError
 from .. import insight, services
 from ..common import ApiError, blocking, render
 from ..svg import line_chart
-from .forms import checked_form, is_htmx, save_upload, text, upload_name
+from .forms import checked_form, is_htmx, saved_upload, text, upload_name
 
 RECORD_FIELDS = ("arm", "impressions", "clicks", "at", "event_id")
 # record's messages for one row name the option: "--impressions: ...", "--event-id: ...".
@@ -119,17 +119,9 @@ async def record(request: Request):
 
 def _record_upload(state, name: str, upload, shown: str, cumulative: bool) -> dict:
     """Save the upload under a fixed name in a private temporary folder and record it (all rows or none)."""
-    import tempfile
-    from pathlib import Path
-
-    with tempfile.TemporaryDirectory(prefix="contentlab-upload-") as tmp:
-        path = Path(tmp) / "results.csv"
-        if save_upload(upload, path) == 0:
-            raise ContentlabError(f"{shown}: the file is empty; nothing was recorded. Upload a CSV with a header "
-                                  "(arm, impressions, clicks) and one result a row.")
-        with open(path, "rb") as fh:
-            if fh.read(2) == b"\x1f\x8b":
-                path = path.rename(path.with_name("results.csv.gz"))
+    empty = (f"{shown}: the file is empty; nothing was recorded. Upload a CSV with a header (arm, impressions, "
+             "clicks) and one result a row.")
+    with saved_upload(upload, "results.csv", empty) as path:
         return services.record_file(state, name, path, shown, cumulative)
 
 

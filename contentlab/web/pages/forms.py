@@ -3,11 +3,15 @@
 from __future__ import annotations
 
 import shutil
+import tempfile
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 from starlette.datastructures import UploadFile
 from starlette.requests import Request
 
+from ...errors import ContentlabError
 from ..common import ApiError
 from ..security import csrf_ok
 
@@ -51,3 +55,17 @@ def save_upload(upload: UploadFile, target: Path) -> int:
     with open(target, "wb") as out:
         shutil.copyfileobj(upload.file, out)
     return target.stat().st_size
+
+
+@contextmanager
+def saved_upload(upload: UploadFile, name: str, if_empty: str) -> Iterator[Path]:
+    """The upload saved as ``name`` (``name.gz`` when gzip-compressed) in a private temporary folder, removed
+    after; an empty upload is refused with ``if_empty``. The folder may take other files (a column map)."""
+    with tempfile.TemporaryDirectory(prefix="contentlab-upload-") as tmp:
+        path = Path(tmp) / name
+        if save_upload(upload, path) == 0:
+            raise ContentlabError(if_empty)
+        with open(path, "rb") as fh:
+            if fh.read(2) == b"\x1f\x8b":
+                path = path.rename(path.with_name(name + ".gz"))
+        yield path

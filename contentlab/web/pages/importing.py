@@ -9,8 +9,6 @@ temporary path.
 
 from __future__ import annotations
 
-import tempfile
-from pathlib import Path
 
 from starlette.datastructures import UploadFile
 from starlette.requests import Request
@@ -18,7 +16,7 @@ from starlette.routing import Route
 
 from ...errors import ContentlabError
 from ..common import blocking, render
-from .forms import checked_form, save_upload, upload_name
+from .forms import checked_form, save_upload, saved_upload, upload_name
 
 MAX_PROBLEMS_SHOWN = 500
 
@@ -27,17 +25,10 @@ def _import(state, data: UploadFile, mapping: UploadFile | None, shown: str, sho
     from ...history import import_history
     from ...ingest import read_history
 
-    with tempfile.TemporaryDirectory(prefix="contentlab-upload-") as tmp:
-        folder = Path(tmp)
-        path = folder / "export.csv"
-        if save_upload(data, path) == 0:
-            raise ContentlabError(f"{shown}: the file is empty; nothing was imported.")
-        with open(path, "rb") as fh:
-            if fh.read(2) == b"\x1f\x8b":
-                path = path.rename(folder / "export.csv.gz")
+    with saved_upload(data, "export.csv", f"{shown}: the file is empty; nothing was imported.") as path:
         map_path = None
         if mapping is not None:
-            map_path = folder / "columns.toml"
+            map_path = path.parent / "columns.toml"
             save_upload(mapping, map_path)
 
         def named(text: str) -> str:
