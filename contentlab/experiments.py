@@ -1603,7 +1603,7 @@ def record_results(
     except BaseException:
         conn.rollback()
         raise
-    return dataclasses.replace(summary, notes=summary.notes + clean.attrs.get("time_notes", ()))  # clock changes
+    return summary
 
 
 def _event_ids(clean: pd.DataFrame, frame: pd.DataFrame, cumulative: bool,
@@ -1764,7 +1764,8 @@ def _record_locked(ws, exp, clean, cumulative, source_file, kinds, repeats, sing
         event_ids=tuple(it[0] for it in items) if len(items) <= 20 else (),
         cumulative=cumulative,
         notes=tuple(_record_notes(kinds, skipped, in_input, single)) + _stopped_note(exp, len(items))
-        + _date_notes(items, exp["created_at"], single, where),
+        + _date_notes(items, exp["created_at"], single, where)
+        + tuple(clean.attrs.get("time_notes", ())),  # local times at a clock change: how they were read
     )
 
 

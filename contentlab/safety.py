@@ -82,14 +82,14 @@ class atomic_path:
         return self.tmp
 
     def __exit__(self, kind, value, trace) -> None:
+        if kind is not None:
+            self.tmp.unlink(missing_ok=True)
+            return
         try:
-            if kind is None:
-                os.replace(self.tmp, self.path)
-                return
+            os.replace(self.tmp, self.path)
         except BaseException:  # the replace failed, or a stop signal arrived just before it: no half-step left
             self.tmp.unlink(missing_ok=True)
             raise
-        self.tmp.unlink(missing_ok=True)
 
 
 def write_text(path: str | os.PathLike, text: str) -> None:

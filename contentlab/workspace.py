@@ -285,10 +285,10 @@ class Workspace:
                     # unsaved WAL content the file itself is whole: read it as it is, refuse writes plainly.
                     if created or _is_corrupt(exc) or not disk_is_full(path):
                         raise
-                    if _pending_wal(db):
-                        conn.close()
-                        raise WorkspaceDiskFull(unsaved_log_message(path, db, "full")) from None
+                    pending = _pending_wal(db)  # looked at before closing: SQLite may remove the log on close
                     conn.close()
+                    if pending:
+                        raise WorkspaceDiskFull(unsaved_log_message(path, db, "full")) from None
                     conn, read_only, full = _open_immutable(path, db), True, True
                 # In WAL mode NORMAL is still safe from corruption; a power cut can lose
                 # only the last commits, and it makes a large import several times faster.
@@ -576,7 +576,7 @@ def disk_full_message(path) -> str:
 def unsaved_log_message(path, db: Path, why: str) -> str:
     """The one message for a workspace whose last changes are still in its ``-wal`` file when it cannot be written
     (``why``: "read-only" or "full"): read without them it would show figures from before those changes."""
-    wal = db.with_name(db.name + "-wal")
+    wal = _wal_path(db)
     if why == "full":
         cannot, fix = (f"the disk holding the workspace at {path} is full", "Free some space and run the command again")
     else:
@@ -607,11 +607,15 @@ def disk_is_full(path) -> bool:
 
 def _pending_wal(db: Path) -> bool:
     """Whether the database has a write-ahead log with content not yet copied back (left by a crash)."""
-    wal = db.with_name(db.name + "-wal")
     try:
-        return wal.stat().st_size > 0
+        return _wal_path(db).stat().st_size > 0
     except OSError:
         return False
+
+
+def _wal_path(db: Path) -> Path:
+    """The database's write-ahead log (SQLite's name for it: the database's name with ``-wal``)."""
+    return db.with_name(db.name + "-wal")
 
 
 def _open_immutable(path: Path, db: Path) -> sqlite3.Connection:
@@ -654,8 +658,7 @@ def _empty_database(db: Path) -> bool:
     try:
         if db.stat().st_size:
             return False
-        wal = db.with_name(db.name + "-wal")
-        return not (wal.exists() and wal.stat().st_size)
+        return not _pending_wal(db)
     except OSError:
         return False
 

@@ -207,11 +207,11 @@ class Stopped(KeyboardInterrupt):
 STOP_SIGNALS = tuple(getattr(signal, n) for n in ("SIGTERM", "SIGHUP") if hasattr(signal, n))
 
 
-_running: set[int] = set()  # holds 1 while a command runs under the handlers below
+_running = threading.Event()  # set while a command runs under the handlers below
 
 
 def _raise_stopped(signum, frame):
-    if _running:
+    if _running.is_set():
         raise Stopped(signum)
 
 
@@ -227,7 +227,7 @@ def _stop_on_signals() -> dict:
     for signum in STOP_SIGNALS:
         if signal.getsignal(signum) is signal.SIG_DFL:
             previous[signum] = signal.signal(signum, _raise_stopped)
-    _running.add(1)
+    _running.set()
     return previous
 
 
